@@ -1,0 +1,81 @@
+"""Project-file validation: every bad file gives one message naming the key or file."""
+
+from __future__ import annotations
+
+import pytest
+
+from wetlandflow.errors import ProjectFileError
+from wetlandflow.project import config_hash, load_project, to_dict
+
+
+def test_demo_project_loads(small_demo):
+    p = load_project(small_demo)
+    assert p.classes.names[0] == "upland"
+    assert len(p.optical) >= 4 and len(p.sar) >= 12
+    assert all(s.path.exists() for s in p.optical)
+    assert p.classes.parents["wetland"] == ("marsh", "swamp", "fen", "bog")
+    assert p.run_dir.name == "demo"
+
+
+def test_defaults_are_filled(project_copy):
+    def drop(d):
+        d.pop("model", None)
+        d.pop("output", None)
+
+    p = load_project(project_copy(drop))
+    assert p.model.kind == "xgboost" and p.output.chunk_size == 512
+
+
+def test_round_trip_and_hash_is_stable(small_demo):
+    a, b = load_project(small_demo), load_project(small_demo)
+    assert to_dict(a) == to_dict(b)
+    assert config_hash(a) == config_hash(b)
+
+
+def test_hash_changes_with_parameters(project_copy, small_demo):
+    p = load_project(project_copy(lambda d: d["model"].update(max_depth=3)))
+    assert config_hash(p) != config_hash(load_project(small_demo))
+
+
+@pytest.mark.parametrize(
+    ("mutate", "key", "words"),
+    [
+        (lambda d: d["model"].update(depth=3), "model.depth", "valid keys here are"),
+        (lambda d: d.update(modle={}), "modle", "valid sections"),
+        (lambda d: d["validation"].update(n_folds="five"), "validation.n_folds", "whole number"),
+        (lambda d: d["model"].update(kind="svm"), "model.kind", "xgboost"),
+        (lambda d: d["dem"].update(path="missing_dem.tif"), "dem.path", "file not found"),
+        (lambda d: d["optical"][1].update(path="nope.tif"), "optical[1].path", "file not found"),
+        (lambda d: d["classes"]["parents"].update(wetland=["marsh", "peatland"]), "classes.parents.wetland",
+         "unknown class 'peatland'"),
+        (lambda d: d["seasons"].update(spring=["04-01", "07-01"]), "seasons", "overlap"),
+        (lambda d: d["seasons"].update(spring=["06-01", "04-01"]), "seasons.spring", "before it starts"),
+        (lambda d: d["seasons"].update(spring=["04-31", "05-01"]), "seasons.spring", "month-day"),
+        (lambda d: d["optical"][0].update(bands=["blue", "blue"]), "optical[0].bands", "duplicate band"),
+        (lambda d: d["sar"][0].update(units="decibel"), "sar[0].units", "linear"),
+        (lambda d: d["validation"].update(design="random"), "validation.design", "leak"),
+        (lambda d: d["classes"].update(names=["upland", "upland", "fen"]), "classes.names", "duplicate"),
+        (lambda d: d["plots"].pop("path"), "plots.path", "missing required key"),
+        (lambda d: d["optical"][0].update(date="May 14"), "optical[0].date", "date"),
+    ],
+)
+def test_bad_project_files_name_the_key(project_copy, mutate, key, words):
+    path = project_copy(mutate)
+    with pytest.raises(ProjectFileError) as info:
+        load_project(path)
+    msg = str(info.value)
+    assert info.value.key == key
+    assert f"[{key}]" in msg and words in msg
+    assert path.name in msg
+
+
+def test_missing_project_file(tmp_path):
+    with pytest.raises(ProjectFileError, match="not found"):
+        load_project(tmp_path / "absent.toml")
+
+
+def test_invalid_toml(tmp_path):
+    f = tmp_path / "broken.toml"
+    f.write_text("[project\nname = 1\n")
+    with pytest.raises(ProjectFileError, match="not valid TOML"):
+        load_project(f)

@@ -1,0 +1,72 @@
+"""One tree of errors.
+
+Every error raised on purpose by wetlandflow derives from :class:`WetlandflowError`;
+each leaf also inherits the builtin that fits, so callers may catch either
+(``except ValueError`` keeps working).  Messages say what was wrong, what was
+received, what was expected and how to fix it.
+"""
+
+from __future__ import annotations
+
+
+class WetlandflowError(Exception):
+    """Root of all errors raised on purpose by wetlandflow."""
+
+
+class ProjectFileError(WetlandflowError, ValueError):
+    """The project file is malformed: unknown key, wrong type, bad value.
+
+    ``key`` carries the full dotted key path (``validation.block_size_m``).
+    """
+
+    def __init__(self, message: str, *, key: str | None = None, file: str | None = None):
+        self.key = key
+        self.file = file
+        self.detail = message
+        where = ""
+        if file:
+            where += f"{file}: "
+        if key:
+            where += f"[{key}] "
+        super().__init__(f"{where}{message}")
+
+
+class InputFileError(WetlandflowError, OSError):
+    """An input file is missing, unreadable, truncated or lacks what it must carry."""
+
+    def __init__(self, message: str, *, path: str | None = None):
+        self.path = path
+        prefix = f"{path}: " if path else ""
+        super().__init__(f"{prefix}{message}")
+
+
+class GridMismatchError(WetlandflowError, ValueError):
+    """A raster is not on the run's reference grid (names the field that differs)."""
+
+
+class AlignmentError(WetlandflowError, ValueError):
+    """An input cannot be brought onto the reference grid (no overlap, no CRS, offset)."""
+
+
+class DataQualityError(WetlandflowError, ValueError):
+    """Values that are implausible for what they claim to be (unscaled reflectance, dB labelled linear)."""
+
+
+class SamplesError(WetlandflowError, ValueError):
+    """Training plots or samples are unusable (outside AOI, unknown labels, duplicate ids)."""
+
+
+class ValidationDesignError(WetlandflowError, ValueError):
+    """A cross-validation design cannot be honoured (class missing from a fold, leaking split)."""
+
+
+class ModelError(WetlandflowError, ValueError):
+    """A model or model bundle does not fit the data it is given."""
+
+
+class OutputError(WetlandflowError, OSError):
+    """Outputs cannot be written (folder not writable, not enough disk)."""
+
+
+class BudgetError(WetlandflowError, MemoryError):
+    """A computation would exceed the memory or time budget it was given."""

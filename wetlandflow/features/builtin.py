@@ -1,0 +1,134 @@
+"""The built-in features, registered by name and domain.
+
+Each entry is a thin adapter from the run's :class:`FeatureInputs` to a pure
+function in :mod:`.optical`, :mod:`.sar` or :mod:`.terrain`, where the
+formula, units and published source live.
+"""
+
+from __future__ import annotations
+
+import xarray as xr
+
+from . import optical, sar, terrain
+from .registry import FeatureInputs, feature
+
+
+# -- shared intermediates -------------------------------------------------------------------
+def composite(inputs: FeatureInputs) -> xr.Dataset:
+    """Seasonal median composites of the optical stack, computed once per run."""
+    if inputs.composite is None:
+        inputs.composite = inputs.cached(
+            "composite", lambda: optical.seasonal_composite(inputs.optical, inputs.seasons)
+        )
+    return inputs.composite
+
+
+def dem_in_memory(inputs: FeatureInputs) -> xr.DataArray:
+    """The aligned DEM as one in-memory array: flow routing is global (see docs/limits.md)."""
+    return inputs.cached("dem", lambda: inputs.dem.compute())
+
+
+def _reflectance(inputs: FeatureInputs) -> xr.DataArray:
+    return composite(inputs)["reflectance"]
+
+
+# -- optical ------------------------------------------------------------------------------
+def _optical_index(name: str, func) -> None:
+    @feature(name, domain="optical", needs=("optical",))
+    def _index(inputs: FeatureInputs) -> xr.DataArray:
+        return func(_reflectance(inputs))
+
+    _index.__doc__ = (func.__doc__ or name).strip().splitlines()[0]
+
+
+for _name, _func in {
+    "ndvi": optical.ndvi,
+    "ndwi": optical.ndwi_mcfeeters,
+    "ndmi": optical.ndmi,
+    "mndwi": optical.mndwi,
+    "ndre1": optical.ndre1,
+    "ndre2": optical.ndre2,
+    "reip": optical.reip,
+}.items():
+    _optical_index(_name, _func)
+
+
+@feature("ndvi_season_difference", domain="optical", needs=("optical",))
+def ndvi_season_difference(inputs: FeatureInputs, *, a: str = "spring", b: str = "summer") -> xr.DataArray:
+    """NDVI of season a minus season b (phenology contrast)."""
+    return optical.season_difference(optical.ndvi(_reflectance(inputs)), a=a, b=b)
+
+
+# -- SAR -----------------------------------------------------------------------------------
+@feature("sar_temporal", domain="sar", needs=("sar",))
+def sar_temporal(inputs: FeatureInputs) -> xr.Dataset:
+    """Temporal statistics of VV, VH and VH/VV, in linear power, levels in dB."""
+    return sar.temporal_stats(inputs.sar, seasons=inputs.seasons)
+
+
+@feature("water_frequency", domain="sar", needs=("sar",))
+def water_frequency(inputs: FeatureInputs) -> xr.DataArray:
+    """Fraction of valid SAR dates detected as open water (Otsu per date on VV dB)."""
+    return sar.surface_water_frequency(inputs.sar, aoi_mask=inputs.aoi)
+
+
+# -- terrain -------------------------------------------------------------------------------
+@feature("elevation", domain="terrain", needs=("dem",))
+def elevation(inputs: FeatureInputs) -> xr.DataArray:
+    """Elevation of the aligned DEM (m)."""
+    from .._provenance import with_attrs
+
+    return with_attrs(inputs.dem, "elevation", long_name="elevation", units="m", domain="terrain",
+                      method="DEM aligned onto the grid", reference="", parameters={})
+
+
+@feature("slope", domain="terrain", needs=("dem",))
+def slope_feature(inputs: FeatureInputs, *, units: str = "degrees") -> xr.DataArray:
+    """Slope, Horn (1981) 3 x 3 stencil."""
+    return terrain.slope(inputs.dem, units=units)
+
+
+@feature("twi", domain="terrain", needs=("dem",))
+def twi(inputs: FeatureInputs, *, method: str = "mfd", min_slope: float = 0.001) -> xr.DataArray:
+    """Topographic wetness index ln(a / tan b), Beven & Kirkby (1979)."""
+    return terrain.topographic_wetness_index(dem_in_memory(inputs), method=method, min_slope=min_slope)
+
+
+@feature("tpi", domain="terrain", needs=("dem",))
+def tpi(inputs: FeatureInputs, *, radii_m: tuple[float, ...] = (100.0, 300.0)) -> xr.Dataset:
+    """Topographic position index at several radii."""
+    out = {}
+    for r in radii_m:
+        da = terrain.topographic_position_index(inputs.dem, radius_m=r)
+        out[f"tpi_{int(r)}m"] = da
+    return xr.Dataset(out)
+
+
+@feature("curvature", domain="terrain", needs=("dem",))
+def curvature(inputs: FeatureInputs) -> xr.Dataset:
+    """Plan and profile curvature, Zevenbergen & Thorne (1987)."""
+    return xr.Dataset({f"curvature_{k}": terrain.curvature(inputs.dem, kind=k) for k in ("plan", "profile")})
+
+
+@feature("depression_depth", domain="terrain", needs=("dem",))
+def depression_depth(inputs: FeatureInputs) -> xr.DataArray:
+    """Depth of closed depressions: filled minus original elevation (m)."""
+    return terrain.depression_depth(dem_in_memory(inputs))
+
+
+@feature("hand", domain="terrain", needs=("dem",))
+def hand(inputs: FeatureInputs, *, channel_threshold_m2: float = 2e5) -> xr.DataArray:
+    """Height above nearest drainage, Renno et al. (2008)."""
+    return terrain.height_above_nearest_drainage(dem_in_memory(inputs), channel_threshold_m2=channel_threshold_m2)
+
+
+@feature("mrvbf", domain="terrain", needs=("dem",))
+def mrvbf(inputs: FeatureInputs) -> xr.DataArray:
+    """Multi-resolution valley bottom flatness, Gallant & Dowling (2003)."""
+    return terrain.mrvbf(dem_in_memory(inputs))
+
+
+@feature("mrrtf", domain="terrain", needs=("dem",))
+def mrrtf(inputs: FeatureInputs) -> xr.DataArray:
+    """Multi-resolution ridge top flatness, Gallant & Dowling (2003)."""
+    return terrain.mrrtf(dem_in_memory(inputs))

@@ -1,0 +1,112 @@
+"""Assembling named features into the feature cube.
+
+The cube is an ``xarray.Dataset`` on the grid: one float32 variable per
+feature, dims ``(y, x)``, NaN for no data and outside the AOI, each variable
+with provenance attrs (long_name, units, domain, formula or method, reference,
+parameters).  It is built lazily and saved to Zarr.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from ..errors import ProjectFileError
+from ..grid import attach, require_match
+from .registry import FeatureDef, FeatureInputs, resolve_selection
+
+REQUIRED_ATTRS = ("long_name", "units", "domain", "reference", "parameters")
+
+
+def _as_variables(out: xr.DataArray | xr.Dataset, fdef: FeatureDef) -> dict[str, xr.DataArray]:
+    if isinstance(out, xr.Dataset):
+        return {str(k): v for k, v in out.data_vars.items()}
+    if "season" in out.dims:
+        return {f"{fdef.name}_{s}": out.sel(season=s, drop=True).assign_attrs(out.attrs, season=str(s))
+                for s in out["season"].values}
+    return {fdef.name: out}
+
+
+def _finish(da: xr.DataArray, name: str, fdef: FeatureDef, inputs: FeatureInputs) -> xr.DataArray:
+    extra = [d for d in da.dims if d not in ("y", "x")]
+    if extra:
+        raise ValueError(f"feature {fdef.name!r} returned {name!r} with extra dims {extra}; expected (y, x)")
+    attrs = dict(da.attrs)
+    missing = [a for a in REQUIRED_ATTRS if a not in attrs] + ([] if ("formula" in attrs or "method" in attrs)
+                                                                else ["formula or method"])
+    if missing:
+        raise ValueError(f"feature {fdef.name!r} output {name!r} lacks provenance attrs {missing}; "
+                         "build them with wetlandflow._provenance.with_attrs")
+    attrs["domain"] = fdef.domain if fdef.domain == "user" else attrs["domain"]
+    drop = [c for c in da.coords if c not in ("y", "x")]
+    da = da.drop_vars(drop).astype(np.float32).transpose("y", "x")
+    if inputs.aoi is not None:
+        da = da.where(inputs.aoi)
+    da = da.rename(name)
+    da.attrs = attrs
+    require_match(da, inputs.grid, name=name)
+    return da
+
+
+def build_cube(inputs: FeatureInputs, select: tuple[str, ...] | list[str],
+               params: dict[str, dict[str, Any]] | None = None) -> xr.Dataset:
+    """Compute the selected features (lazily where the feature allows) into one Dataset."""
+    params = params or {}
+    defs = resolve_selection(select)
+    unknown = sorted(set(params) - {d.name for d in defs})
+    if unknown:
+        raise ProjectFileError(f"parameters given for feature(s) not selected: {unknown}", key="features.params")
+    variables: dict[str, xr.DataArray] = {}
+    for fdef in defs:
+        missing = [n for n in fdef.needs if getattr(inputs, n) is None]
+        if missing:
+            raise ProjectFileError(f"feature {fdef.name!r} needs input(s) {missing}, which the project lacks",
+                                   key="features.select")
+        out = fdef.func(inputs, **{**fdef.defaults, **params.get(fdef.name, {})})
+        for name, da in _as_variables(out, fdef).items():
+            if name in variables:
+                raise ValueError(f"feature variable {name!r} produced twice (by {fdef.name!r})")
+            variables[name] = _finish(da, name, fdef, inputs)
+    cube = xr.Dataset(variables)
+    cube.attrs = {"grid": str(inputs.grid.to_dict()), "features": ", ".join(d.name for d in defs)}
+    return attach(cube, inputs.grid)
+
+
+def save_cube(cube: xr.Dataset, path: str | Path, *, chunk: int = 512) -> xr.Dataset:
+    """Write the cube to Zarr atomically and return it reopened lazily from disk."""
+    from ..io import atomic_path
+
+    cube = cube.chunk({"y": chunk, "x": chunk})
+    for v in cube.data_vars.values():
+        v.encoding = {}
+    with atomic_path(path) as tmp:
+        cube.to_zarr(tmp, mode="w", consolidated=True)
+    return open_cube(path)
+
+
+def open_cube(path: str | Path) -> xr.Dataset:
+    import rioxarray  # noqa: F401
+
+    ds = xr.open_zarr(path, consolidated=True)
+    return ds
+
+
+def cube_summary(cube: xr.Dataset) -> pd.DataFrame:
+    """Per feature: domain, units, valid fraction, min, median, max."""
+    rows = []
+    for name, da in cube.data_vars.items():
+        v = np.asarray(da.values, dtype=np.float64).ravel()
+        ok = np.isfinite(v)
+        vals = v[ok]
+        rows.append({
+            "feature": name, "domain": da.attrs.get("domain"), "units": da.attrs.get("units"),
+            "valid_fraction": float(ok.mean()) if v.size else 0.0,
+            "min": float(vals.min()) if vals.size else np.nan,
+            "median": float(np.median(vals)) if vals.size else np.nan,
+            "max": float(vals.max()) if vals.size else np.nan,
+        })
+    return pd.DataFrame(rows)

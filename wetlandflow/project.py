@@ -1,0 +1,422 @@
+"""The project file: schema, defaults, validation with clear messages.
+
+A project is a TOML file (format in ``docs/project-file.md``).  It is parsed
+once into nested frozen dataclasses; unknown keys, wrong types and bad values
+raise :class:`~wetlandflow.errors.ProjectFileError` naming the full key path
+(``validation.n_folds``) and what to do.  Serialisation is derived from the
+fields (:func:`to_dict`), and :func:`config_hash` fingerprints the resolved
+project for every output.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import hashlib
+import json
+import sys
+import types
+import typing
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+from .errors import ProjectFileError
+
+OPTICAL_BANDS = ("blue", "green", "red", "re1", "re2", "re3", "nir", "nir_narrow", "swir1", "swir2")
+SAR_UNITS = ("linear", "amplitude", "db")
+ORBITS = ("ascending", "descending")
+MODEL_KINDS = ("xgboost", "random_forest")
+CV_DESIGNS = ("blocks", "group", "random")
+
+
+# -- schema -------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class ProjectSection:
+    name: str = "wetland inventory"
+    seed: int = 0
+    output_dir: str = ""
+
+
+@dataclass(frozen=True)
+class AreaSection:
+    aoi: Path
+    layer: str = ""
+
+
+@dataclass(frozen=True)
+class GridSection:
+    crs: str = ""
+    pixel_size_m: float = 0.0
+
+
+@dataclass(frozen=True)
+class ClassesSection:
+    names: tuple[str, ...]
+    parents: dict[str, tuple[str, ...]] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class PlotsSection:
+    path: Path
+    class_field: str = "class"
+    id_field: str = ""
+
+
+@dataclass(frozen=True)
+class OpticalScene:
+    date: dt.date
+    path: Path
+    bands: tuple[str, ...] = OPTICAL_BANDS
+    scale: float = 0.0001
+    offset_dn: float = 0.0
+    nodata: float = 0.0
+    mask: Path | None = None
+    mask_valid: tuple[int, ...] = (4, 5, 6, 7)
+
+
+@dataclass(frozen=True)
+class SarScene:
+    date: dt.date
+    path: Path
+    bands: tuple[str, ...] = ("VV", "VH")
+    units: str = "linear"
+    orbit: str = "ascending"
+    nodata: float = -9999.0
+
+
+@dataclass(frozen=True)
+class DemSection:
+    path: Path
+    units: str = "m"
+    nodata: float = -9999.0
+
+
+@dataclass(frozen=True)
+class FeaturesSection:
+    select: tuple[str, ...] = ("optical", "sar", "terrain")
+    params: dict[str, dict[str, Any]] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class ModelSection:
+    kind: str = "xgboost"
+    n_estimators: int = 300
+    max_depth: int = 6
+    learning_rate: float = 0.1
+    class_weighting: bool = True
+    n_threads: int = 2
+
+
+@dataclass(frozen=True)
+class ValidationSection:
+    design: str = "blocks"
+    n_folds: int = 5
+    block_size_m: float = 1000.0
+    allow_random_pixels: bool = False
+
+
+@dataclass(frozen=True)
+class SamplesSection:
+    max_pixels_per_plot: int = 200
+    inward_buffer_m: float = 0.0
+
+
+@dataclass(frozen=True)
+class OutputSection:
+    chunk_size: int = 512
+
+
+@dataclass(frozen=True)
+class Project:
+    """A validated, resolved project.  Build it with :func:`load_project`."""
+
+    file: Path
+    project: ProjectSection
+    area: AreaSection
+    classes: ClassesSection
+    plots: PlotsSection
+    optical: tuple[OpticalScene, ...]
+    sar: tuple[SarScene, ...]
+    dem: DemSection
+    seasons: dict[str, tuple[str, str]]
+    grid: GridSection = GridSection()
+    features: FeaturesSection = FeaturesSection()
+    model: ModelSection = ModelSection()
+    validation: ValidationSection = ValidationSection()
+    samples: SamplesSection = SamplesSection()
+    output: OutputSection = OutputSection()
+
+    @property
+    def root(self) -> Path:
+        return self.file.parent
+
+    @property
+    def run_dir(self) -> Path:
+        out = self.project.output_dir or f"runs/{self.file.stem}"
+        return (self.root / out).resolve()
+
+    @property
+    def class_codes(self) -> dict[str, int]:
+        """Class name -> raster code (1-based, in scheme order; 0 is nodata)."""
+        return {n: i + 1 for i, n in enumerate(self.classes.names)}
+
+
+# -- generic builder from dataclass fields ---------------------------------------------------
+_TOP_LEVEL = {f.name for f in dataclasses.fields(Project)} - {"file"}
+
+
+def _type_name(tp: Any) -> str:
+    return getattr(tp, "__name__", str(tp)).replace("typing.", "")
+
+
+def _coerce(value: Any, tp: Any, key: str, root: Path) -> Any:
+    origin = typing.get_origin(tp)
+    args = typing.get_args(tp)
+    if origin in (typing.Union, types.UnionType):
+        if value is None and type(None) in args:
+            return None
+        inner = [a for a in args if a is not type(None)][0]
+        return _coerce(value, inner, key, root)
+    if tp is Path:
+        if not isinstance(value, str) or not value:
+            raise ProjectFileError(f"expected a file path (string), got {value!r}", key=key)
+        p = Path(value)
+        return (p if p.is_absolute() else root / p).resolve()
+    if tp is dt.date:
+        if isinstance(value, dt.datetime):
+            return value.date()
+        if isinstance(value, dt.date):
+            return value
+        if isinstance(value, str):
+            try:
+                return dt.date.fromisoformat(value)
+            except ValueError:
+                pass
+        raise ProjectFileError(f"expected a date like 2024-05-14, got {value!r}", key=key)
+    if tp is bool:
+        if not isinstance(value, bool):
+            raise ProjectFileError(f"expected true or false, got {value!r}", key=key)
+        return value
+    if tp is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ProjectFileError(f"expected a whole number, got {value!r}", key=key)
+        return value
+    if tp is float:
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            raise ProjectFileError(f"expected a number, got {value!r}", key=key)
+        return float(value)
+    if tp is str:
+        if not isinstance(value, str):
+            raise ProjectFileError(f"expected a string, got {value!r}", key=key)
+        return value
+    if origin is tuple:
+        if not isinstance(value, list):
+            raise ProjectFileError(f"expected a list, got {value!r}", key=key)
+        return tuple(_coerce(v, args[0], f"{key}[{i}]", root) for i, v in enumerate(value))
+    if origin is dict:
+        if not isinstance(value, dict):
+            raise ProjectFileError(f"expected a table, got {value!r}", key=key)
+        return {k: _coerce(v, args[1], f"{key}.{k}", root) for k, v in value.items()}
+    if tp is Any:
+        return value
+    if dataclasses.is_dataclass(tp):
+        return _build(tp, value, key, root)
+    raise ProjectFileError(f"unsupported type {_type_name(tp)}", key=key)  # pragma: no cover
+
+
+def _build(cls: type, table: Any, key: str, root: Path, fixed: dict[str, Any] | None = None) -> Any:
+    if not isinstance(table, dict):
+        raise ProjectFileError(f"expected a table [{key}], got {table!r}", key=key)
+    hints = typing.get_type_hints(cls)
+    fixed = fixed or {}
+    fields = {f.name: f for f in dataclasses.fields(cls) if f.name not in fixed}
+    unknown = sorted(set(table) - set(fields))
+    if unknown:
+        raise ProjectFileError(
+            f"unknown key {unknown[0]!r}; valid keys here are: {', '.join(sorted(fields))}",
+            key=f"{key}.{unknown[0]}" if key else unknown[0],
+        )
+    kwargs = dict(fixed)
+    for name, f in fields.items():
+        sub = f"{key}.{name}" if key else name
+        if name in table:
+            kwargs[name] = _coerce(table[name], hints[name], sub, root)
+        elif f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING:
+            raise ProjectFileError(f"missing required key {name!r}", key=sub)
+    return cls(**kwargs)
+
+
+# -- semantic checks ---------------------------------------------------------------------
+def _check_choice(value: str, allowed: tuple[str, ...], key: str) -> None:
+    if value not in allowed:
+        raise ProjectFileError(f"{value!r} is not one of {', '.join(allowed)}", key=key)
+
+
+def _require_file(path: Path | None, key: str) -> None:
+    if path is not None and not path.exists():
+        raise ProjectFileError(
+            f"file not found: {path}. Relative paths are resolved against the project file's folder; "
+            "fix the path or move the file",
+            key=key,
+        )
+
+
+def _month_day(s: str, key: str) -> tuple[int, int]:
+    try:
+        d = dt.date.fromisoformat(f"2000-{s}")
+    except ValueError:
+        raise ProjectFileError(f"expected a month-day like '04-15', got {s!r}", key=key) from None
+    return d.month, d.day
+
+
+def _check_seasons(seasons: dict[str, tuple[str, str]]) -> None:
+    if not seasons:
+        raise ProjectFileError("define at least one season, e.g. summer = ['06-01', '08-31']", key="seasons")
+    spans = []
+    for name, window in seasons.items():
+        if len(window) != 2:
+            raise ProjectFileError(f"a season is [start, end], got {list(window)}", key=f"seasons.{name}")
+        a, b = (_month_day(s, f"seasons.{name}") for s in window)
+        if b < a:
+            raise ProjectFileError(
+                f"season ends ({window[1]}) before it starts ({window[0]}); windows may not wrap the year",
+                key=f"seasons.{name}",
+            )
+        spans.append((a, b, name))
+    spans.sort()
+    for (_, b1, n1), (a2, _, n2) in zip(spans, spans[1:], strict=False):
+        if a2 <= b1:
+            raise ProjectFileError(
+                f"seasons {n1!r} and {n2!r} overlap; make each date fall in at most one season", key="seasons"
+            )
+
+
+def _check_classes(c: ClassesSection) -> None:
+    if len(c.names) < 2:
+        raise ProjectFileError("a class scheme needs at least two classes", key="classes.names")
+    if len(set(c.names)) != len(c.names):
+        dup = sorted({n for n in c.names if c.names.count(n) > 1})
+        raise ProjectFileError(f"duplicate class names: {dup}", key="classes.names")
+    seen: dict[str, str] = {}
+    for parent, children in c.parents.items():
+        if parent in c.names:
+            raise ProjectFileError(f"parent {parent!r} must not also be a leaf class", key=f"classes.parents.{parent}")
+        for child in children:
+            if child not in c.names:
+                raise ProjectFileError(
+                    f"unknown class {child!r}; known classes: {', '.join(c.names)}", key=f"classes.parents.{parent}"
+                )
+            if child in seen:
+                raise ProjectFileError(
+                    f"class {child!r} is under both {seen[child]!r} and {parent!r}", key=f"classes.parents.{parent}"
+                )
+            seen[child] = parent
+
+
+def _validate(p: Project) -> None:
+    _require_file(p.area.aoi, "area.aoi")
+    _require_file(p.plots.path, "plots.path")
+    _require_file(p.dem.path, "dem.path")
+    _check_choice(p.dem.units, ("m", "ft"), "dem.units")
+    if not p.optical:
+        raise ProjectFileError("at least one [[optical]] scene is required", key="optical")
+    for i, s in enumerate(p.optical):
+        _require_file(s.path, f"optical[{i}].path")
+        _require_file(s.mask, f"optical[{i}].mask")
+        if len(set(s.bands)) != len(s.bands):
+            raise ProjectFileError(f"duplicate band names in {list(s.bands)}", key=f"optical[{i}].bands")
+        if s.scale <= 0:
+            raise ProjectFileError(f"scale must be > 0, got {s.scale}", key=f"optical[{i}].scale")
+    for i, s in enumerate(p.sar):
+        _require_file(s.path, f"sar[{i}].path")
+        _check_choice(s.units, SAR_UNITS, f"sar[{i}].units")
+        _check_choice(s.orbit, ORBITS, f"sar[{i}].orbit")
+        if len(set(s.bands)) != len(s.bands):
+            raise ProjectFileError(f"duplicate band names in {list(s.bands)}", key=f"sar[{i}].bands")
+    _check_classes(p.classes)
+    _check_seasons(p.seasons)
+    _check_choice(p.model.kind, MODEL_KINDS, "model.kind")
+    _check_choice(p.validation.design, CV_DESIGNS, "validation.design")
+    if p.validation.n_folds < 2:
+        raise ProjectFileError(f"n_folds must be >= 2, got {p.validation.n_folds}", key="validation.n_folds")
+    if p.validation.design == "random" and not p.validation.allow_random_pixels:
+        raise ProjectFileError(
+            "random pixel folds leak (neighbouring pixels of one plot land on both sides) and overstate accuracy; "
+            "use design = 'blocks', or set allow_random_pixels = true to run it for comparison only",
+            key="validation.design",
+        )
+    if p.output.chunk_size < 64:
+        raise ProjectFileError(f"chunk_size must be >= 64, got {p.output.chunk_size}", key="output.chunk_size")
+    if p.grid.pixel_size_m < 0:
+        raise ProjectFileError(f"pixel_size_m must be > 0 (or 0 for the default), got {p.grid.pixel_size_m}",
+                               key="grid.pixel_size_m")
+
+
+# -- public API ----------------------------------------------------------------------------
+def parse_project(data: dict[str, Any], *, file: Path) -> Project:
+    """Build a :class:`Project` from an already-parsed TOML mapping."""
+    file = Path(file).resolve()
+    unknown = sorted(set(data) - _TOP_LEVEL)
+    if unknown:
+        raise ProjectFileError(
+            f"unknown section {unknown[0]!r}; valid sections are: {', '.join(sorted(_TOP_LEVEL))}",
+            key=unknown[0],
+            file=str(file),
+        )
+    try:
+        data = {"sar": [], **data}
+        project = _build(Project, data, "", file.parent, fixed={"file": file})
+    except ProjectFileError as exc:
+        raise ProjectFileError(exc.detail, key=exc.key, file=str(file)) from None
+    try:
+        _validate(project)
+    except ProjectFileError as exc:
+        raise ProjectFileError(exc.detail, key=exc.key, file=str(file)) from None
+    return project
+
+
+def load_project(path: str | Path) -> Project:
+    """Read, validate and resolve a project file.
+
+    Raises
+    ------
+    ProjectFileError
+        With the file, the full key path and what to do.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise ProjectFileError("project file not found; check the path", file=str(path))
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as exc:
+        raise ProjectFileError(f"not valid TOML: {exc}", file=str(path)) from None
+    return parse_project(data, file=path)
+
+
+def to_dict(obj: Any) -> Any:
+    """JSON-ready dict of a project (or any part of it), derived from the fields."""
+    if dataclasses.is_dataclass(obj):
+        return {f.name: to_dict(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
+    if isinstance(obj, dict):
+        return {k: to_dict(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple):
+        return [to_dict(v) for v in obj]
+    if isinstance(obj, Path):
+        return str(obj)
+    if isinstance(obj, dt.date):
+        return obj.isoformat()
+    return obj
+
+
+def config_hash(project: Project) -> str:
+    """SHA-256 of the resolved project, independent of where the folder lies."""
+    d = to_dict(project)
+    root = str(project.root)
+    text = json.dumps(d, sort_keys=True).replace(root, "<project>")
+    return hashlib.sha256(text.encode()).hexdigest()

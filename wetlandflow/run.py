@@ -1,0 +1,278 @@
+"""Orchestration of a run: the composition of the library's steps, and the manifest.
+
+Each step records its status, timing and outputs in ``manifest.json``; the
+manifest is rewritten (atomically) after every step, so an interrupted run
+leaves an honest account of what finished.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import platform
+import time
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from . import CAUTION, __version__
+from .features.cube import build_cube, save_cube
+from .inputs import load_inputs, project_grid, read_aoi
+from .io import check_writable, sha256_file, write_json, write_table
+from .mapping import class_areas, predict_map
+from .models import ClassScheme, WetlandClassifier, data_hash, save_bundle
+from .project import Project, config_hash, load_project, to_dict
+from .samples import class_balance, drop_incomplete, extract_samples, missing_report, plot_pixels, read_plots
+
+
+@dataclass
+class RunResult:
+    """What a finished run returns: its folder, the manifest and the headline tables."""
+
+    run_dir: Path
+    manifest: dict[str, Any]
+    areas: pd.DataFrame
+    metrics: dict[str, Any]
+    class_balance: pd.DataFrame = field(default_factory=pd.DataFrame)
+
+    def summary(self) -> str:
+        return format_summary(self)
+
+
+class Manifest:
+    """The run's account of itself, rewritten after every step."""
+
+    def __init__(self, run_dir: Path, project: Project):
+        self.path = run_dir / "manifest.json"
+        self.data: dict[str, Any] = {
+            "wetlandflow": __version__,
+            "started": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+            "project_file": project.file.name,
+            "project": to_dict(project),
+            "config_sha256": config_hash(project),
+            "seed": project.project.seed,
+            "versions": library_versions(),
+            "inputs": {},
+            "steps": {},
+            "caution": CAUTION,
+        }
+
+    @contextmanager
+    def step(self, name: str):
+        rec = {"status": "running", "started": time.time()}
+        self.data["steps"][name] = rec
+        self.save()
+        t0 = time.perf_counter()
+        try:
+            yield rec
+        except BaseException as exc:
+            rec.update(status="failed", error=f"{type(exc).__name__}: {exc}")
+            rec["seconds"] = round(time.perf_counter() - t0, 3)
+            self.save()
+            raise
+        rec.update(status="done", seconds=round(time.perf_counter() - t0, 3))
+        self.save()
+
+    def save(self) -> None:
+        write_json(self.data, self.path)
+
+
+def library_versions() -> dict[str, str]:
+    """Versions of the libraries actually loaded, including the GDAL and PROJ behind rasterio and pyproj."""
+    import dask
+    import pyproj
+    import rasterio
+    import sklearn
+    import xarray
+    import xgboost
+
+    return {"python": platform.python_version(), "numpy": np.__version__, "pandas": pd.__version__,
+            "xarray": xarray.__version__, "dask": dask.__version__, "rasterio": rasterio.__version__,
+            "gdal": rasterio.__gdal_version__, "pyproj": pyproj.__version__,
+            "proj": pyproj.proj_version_str, "scikit-learn": sklearn.__version__, "xgboost": xgboost.__version__}
+
+
+def _record_inputs(manifest: Manifest, project: Project) -> None:
+    files = {"aoi": project.area.aoi, "plots": project.plots.path, "dem": project.dem.path}
+    for s in project.optical:
+        files[f"optical {s.date}"] = s.path
+        if s.mask is not None:
+            files[f"optical mask {s.date}"] = s.mask
+    for s in project.sar:
+        files[f"sar {s.date}"] = s.path
+    manifest.data["inputs"] = {k: {"file": str(Path(p).relative_to(project.root)) if Path(p).is_relative_to(
+        project.root) else str(p), "sha256": sha256_file(p)} for k, p in files.items()}
+
+
+def feature_names(samples: pd.DataFrame) -> list[str]:
+    return [c for c in samples.columns if c not in ("plot_id", "class", "x", "y")]
+
+
+def make_splitter(project: Project):
+    """The validation design from the project file, as a scikit-learn splitter."""
+    from sklearn.model_selection import GroupKFold
+
+    from .validation import SpatialBlockKFold
+
+    v = project.validation
+    if v.design == "blocks":
+        return SpatialBlockKFold(n_splits=v.n_folds, block_size_m=v.block_size_m, random_state=project.project.seed)
+    if v.design == "group":
+        return GroupKFold(n_splits=v.n_folds)
+    from .validation import random_pixel_kfold
+
+    return random_pixel_kfold(n_splits=v.n_folds, random_state=project.project.seed,
+                              allow_random_pixels=v.allow_random_pixels)
+
+
+def make_model(project: Project) -> WetlandClassifier:
+    m = project.model
+    return WetlandClassifier(classes=project.classes.names, kind=m.kind, n_estimators=m.n_estimators,
+                             max_depth=m.max_depth, learning_rate=m.learning_rate,
+                             class_weighting=m.class_weighting, n_threads=m.n_threads,
+                             random_state=project.project.seed)
+
+
+def cross_validate(project: Project, samples: pd.DataFrame, features: list[str], *,
+                   progress: bool = True) -> tuple[np.ndarray, np.ndarray]:
+    """Out-of-fold class probabilities for every sample, and each sample's test fold."""
+    from .progress import progress_bar
+    from .validation import assign_folds
+
+    splitter = make_splitter(project)
+    X = samples[features].to_numpy(np.float32)
+    y = samples["class"].to_numpy()
+    groups = samples["plot_id"].to_numpy()
+    Xs = samples[["x", "y", *features]] if project.validation.design == "blocks" else X
+    folds = assign_folds(splitter, Xs, y, groups)
+    oof = np.full((len(samples), len(project.classes.names)), np.nan, np.float32)
+    for k in progress_bar(np.unique(folds), desc="cross-validating", unit="fold", disable=not progress):
+        test = folds == k
+        model = make_model(project).fit(X[~test], y[~test])
+        oof[test] = model.predict_proba(X[test])
+    return oof, folds
+
+
+def run_project(project: Project | str | Path, *, progress: bool = True) -> RunResult:
+    """Run a project end to end and write its run folder.
+
+    Examples
+    --------
+    >>> result = run_project("demo/project.toml")  # doctest: +SKIP
+    >>> print(result.summary())                     # doctest: +SKIP
+    """
+    from .accuracy import accuracy_measures, error_matrix
+
+    if not isinstance(project, Project):
+        project = load_project(project)
+    run_dir = check_writable(project.run_dir)
+    manifest = Manifest(run_dir, project)
+    scheme = ClassScheme(project.classes.names, project.classes.parents)
+
+    with manifest.step("inputs") as rec:
+        _record_inputs(manifest, project)
+        grid = project_grid(project)
+        inputs = load_inputs(project, grid)
+        rec["grid"] = grid.to_dict()
+        rec["layers"] = {"optical": inputs.optical.attrs, "dem": inputs.dem.attrs,
+                         "sar": inputs.sar.attrs if inputs.sar is not None else None}
+        rec["checks"] = plausibility_checks(project, inputs)
+
+    with manifest.step("features") as rec:
+        cube = build_cube(inputs, project.features.select, project.features.params)
+        cube = save_cube(cube, run_dir / "features.zarr", chunk=project.output.chunk_size)
+        rec["features"] = {k: dict(v.attrs) for k, v in cube.data_vars.items()}
+
+    with manifest.step("samples") as rec:
+        plots = read_plots(project.plots.path, class_field=project.plots.class_field, id_field=project.plots.id_field,
+                           classes=project.classes.names, grid=grid, aoi=read_aoi(project))
+        px = plot_pixels(plots, grid, inward_buffer_m=project.samples.inward_buffer_m,
+                         max_pixels_per_plot=project.samples.max_pixels_per_plot, seed=project.project.seed)
+        samples = extract_samples(cube, px, grid)
+        features = feature_names(samples)
+        rec["missing_before_drop"] = missing_report(samples, features).sum(axis=1).astype(int).to_dict()
+        samples = drop_incomplete(samples, features)
+        write_table(samples, run_dir / "samples.parquet")
+        balance = class_balance(samples)
+        rec["class_balance"] = balance.to_dict(orient="records")
+        rec["n_samples"], rec["n_plots"] = len(samples), int(samples["plot_id"].nunique())
+
+    with manifest.step("validation") as rec:
+        oof, folds = cross_validate(project, samples, features, progress=progress)
+        vdir = run_dir / "validation"
+        pred = np.array(project.classes.names)[np.argmax(oof, axis=1)]
+        write_table(pd.DataFrame({"plot_id": samples["plot_id"], "class": samples["class"], "fold": folds,
+                                  "predicted": pred, **{f"p_{c}": oof[:, i] for i, c in
+                                                         enumerate(project.classes.names)}}),
+                    vdir / "oof_predictions.parquet")
+        matrix = error_matrix(samples["class"].to_numpy(), pred, list(project.classes.names))
+        write_table(matrix.reset_index(names="map \\ reference"), vdir / "error_matrix.csv")
+        metrics = _metrics_dict(accuracy_measures(matrix))
+        metrics["design"] = project.validation.design
+        metrics["n_folds"] = int(len(np.unique(folds)))
+        metrics["note"] = ("Spatial cross-validation serves to choose models and predictors; the inventory's "
+                           "accuracy and areas come from an independent probability sample.")
+        write_json(metrics, vdir / "metrics.json")
+        rec["overall_accuracy"] = metrics["overall_accuracy"]
+
+    with manifest.step("model") as rec:
+        model = make_model(project).fit(samples[features].to_numpy(np.float32), samples["class"].to_numpy())
+        save_bundle(model, run_dir / "model", features=features, scheme=scheme,
+                    training_hash=data_hash(samples, features), extra={"config_sha256": manifest.data["config_sha256"]})
+        rec["n_features"] = len(features)
+
+    with manifest.step("mapping") as rec:
+        valid = inputs.aoi
+        maps = predict_map(model, cube, features, grid, run_dir / "maps", valid=valid,
+                           class_names=project.classes.names, window_size=project.output.chunk_size,
+                           progress=progress)
+        areas = class_areas(maps["class"], project.classes.names, grid.pixel_area_m2)
+        write_table(areas, run_dir / "areas.csv")
+        rec["outputs"] = {k: str(v.relative_to(run_dir)) for k, v in maps.items()}
+
+    manifest.data["finished"] = dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")
+    manifest.save()
+    return RunResult(run_dir, manifest.data, areas, metrics, balance)
+
+
+def _metrics_dict(measures: Any) -> dict[str, Any]:
+    """Flatten the accuracy module's result into JSON-ready numbers."""
+    if isinstance(measures, dict):
+        return {k: (v.to_dict(orient="records") if isinstance(v, pd.DataFrame) else v) for k, v in measures.items()}
+    return dict(measures)
+
+
+def plausibility_checks(project: Project, inputs) -> dict[str, Any]:
+    """Reflectance offset/scale and SAR unit checks on a sample of each layer; raise on a likely mislabel."""
+    from .features.optical import check_reflectance
+    from .features.sar import check_sar_units
+
+    out: dict[str, Any] = {}
+    step = max(1, inputs.grid.height // 256)
+    for scene, t in zip(sorted(project.optical, key=lambda s: s.date), inputs.optical["time"].values, strict=True):
+        sub = inputs.optical.sel(time=t).isel(y=slice(None, None, step), x=slice(None, None, step)).compute()
+        out[f"optical {scene.date}"] = check_reflectance(sub, name=scene.path.name)
+    if inputs.sar is not None:
+        for scene, t in zip(sorted(project.sar, key=lambda s: s.date), inputs.sar["time"].values, strict=True):
+            sub = inputs.sar.sel(time=t).isel(y=slice(None, None, step), x=slice(None, None, step)).compute()
+            out[f"sar {scene.date}"] = check_sar_units(sub, "linear", name=scene.path.name)
+    return out
+
+
+def format_summary(result: RunResult) -> str:
+    """The short printed summary: class areas, cross-validated accuracy, the caution."""
+    m = result.metrics
+    lines = [f"wetlandflow run: {result.run_dir}", "",
+             f"Cross-validated overall accuracy ({m.get('design')} design, {m.get('n_folds')} folds): "
+             f"{m.get('overall_accuracy', float('nan')):.3f}", "",
+             "Mapped class areas (pixel counts; not error-adjusted):"]
+    a = result.areas
+    for name, ha, share in zip(a["class"], a["mapped_area_ha"], a["mapped_share"], strict=True):
+        lines.append(f"  {name:<12s} {ha:>12,.1f} ha ({100 * share:5.1f} %)")
+    lines += ["", "Outputs: maps/probability.tif, maps/class.tif, maps/confidence.tif, validation/, model/, "
+              "areas.csv, manifest.json", "", f"CAUTION: {CAUTION}"]
+    return "\n".join(lines)
+

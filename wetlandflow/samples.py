@@ -1,0 +1,127 @@
+"""Training samples from plots: one row per pixel, grouped by plot.
+
+The samples table has columns ``plot_id``, ``class``, ``x``, ``y`` and then
+one column per feature.  Polygons give all pixels whose centre falls inside
+(optionally after an inward buffer, to drop mixed edge pixels), capped per
+plot by a seeded random subsample; points give the pixel they fall in.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+from rasterio.features import rasterize
+
+from .errors import SamplesError
+from .grid import Grid
+from .io import read_vector
+
+
+def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...], grid: Grid, aoi=None):
+    """Read and check training plots; return a GeoDataFrame in the grid CRS with ``plot_id`` and ``class``."""
+    gdf = read_vector(path, what="plot file")
+    where = f"plot file {path}"
+    if class_field not in gdf.columns:
+        raise SamplesError(f"{where}: no class field {class_field!r}; fields are {list(gdf.columns.drop('geometry'))}. "
+                           "Set plots.class_field in the project file")
+    if id_field and id_field not in gdf.columns:
+        raise SamplesError(f"{where}: no id field {id_field!r}; fields are {list(gdf.columns.drop('geometry'))}. "
+                           "Set plots.id_field in the project file, or leave it empty for one id per feature")
+    ids = gdf[id_field].astype(str) if id_field else pd.Series([f"plot-{i + 1}" for i in range(len(gdf))],
+                                                               index=gdf.index)
+    gdf = gdf.assign(plot_id=ids.values, **{"class": gdf[class_field].astype(str).str.strip().values})
+    empty = gdf.geometry.isna() | gdf.geometry.is_empty
+    if empty.any():
+        raise SamplesError(f"{where}: {int(empty.sum())} plot(s) with empty geometry, ids "
+                           f"{gdf.loc[empty, 'plot_id'].tolist()[:10]}; delete or redraw them")
+    invalid = ~gdf.geometry.is_valid
+    if invalid.any():
+        raise SamplesError(f"{where}: {int(invalid.sum())} plot(s) with invalid (e.g. self-intersecting) geometry, "
+                           f"ids {gdf.loc[invalid, 'plot_id'].tolist()[:10]}; repair them (e.g. make valid) and save")
+    unknown = sorted(set(gdf["class"]) - set(classes))
+    if unknown:
+        raise SamplesError(f"{where}: label(s) {unknown} are not in the class scheme {list(classes)}; "
+                           "fix the labels or add the class to [classes].names")
+    dup = gdf.groupby("plot_id").size()
+    if id_field and (dup > 1).any():
+        # multipart plots with one id are fine when they share a label; conflicting labels are not
+        conflict = gdf.groupby("plot_id")["class"].nunique()
+        bad = conflict[conflict > 1].index.tolist()
+        if bad:
+            raise SamplesError(f"{where}: duplicate plot id(s) with different labels: {bad[:10]}; "
+                               "give each plot a unique id")
+    gdf = gdf.to_crs(grid.crs)
+    if aoi is not None:
+        inside = gdf.geometry.intersects(aoi.to_crs(grid.crs).union_all())
+        if not inside.any():
+            raise SamplesError(f"{where}: no plot lies inside the AOI; check the plot file's CRS and the AOI")
+        if (~inside).any():
+            raise SamplesError(f"{where}: {int((~inside).sum())} plot(s) lie outside the AOI, ids "
+                               f"{gdf.loc[~inside, 'plot_id'].tolist()[:10]}; remove them or enlarge the AOI")
+    return gdf[["plot_id", "class", "geometry"]]
+
+
+def plot_pixels(plots, grid: Grid, *, inward_buffer_m: float = 0.0, max_pixels_per_plot: int | None = None,
+                seed: int = 0) -> pd.DataFrame:
+    """Pixel (row, col) of every plot: polygons by centre-inside rule, points by containing pixel."""
+    rng = np.random.default_rng(seed)
+    geoms = plots.geometry
+    if inward_buffer_m > 0:
+        geoms = geoms.where(geoms.geom_type.isin(["Point", "MultiPoint"]), geoms.buffer(-inward_buffer_m))
+    frames = []
+    poly = geoms.geom_type.isin(["Polygon", "MultiPolygon"]) & ~geoms.is_empty
+    if poly.any():
+        index = rasterize(((g, i + 1) for i, g in zip(np.flatnonzero(poly), geoms[poly], strict=True)),
+                          out_shape=grid.shape, transform=grid.transform, fill=0, dtype="int32")
+        rows, cols = np.nonzero(index)
+        frames.append(pd.DataFrame({"i": index[rows, cols] - 1, "row": rows, "col": cols}))
+    pts = geoms.geom_type.isin(["Point"])
+    if pts.any():
+        r, c = grid.rowcol(geoms[pts].x.values, geoms[pts].y.values)
+        frames.append(pd.DataFrame({"i": np.flatnonzero(pts), "row": r, "col": c}))
+    px = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=["i", "row", "col"])
+    px = px[(px.row >= 0) & (px.row < grid.height) & (px.col >= 0) & (px.col < grid.width)]
+    if max_pixels_per_plot:
+        keys = rng.random(len(px))
+        px = (px.assign(_k=keys).sort_values(["i", "_k"]).groupby("i", sort=False).head(max_pixels_per_plot)
+              .drop(columns="_k"))
+    px = px.sort_values(["i", "row", "col"]).reset_index(drop=True)
+    px["plot_id"] = plots["plot_id"].values[px["i"].values]
+    px["class"] = plots["class"].values[px["i"].values]
+    return px.drop(columns="i")
+
+
+def extract_samples(cube: xr.Dataset, pixels: pd.DataFrame, grid: Grid) -> pd.DataFrame:
+    """Feature values at the given pixels, as the samples table."""
+    rows = xr.DataArray(pixels["row"].to_numpy(), dims="sample")
+    cols = xr.DataArray(pixels["col"].to_numpy(), dims="sample")
+    values = cube.isel(y=rows, x=cols).compute()
+    x, y = grid.xy_coords()
+    table = pd.DataFrame({
+        "plot_id": pixels["plot_id"].to_numpy(), "class": pixels["class"].to_numpy(),
+        "x": x[pixels["col"].to_numpy()], "y": y[pixels["row"].to_numpy()],
+    })
+    feats = pd.DataFrame({k: np.asarray(v.values, dtype=np.float32) for k, v in values.data_vars.items()})
+    return pd.concat([table, feats], axis=1)
+
+
+def missing_report(samples: pd.DataFrame, features: list[str]) -> pd.DataFrame:
+    """NaN count per feature and class, reported before any model sees the data."""
+    nan = samples[features].isna()
+    return nan.groupby(samples["class"]).sum().T.rename_axis("feature")
+
+
+def class_balance(samples: pd.DataFrame) -> pd.DataFrame:
+    """Plots and pixels per class."""
+    g = samples.groupby("class")
+    return pd.DataFrame({"plots": g["plot_id"].nunique(), "pixels": g.size()}).reset_index()
+
+
+def drop_incomplete(samples: pd.DataFrame, features: list[str], *, policy: str = "drop") -> pd.DataFrame:
+    """Apply the missing-data policy: ``drop`` rows with any NaN feature, ``keep`` them (the model sees NaN)."""
+    if policy == "keep":
+        return samples
+    if policy != "drop":
+        raise ValueError(f"policy must be 'drop' or 'keep', got {policy!r}")
+    return samples[samples[features].notna().all(axis=1)].reset_index(drop=True)
