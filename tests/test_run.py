@@ -1,0 +1,72 @@
+"""End to end on the default-size demo: the run folder, its georeferencing, and accuracy against the truth."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import rasterio
+
+from wetlandflow import CAUTION
+from wetlandflow.demo import load_truth
+from wetlandflow.inputs import project_grid
+from wetlandflow.project import load_project
+
+
+def test_run_folder_is_complete(demo_run):
+    d = demo_run.run_dir
+    for rel in ("manifest.json", "features.zarr", "samples.parquet", "validation/error_matrix.csv",
+                "validation/metrics.json", "validation/oof_predictions.parquet", "model/bundle.json",
+                "maps/probability.tif", "maps/class.tif", "maps/confidence.tif", "areas.csv"):
+        assert (d / rel).exists(), rel
+    manifest = json.loads((d / "manifest.json").read_text())
+    assert all(s["status"] == "done" for s in manifest["steps"].values())
+    assert set(manifest["steps"]) == {"inputs", "features", "samples", "validation", "model", "mapping"}
+    assert all(len(v["sha256"]) == 64 for v in manifest["inputs"].values())
+    assert manifest["versions"]["gdal"] and manifest["versions"]["proj"]
+    assert not list(d.rglob("*.partial"))
+
+
+def test_maps_are_on_the_grid(demo_run):
+    project = load_project(demo_run.run_dir.parent.parent / "project.toml")
+    grid = project_grid(project)
+    for name in ("probability", "class", "confidence"):
+        with rasterio.open(demo_run.run_dir / "maps" / f"{name}.tif") as src:
+            assert src.crs.to_string() == grid.crs
+            assert src.transform == grid.transform
+            assert (src.height, src.width) == grid.shape
+    with rasterio.open(demo_run.run_dir / "maps" / "probability.tif") as src:
+        assert src.descriptions == project.classes.names
+
+
+def test_probabilities_sum_to_one_and_class_is_argmax(demo_run):
+    with rasterio.open(demo_run.run_dir / "maps" / "probability.tif") as src:
+        p = src.read()
+    with rasterio.open(demo_run.run_dir / "maps" / "class.tif") as src:
+        c = src.read(1)
+    valid = c > 0
+    assert valid.mean() > 0.8
+    np.testing.assert_allclose(p[:, valid].sum(axis=0), 1.0, atol=1e-5)
+    np.testing.assert_array_equal(c[valid], np.argmax(p[:, valid], axis=0) + 1)
+    assert np.isnan(p[:, ~valid]).all()
+
+
+def test_map_accuracy_against_truth_far_above_chance(demo_run):
+    truth = load_truth(demo_run.run_dir.parent.parent).values
+    with rasterio.open(demo_run.run_dir / "maps" / "class.tif") as src:
+        c = src.read(1)
+    both = (truth > 0) & (c > 0)
+    acc = (truth[both] == c[both]).mean()
+    shares = np.bincount(truth[both], minlength=7)[1:] / both.sum()
+    # chance agreement of a map with the same class shares drawn independently: sum of squared shares
+    chance = float((shares**2).sum())
+    assert acc > chance + 0.3, (acc, chance)
+    assert acc > 0.7
+
+
+def test_summary_states_accuracy_areas_and_caution(demo_run):
+    text = demo_run.summary()
+    assert "overall accuracy" in text and "ha" in text
+    assert CAUTION in text
+    for name in ("upland", "open_water", "marsh", "swamp", "fen", "bog"):
+        assert name in text
