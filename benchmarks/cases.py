@@ -1,0 +1,143 @@
+"""The benchmark cases: wetlandflow's path against the plain baseline a user would otherwise write.
+
+Work is counted in pixels, so every throughput is in Mpx/s.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from _harness import case, timed
+
+BANDS = ("blue", "green", "red", "re1", "re2", "re3", "nir", "nir_narrow", "swir1", "swir2")
+# ten normalised differences over the ten bands (the index set of a typical cube)
+PAIRS = [("nir", "red"), ("green", "nir"), ("nir", "swir1"), ("green", "swir1"), ("nir", "re1"), ("nir", "re2"),
+         ("nir", "re3"), ("nir_narrow", "re1"), ("swir1", "swir2"), ("re3", "red")]
+
+
+def _reflectance(n: int, seed: int = 0) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    return rng.uniform(0.01, 0.5, size=(len(BANDS), n, n)).astype(np.float32)
+
+
+# -- ten normalised-difference indices --------------------------------------------------------------------------
+indices = case("indices", unit="Mpx/s", baseline="numpy",
+               description="ten normalised-difference indices on an n x n x 10-band reflectance array "
+                           "(n = 4096, quick 2048)")
+
+
+@indices.variant("numpy")
+def _indices_numpy(quick: bool, repeat: int):
+    n = 2048 if quick else 4096
+    r = _reflectance(n)
+    idx = {b: i for i, b in enumerate(BANDS)}
+
+    def work():
+        return [(r[idx[a]] - r[idx[b]]) / (r[idx[a]] + r[idx[b]]) for a, b in PAIRS]
+
+    return n * n, timed(work, repeat)
+
+
+@indices.variant("wetlandflow")
+def _indices_cube(quick: bool, repeat: int):
+    import dask
+    import xarray as xr
+
+    from wetlandflow.features.optical import normalized_difference
+
+    n = 2048 if quick else 4096
+    r = xr.DataArray(_reflectance(n), dims=("band", "y", "x"),
+                     coords={"band": list(BANDS), "y": np.arange(n) * -10.0, "x": np.arange(n) * 10.0})
+    r = r.chunk({"band": -1, "y": 1024, "x": 1024})
+
+    def work():
+        outs = [normalized_difference(r.sel(band=a), r.sel(band=b), name=f"{a}_{b}") for a, b in PAIRS]
+        return dask.compute(*[o.data for o in outs])
+
+    return n * n, timed(work, repeat)
+
+
+# -- per-pixel median of 12 dates, 30 % missing ------------------------------------------------------------------
+median = case("median", unit="Mpx/s", baseline="np.nanmedian",
+              description="per-pixel median over 12 dates with 30 % missing, n x n (n = 2048, quick 1024)")
+
+
+def _stack(n: int) -> np.ndarray:
+    rng = np.random.default_rng(1)
+    s = rng.uniform(0, 1, size=(12, n, n)).astype(np.float32)
+    s[rng.random(s.shape) < 0.3] = np.nan
+    return s
+
+
+@median.variant("np.nanmedian")
+def _median_numpy(quick: bool, repeat: int):
+    n = 1024 if quick else 2048
+    s = _stack(n)
+    return n * n, timed(lambda: np.nanmedian(s, axis=0), max(1, repeat - 2))
+
+
+@median.variant("bottleneck")
+def _median_bottleneck(quick: bool, repeat: int):
+    import bottleneck as bn
+
+    n = 1024 if quick else 2048
+    s = _stack(n)
+    return n * n, timed(lambda: bn.nanmedian(s, axis=0), repeat)
+
+
+@median.variant("wetlandflow")
+def _median_kernel(quick: bool, repeat: int):
+    import xarray as xr
+
+    from wetlandflow.features._kernels import nanmedian_time
+
+    n = 1024 if quick else 2048
+    da = xr.DataArray(_stack(n), dims=("time", "y", "x"))
+    return n * n, timed(lambda: nanmedian_time(da).values, repeat)
+
+
+# -- terrain routing -------------------------------------------------------------------------------------------
+def _dem(n: int):
+    import xarray as xr
+    from scipy.ndimage import gaussian_filter
+
+    rng = np.random.default_rng(2)
+    z = gaussian_filter(rng.normal(size=(n, n)), 12) * 400 + gaussian_filter(rng.normal(size=(n, n)), 2) * 5
+    yy, xx = np.mgrid[0:n, 0:n]
+    z = (z + 0.002 * xx * 10 + 0.001 * yy * 10).astype(np.float32)
+    return xr.DataArray(z, dims=("y", "x"), coords={"y": 1e6 - np.arange(n) * 10.0 - 5, "x": np.arange(n) * 10.0 + 5})
+
+
+routing = case("routing", unit="Mpx/s", baseline="wetlandflow d8",
+               description="fill + flow directions + accumulation on an n x n DEM (n = 4096, quick 1024)")
+
+
+@routing.variant("wetlandflow d8")
+def _routing_d8(quick: bool, repeat: int):
+    from wetlandflow.features.terrain import flow_accumulation
+
+    n = 1024 if quick else 4096
+    dem = _dem(n)
+    return n * n, timed(lambda: flow_accumulation(dem, method="d8").values, 1)
+
+
+@routing.variant("wetlandflow mfd")
+def _routing_mfd(quick: bool, repeat: int):
+    from wetlandflow.features.terrain import flow_accumulation
+
+    n = 1024 if quick else 4096
+    dem = _dem(n)
+    return n * n, timed(lambda: flow_accumulation(dem, method="mfd").values, 1)
+
+
+# -- MRVBF -----------------------------------------------------------------------------------------------------
+mrvbf = case("mrvbf", unit="Mpx/s", baseline="wetlandflow",
+             description="MRVBF (Gallant & Dowling 2003) on an n x n DEM (n = 4096, quick 1024)")
+
+
+@mrvbf.variant("wetlandflow")
+def _mrvbf(quick: bool, repeat: int):
+    from wetlandflow.features.terrain import mrvbf as mrvbf_fn
+
+    n = 1024 if quick else 4096
+    dem = _dem(n)
+    return n * n, timed(lambda: mrvbf_fn(dem).values, 1)
