@@ -238,11 +238,15 @@ def run_project(project: Project | str | Path, *, progress: bool = True) -> RunR
     return RunResult(run_dir, manifest.data, areas, metrics, balance)
 
 
-def _metrics_dict(measures: Any) -> dict[str, Any]:
-    """Flatten the accuracy module's result into JSON-ready numbers."""
-    if isinstance(measures, dict):
-        return {k: (v.to_dict(orient="records") if isinstance(v, pd.DataFrame) else v) for k, v in measures.items()}
-    return dict(measures)
+def _metrics_dict(measures: dict[str, Any]) -> dict[str, Any]:
+    """Flatten :func:`accuracy.accuracy_measures` into JSON-ready numbers."""
+    o = measures["overall"]
+    return {"overall_accuracy": float(o.value), "overall_accuracy_se": float(o.se),
+            "overall_accuracy_ci95_half_width": float(o.ci), "n": int(measures["n"]),
+            "per_class": measures["per_class"].to_dict(orient="records"),
+            "quantity_disagreement": float(measures["quantity_disagreement"]),
+            "allocation_disagreement": float(measures["allocation_disagreement"]),
+            "standard_error_note": measures["note"]}
 
 
 def plausibility_checks(project: Project, inputs) -> dict[str, Any]:
