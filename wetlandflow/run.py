@@ -111,7 +111,7 @@ def feature_names(samples: pd.DataFrame) -> list[str]:
     return [c for c in samples.columns if c not in ("plot_id", "class", "x", "y")]
 
 
-def make_splitter(project: Project):
+def make_splitter(project: Project, coords: np.ndarray):
     """The validation design from the project file, as a scikit-learn splitter."""
     from sklearn.model_selection import GroupKFold
 
@@ -119,7 +119,8 @@ def make_splitter(project: Project):
 
     v = project.validation
     if v.design == "blocks":
-        return SpatialBlockKFold(n_splits=v.n_folds, block_size_m=v.block_size_m, random_state=project.project.seed)
+        return SpatialBlockKFold(n_splits=v.n_folds, block_size_m=v.block_size_m, random_state=project.project.seed,
+                                 coords=coords)
     if v.design == "group":
         return GroupKFold(n_splits=v.n_folds)
     from .validation import random_pixel_kfold
@@ -142,12 +143,11 @@ def cross_validate(project: Project, samples: pd.DataFrame, features: list[str],
     from .progress import progress_bar
     from .validation import assign_folds
 
-    splitter = make_splitter(project)
+    splitter = make_splitter(project, samples[["x", "y"]].to_numpy())
     X = samples[features].to_numpy(np.float32)
     y = samples["class"].to_numpy()
     groups = samples["plot_id"].to_numpy()
-    Xs = samples[["x", "y", *features]] if project.validation.design == "blocks" else X
-    folds = assign_folds(splitter, Xs, y, groups)
+    folds = assign_folds(splitter, X, y, groups)
     oof = np.full((len(samples), len(project.classes.names)), np.nan, np.float32)
     for k in progress_bar(np.unique(folds), desc="cross-validating", unit="fold", disable=not progress):
         test = folds == k
