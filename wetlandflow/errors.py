@@ -70,3 +70,7 @@ class OutputError(WetlandflowError, OSError):
 
 class BudgetError(WetlandflowError, MemoryError):
     """A computation would exceed the memory or time budget it was given."""
+
+
+class ParameterError(WetlandflowError, ValueError):
+    """A function argument outside its allowed values (names the parameter, the value and the choices)."""
