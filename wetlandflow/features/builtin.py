@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import xarray as xr
 
+from . import mrvbf as mrvbf_module
 from . import optical, sar, terrain
 from .registry import FeatureInputs, feature
 
@@ -125,10 +126,10 @@ def hand(inputs: FeatureInputs, *, channel_threshold_m2: float = 2e5) -> xr.Data
 @feature("mrvbf", domain="terrain", needs=("dem",))
 def mrvbf(inputs: FeatureInputs) -> xr.DataArray:
     """Multi-resolution valley bottom flatness, Gallant & Dowling (2003)."""
-    return terrain.mrvbf(dem_in_memory(inputs))
+    return mrvbf_module.mrvbf(dem_in_memory(inputs))
 
 
 @feature("mrrtf", domain="terrain", needs=("dem",))
 def mrrtf(inputs: FeatureInputs) -> xr.DataArray:
     """Multi-resolution ridge top flatness, Gallant & Dowling (2003)."""
-    return terrain.mrrtf(dem_in_memory(inputs))
+    return mrvbf_module.mrrtf(dem_in_memory(inputs))

@@ -84,7 +84,7 @@ def save_cube(cube: xr.Dataset, path: str | Path, *, chunk: int = 512) -> xr.Dat
     for v in cube.data_vars.values():
         v.encoding = {}
     with atomic_path(path) as tmp:
-        cube.to_zarr(tmp, mode="w", consolidated=True)
+        cube.to_zarr(tmp, mode="w", consolidated=True, zarr_format=2)
     return open_cube(path)
 
 
