@@ -51,10 +51,16 @@ def test_probabilities_sum_to_one_and_class_is_argmax(demo_run):
     assert np.isnan(p[:, ~valid]).all()
 
 
+def map_and_truth(demo_run):
+    import rioxarray
+
+    c = rioxarray.open_rasterio(demo_run.run_dir / "maps" / "class.tif").isel(band=0, drop=True)
+    truth = load_truth(demo_run.run_dir.parent.parent).reindex_like(c, method="nearest", tolerance=1.0)
+    return c.values, truth.values
+
+
 def test_map_accuracy_against_truth_far_above_chance(demo_run):
-    truth = load_truth(demo_run.run_dir.parent.parent).values
-    with rasterio.open(demo_run.run_dir / "maps" / "class.tif") as src:
-        c = src.read(1)
+    c, truth = map_and_truth(demo_run)
     both = (truth > 0) & (c > 0)
     acc = (truth[both] == c[both]).mean()
     shares = np.bincount(truth[both], minlength=7)[1:] / both.sum()

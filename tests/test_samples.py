@@ -103,3 +103,5 @@ def test_balance_and_missing_policy():
     assert class_balance(s).set_index("class").loc["fen", "pixels"] == 2
     assert len(drop_incomplete(s, ["f"])) == 2
     assert len(drop_incomplete(s, ["f"], policy="keep")) == 3
+    s.loc[2, "f"] = np.nan
+    assert len(drop_incomplete(s, ["f"], policy="keep")) == 1  # rows with every feature NaN always go

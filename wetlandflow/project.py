@@ -125,6 +125,7 @@ class ValidationSection:
 class SamplesSection:
     max_pixels_per_plot: int = 200
     inward_buffer_m: float = 0.0
+    missing: str = "keep"  # "keep": the model sees NaN (handled natively); "drop": drop pixels with any NaN
 
 
 @dataclass(frozen=True)
@@ -342,6 +343,7 @@ def _validate(p: Project) -> None:
     _check_classes(p.classes)
     _check_seasons(p.seasons)
     _check_choice(p.model.kind, MODEL_KINDS, "model.kind")
+    _check_choice(p.samples.missing, ("keep", "drop"), "samples.missing")
     _check_choice(p.validation.design, CV_DESIGNS, "validation.design")
     if p.validation.n_folds < 2:
         raise ProjectFileError(f"n_folds must be >= 2, got {p.validation.n_folds}", key="validation.n_folds")

@@ -194,7 +194,7 @@ def run_project(project: Project | str | Path, *, progress: bool = True) -> RunR
         samples = extract_samples(cube, px, grid)
         features = feature_names(samples)
         rec["missing_before_drop"] = missing_report(samples, features).sum(axis=1).astype(int).to_dict()
-        samples = drop_incomplete(samples, features)
+        samples = drop_incomplete(samples, features, policy=project.samples.missing)
         write_table(samples, run_dir / "samples.parquet")
         balance = class_balance(samples)
         rec["class_balance"] = balance.to_dict(orient="records")

@@ -119,9 +119,14 @@ def class_balance(samples: pd.DataFrame) -> pd.DataFrame:
 
 
 def drop_incomplete(samples: pd.DataFrame, features: list[str], *, policy: str = "drop") -> pd.DataFrame:
-    """Apply the missing-data policy: ``drop`` rows with any NaN feature, ``keep`` them (the model sees NaN)."""
-    if policy == "keep":
-        return samples
-    if policy != "drop":
+    """Apply the missing-data policy.
+
+    ``drop`` removes rows with any NaN feature; ``keep`` keeps them (the model
+    routes NaN natively, the same way at fit and at predict time) and removes
+    only rows in which every feature is NaN, which carry nothing to learn from.
+    """
+    if policy not in ("keep", "drop"):
         raise ValueError(f"policy must be 'drop' or 'keep', got {policy!r}")
-    return samples[samples[features].notna().all(axis=1)].reset_index(drop=True)
+    present = samples[features].notna()
+    keep = present.all(axis=1) if policy == "drop" else present.any(axis=1)
+    return samples[keep].reset_index(drop=True)
