@@ -67,8 +67,8 @@ class _pandas_wide:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="wetlandflow", description="Wetland inventories from EO rasters and plots. "
-                                + CAUTION)
+    p = argparse.ArgumentParser(prog="wetlandflow", description="Wetland inventories from EO rasters and plots.",
+                                epilog=f"CAUTION: {CAUTION}", formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--version", action="version", version=f"wetlandflow {__version__}")
     p.add_argument("--debug", action="store_true", help="show the full traceback on errors")
     sub = p.add_subparsers(dest="command", required=True)
