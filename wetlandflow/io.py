@@ -136,3 +136,10 @@ def check_disk_space(folder: str | Path, needed_bytes: int) -> None:
             f"not enough disk space in {folder}: the outputs need about {needed_bytes / 1e9:.2f} GB, "
             f"{free / 1e9:.2f} GB free; free some space or choose another project.output_dir"
         )
+
+
+def write_figure(fig: Any, path: str | Path, *, dpi: int = 110) -> Path:
+    """Save a matplotlib Figure as PNG, atomically."""
+    with atomic_path(path) as tmp:
+        fig.savefig(tmp, format="png", dpi=dpi)
+    return Path(path)

@@ -21,7 +21,7 @@ import pandas as pd
 from . import CAUTION, __version__
 from .features.cube import build_cube, save_cube
 from .inputs import load_inputs, project_grid, read_aoi
-from .io import check_writable, sha256_file, write_json, write_table
+from .io import check_writable, sha256_file, write_figure, write_json, write_table
 from .mapping import class_areas, predict_map
 from .models import ClassScheme, WetlandClassifier, data_hash, save_bundle
 from .project import Project, config_hash, load_project, to_dict
@@ -213,6 +213,9 @@ def run_project(project: Project | str | Path, *, progress: bool = True) -> RunR
         metrics = _metrics_dict(accuracy_measures(matrix))
         metrics["design"] = project.validation.design
         metrics["n_folds"] = int(len(np.unique(folds)))
+        rec["diagnostics"] = write_fold_diagnostics(vdir, samples, folds, inputs.aoi, grid,
+                                                    block_size_m=project.validation.block_size_m,
+                                                    seed=project.project.seed)
         metrics["note"] = ("Spatial cross-validation serves to choose models and predictors; the inventory's "
                            "accuracy and areas come from an independent probability sample.")
         write_json(metrics, vdir / "metrics.json")
@@ -236,6 +239,35 @@ def run_project(project: Project | str | Path, *, progress: bool = True) -> RunR
     manifest.data["finished"] = dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")
     manifest.save()
     return RunResult(run_dir, manifest.data, areas, metrics, balance)
+
+
+def prediction_points(aoi, grid, *, n: int, seed: int) -> np.ndarray:
+    """Coordinates of ``n`` random pixel centres inside the AOI: the prediction task's locations."""
+    inside = np.flatnonzero(np.asarray(aoi.values).ravel())
+    pick = np.random.default_rng(seed).choice(inside, size=min(n, inside.size), replace=False)
+    x, y = grid.xy_coords()
+    return np.column_stack([x[pick % grid.width], y[pick // grid.width]])
+
+
+def write_fold_diagnostics(vdir: Path, samples: pd.DataFrame, folds: np.ndarray, aoi, grid, *,
+                           block_size_m: float, seed: int) -> dict[str, Any]:
+    """Folds, per-class fold counts, the fold map and the distance ECDFs, into ``validation/``."""
+    from .validation import cv_distance_diagnostics, fold_class_counts, plot_distance_ecdf, plot_folds
+
+    write_table(pd.DataFrame({"plot_id": samples["plot_id"], "x": samples["x"], "y": samples["y"],
+                              "fold": folds}), vdir / "folds.parquet")
+    counts = fold_class_counts(samples["class"], folds, samples["plot_id"])
+    counts.columns = [f"{m}_fold{f}" for m, f in counts.columns]
+    write_table(counts.reset_index(), vdir / "fold_class_counts.csv")
+    diag = cv_distance_diagnostics(samples[["x", "y"]].to_numpy(), {"spatial blocks": folds},
+                                   prediction_points(aoi, grid, n=2000, seed=seed))
+    write_table(diag, vdir / "distance_diagnostics.parquet")
+    for name, fig in (("fold_map.png", plot_folds(samples, folds, block_size_m=block_size_m)),
+                      ("distance_ecdf.png", plot_distance_ecdf(diag))):
+        write_figure(fig, vdir / name)
+    summary = diag.groupby("what")["distance"].median().round(1).to_dict()
+    w = diag["W"].dropna()
+    return {"median_nn_distance_m": summary, "wasserstein_W_m": float(w.iloc[0]) if len(w) else None}
 
 
 def _metrics_dict(measures: dict[str, Any]) -> dict[str, Any]:
