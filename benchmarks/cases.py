@@ -37,23 +37,56 @@ def _indices_numpy(quick: bool, repeat: int):
     return n * n, timed(work, repeat)
 
 
+def _cube(n: int):
+    import xarray as xr
+
+    return xr.DataArray(_reflectance(n), dims=("band", "y", "x"),
+                        coords={"band": list(BANDS), "y": np.arange(n) * -10.0, "x": np.arange(n) * 10.0})
+
+
 @indices.variant("wetlandflow")
 def _indices_cube(quick: bool, repeat: int):
     import dask
-    import xarray as xr
+
+    from wetlandflow.features.optical import normalized_differences
+
+    n = 2048 if quick else 4096
+    r = _cube(n).chunk({"band": -1, "y": 1024, "x": 1024})
+    pairs = {f"{a}_{b}": (a, b) for a, b in PAIRS}
+
+    def work():
+        ds = normalized_differences(r, pairs)
+        return dask.compute(*[v.data for v in ds.data_vars.values()])
+
+    return n * n, timed(work, repeat)
+
+
+@indices.variant("wetlandflow, one call per index")
+def _indices_separate(quick: bool, repeat: int):
+    import dask
 
     from wetlandflow.features.optical import normalized_difference
 
     n = 2048 if quick else 4096
-    r = xr.DataArray(_reflectance(n), dims=("band", "y", "x"),
-                     coords={"band": list(BANDS), "y": np.arange(n) * -10.0, "x": np.arange(n) * 10.0})
-    r = r.chunk({"band": -1, "y": 1024, "x": 1024})
+    r = _cube(n).chunk({"band": -1, "y": 1024, "x": 1024})
 
     def work():
         outs = [normalized_difference(r.sel(band=a), r.sel(band=b), name=f"{a}_{b}") for a, b in PAIRS]
         return dask.compute(*[o.data for o in outs])
 
     return n * n, timed(work, repeat)
+
+
+@indices.variant("numba fused (in memory)")
+def _indices_fused_kernel(quick: bool, repeat: int):
+    from wetlandflow.features.optical import nd_fused_block
+
+    n = 2048 if quick else 4096
+    r = _reflectance(n)
+    idx = {b: i for i, b in enumerate(BANDS)}
+    ia = np.array([idx[a] for a, _ in PAIRS], dtype=np.int64)
+    ib = np.array([idx[b] for _, b in PAIRS], dtype=np.int64)
+    return n * n, timed(lambda: nd_fused_block(r, ia, ib), repeat)  # parallel over pixels
 
 
 # -- per-pixel median of 12 dates, 30 % missing ------------------------------------------------------------------
@@ -93,6 +126,66 @@ def _median_kernel(quick: bool, repeat: int):
     n = 1024 if quick else 2048
     da = xr.DataArray(_stack(n), dims=("time", "y", "x"))
     return n * n, timed(lambda: nanmedian_time(da).values, repeat)
+
+
+# -- seasonal median composite ---------------------------------------------------------------------------------
+composite = case("composite", unit="Mpx/s", baseline="np.nanmedian",
+                 description="seasonal median composite of a 12-date x 10-band stack, 30 % missing, "
+                             "one season of 5 dates, n x n (n = 2048, quick 1024)")
+
+_SEASON = {"summer": ("06-01", "08-31")}
+
+
+def _scenes(n: int):
+    """12 monthly scenes x 10 bands; 5 of them (June to October 1) fall in the season."""
+    import pandas as pd
+    import xarray as xr
+
+    rng = np.random.default_rng(3)
+    s = rng.uniform(0.01, 0.5, size=(12, len(BANDS), n, n)).astype(np.float32)
+    s[np.repeat(rng.random((12, 1, n, n)) < 0.3, len(BANDS), axis=1)] = np.nan  # clouds mask all bands
+    times = pd.to_datetime(["2024-01-15", "2024-02-15", "2024-03-15", "2024-04-15", "2024-05-15", "2024-06-01",
+                            "2024-06-20", "2024-07-10", "2024-08-01", "2024-08-31", "2024-10-15", "2024-11-15"])
+    return xr.DataArray(s, dims=("time", "band", "y", "x"),
+                        coords={"time": times, "band": list(BANDS), "y": np.arange(n) * -10.0,
+                                "x": np.arange(n) * 10.0})
+
+
+@composite.variant("np.nanmedian")
+def _composite_numpy(quick: bool, repeat: int):
+    import warnings
+
+    from wetlandflow.features.optical import season_mask
+
+    n = 1024 if quick else 2048
+    stack = _scenes(n)
+    values = stack.values
+
+    def work():
+        sel = values[season_mask(stack["time"].values, *_SEASON["summer"])]
+        with warnings.catch_warnings():  # all-NaN pixels
+            warnings.simplefilter("ignore", RuntimeWarning)
+            return np.nanmedian(sel, axis=0), np.isfinite(sel).all(axis=1).sum(axis=0)
+
+    return n * n, timed(work, max(1, repeat - 2))
+
+
+@composite.variant("wetlandflow")
+def _composite_wetlandflow(quick: bool, repeat: int):
+    from wetlandflow.features.optical import seasonal_composite
+
+    n = 1024 if quick else 2048
+    stack = _scenes(n)
+    return n * n, timed(lambda: seasonal_composite(stack, _SEASON).compute(), repeat)
+
+
+@composite.variant("wetlandflow (dask chunks)")
+def _composite_dask(quick: bool, repeat: int):
+    from wetlandflow.features.optical import seasonal_composite
+
+    n = 1024 if quick else 2048
+    stack = _scenes(n).chunk({"time": -1, "band": -1, "y": 512, "x": 512})
+    return n * n, timed(lambda: seasonal_composite(stack, _SEASON).compute(), repeat)
 
 
 # -- terrain routing -------------------------------------------------------------------------------------------

@@ -283,6 +283,78 @@ def test_index_attrs_are_fresh_and_band_dim_dropped():
     assert parameters_of(out)["sentinel2"] == ["B08", "B04"]
 
 
+# ---------------------------------------------------------------------------
+# Fused normalised differences
+# ---------------------------------------------------------------------------
+
+# ten pairs over the ten bands: the six listed indices plus four unnamed ones
+FUSED_PAIRS = {**{n: O._ND_SPECS[n][:2] for n in O._ND_SPECS},
+               "nd_nir_re3": ("nir", "re3"), "nd_n2_re1": ("nir_narrow", "re1"),
+               "nd_swir": ("swir1", "swir2"), "nd_re3_red": ("re3", "red")}
+
+
+def zero_sum_reflectance(dtype) -> xr.DataArray:
+    """Random reflectances with some pixels where a + b == 0 (both zero, or opposite signs)."""
+    refl = reflectance(seed=8, dtype=dtype, low=-0.2)
+    refl.loc[{"band": "nir", "y": refl.y[0]}] = 0.0
+    refl.loc[{"band": "red", "y": refl.y[0]}] = 0.0
+    refl.loc[{"band": "swir1", "y": refl.y[1]}] = 0.25
+    refl.loc[{"band": "swir2", "y": refl.y[1]}] = -0.25
+    return refl
+
+
+@pytest.mark.reference
+@pytest.mark.parametrize("dtype", ["float32", "float64"])
+def test_fused_differences_equal_numpy_float64_arithmetic(dtype):
+    """Reference: NumPy, (a - b) / (a + b) in float64 rounded once to the input dtype; NaN where a + b == 0."""
+    refl = zero_sum_reflectance(dtype)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        got = O.normalized_differences(refl, FUSED_PAIRS)
+    for name, (a, b) in FUSED_PAIRS.items():
+        x = refl.sel(band=a).values.astype(np.float64)
+        y = refl.sel(band=b).values.astype(np.float64)
+        with np.errstate(all="ignore"):
+            expected = np.where(x + y != 0, (x - y) / (x + y), np.nan).astype(dtype)
+        assert got[name].dtype == np.dtype(dtype)
+        np.testing.assert_array_equal(got[name].values, expected, err_msg=name)
+    assert np.isnan(got["ndvi"].values[:, 0]).all() and np.isnan(got["nd_swir"].values[:, 1]).all()
+
+
+def test_fused_differences_identical_to_single_index_functions():
+    refl = zero_sum_reflectance("float32").transpose("y", "band", "season", "x")  # band not first
+    got = O.normalized_differences(refl, FUSED_PAIRS)
+    for name in O._ND_SPECS:
+        xr.testing.assert_identical(got[name], O.OPTICAL_INDICES[name](refl))
+    for name, (a, b) in FUSED_PAIRS.items():
+        single = O.normalized_difference(refl.sel(band=a, drop=True), refl.sel(band=b, drop=True), name=name)
+        xr.testing.assert_equal(got[name], single)
+    assert got["nd_swir"].attrs["formula"] == "(swir1 - swir2) / (swir1 + swir2)"
+    assert parameters_of(got["nd_swir"]) == {"bands": ["swir1", "swir2"], "sentinel2": ["B11", "B12"]}
+
+
+def test_fused_differences_lazy_one_task_per_chunk_and_chunking_does_not_matter():
+    refl = zero_sum_reflectance("float32")
+    chunked = refl.chunk({"band": 3, "y": 4, "x": 5})  # band split: rechunked to one chunk
+    lazy = O.normalized_differences(chunked, FUSED_PAIRS)
+    for name, var in lazy.data_vars.items():
+        assert isinstance(var.data, dsa.Array), name
+        assert var.chunks == (((3,), (4, 4), (5, 4))), name
+    xr.testing.assert_identical(lazy.compute(), O.normalized_differences(refl, FUSED_PAIRS))
+    fused_tasks = [k for k in dict(lazy["ndvi"].data.__dask_graph__()) if "nd_fused_block" in str(k[0])]
+    assert len(fused_tasks) == 4  # one kernel call per (y, x) chunk, shared by the ten indices
+
+
+def test_fused_differences_reject_bad_pairs():
+    refl = reflectance()
+    with pytest.raises(ValueError, match=r"'ndvi' is defined as \(nir - red\)"):
+        O.normalized_differences(refl, {"ndvi": ("red", "nir")})
+    with pytest.raises(DataQualityError, match="band 'nir' is missing"):
+        O.normalized_differences(refl.sel(band=["red", "green"]), {"ndvi": ("nir", "red")})
+    with pytest.raises(ValueError, match="pairs is empty"):
+        O.normalized_differences(refl, {})
+
+
 def test_missing_band_names_present_bands():
     refl = reflectance().sel(band=["red", "green"])
     with pytest.raises(DataQualityError, match=r"band 'nir' is missing.*\['red', 'green'\]"):

@@ -65,7 +65,7 @@ def inspect_raster(path: str | Path) -> RasterInfo:
         with rasterio.open(path) as src:
             if src.crs is None:
                 raise AlignmentError(
-                    f"{path}: the raster has no CRS; assign one (e.g. gdal_edit.py -a_srs EPSG:XXXX) and rerun"
+                    f"{path}: the raster has no CRS; assign one (e.g. gdal_edit.py -a_srs EPSG:<code>) and rerun"
                 )
             # read one small block so a truncated file fails here, not mid-run
             src.read(1, window=Window(0, 0, min(16, src.width), min(16, src.height)))

@@ -215,6 +215,30 @@ def quiet_call(func: Callable[..., np.ndarray], *arrays: np.ndarray) -> np.ndarr
         return func(*arrays)
 
 
+@numba.vectorize(["float32(float32)", "float64(float64)"], cache=True)
+def _db_ufunc(x):  # pragma: no cover - compiled
+    # log10 of zero or a negative number is undefined: NaN (run under errstate
+    # by quiet_call, so no warning either).
+    if x > 0:
+        return 10.0 * np.log10(x)
+    return np.nan
+
+
+# Module level, not a closure: dask tokenises the function it maps, and a
+# pickled closure would carry, and recompile, the numba ufunc.
+def _db_block(x: np.ndarray) -> np.ndarray:
+    return quiet_call(_db_ufunc, x)
+
+
+def raw_db(da: xr.DataArray) -> xr.DataArray:
+    """``10 * log10(da)``, NaN where ``da <= 0``, without attrs; float32 stays float32, lazy on dask.
+
+    Shared by the SAR statistics and the water masks; callers add provenance.
+    """
+    dtype = da.dtype if da.dtype in (np.float32, np.float64) else np.dtype(np.float64)
+    return xr.apply_ufunc(_db_block, da.astype(dtype, copy=False), dask="parallelized", output_dtypes=[dtype])
+
+
 def _time_first(da: xr.DataArray, dim: str) -> xr.DataArray:
     """``da`` with ``dim`` first and, if dask-backed, in a single chunk along it.
 
