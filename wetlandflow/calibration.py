@@ -1,0 +1,312 @@
+"""Are the class probabilities honest?  Reliability, Brier score, ECE, recalibration.
+
+A probability map is only as useful as its probabilities are calibrated: of the
+pixels given 0.8 marsh, about 80 % should be marsh.  This module measures that
+on held-out (ideally spatially held-out) predictions and refits a monotone map
+from raw to calibrated probabilities within spatial folds.
+
+Binning convention (all functions): ``n_bins`` equal-width bins on [0, 1],
+closed on the right, ``B_m = ((m-1)/M, m/M]``, with 0 in the first bin, as in
+Guo et al. (2017) and scikit-learn's ``calibration_curve(strategy="uniform")``.
+
+References
+----------
+Brier, G. W. (1950). Verification of forecasts expressed in terms of
+probability. Monthly Weather Review 78(1), 1-3.
+
+Naeini, M. P., Cooper, G. F., Hauskrecht, M. (2015). Obtaining well calibrated
+probabilities using Bayesian binning. Proceedings of the AAAI Conference on
+Artificial Intelligence 29, 2901-2907.
+
+Guo, C., Pleiss, G., Sun, Y., Weinberger, K. Q. (2017). On calibration of modern
+neural networks. Proceedings of the 34th International Conference on Machine
+Learning, PMLR 70, 1321-1330.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from sklearn.base import BaseEstimator, ClassifierMixin, clone
+
+from .errors import ModelError, ParameterError
+
+__all__ = [
+    "CalibratedWetlandClassifier",
+    "brier_score",
+    "expected_calibration_error",
+    "plot_reliability",
+    "reliability_table",
+]
+
+TOP_LABEL = "top_label"
+
+
+# --------------------------------------------------------------------------- inputs
+
+
+def _check(y_true: Any, proba: Any, classes: Any) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """Labels, an (n, k) probability array and the class list, checked against each other."""
+    y = np.asarray(y_true).astype(str)
+    p = np.asarray(proba, dtype=np.float64)
+    cls = [str(c) for c in classes]
+    if p.ndim != 2 or p.shape != (y.size, len(cls)):
+        raise ParameterError(
+            f"proba must have shape (n_samples, n_classes) = ({y.size}, {len(cls)}); received {p.shape}. "
+            "Pass the columns in the order of `classes`."
+        )
+    unknown = sorted(set(y) - set(cls))
+    if unknown:
+        raise ParameterError(f"labels {unknown} are not in classes {cls}; add them or drop those samples.")
+    if not np.isfinite(p).all() or (p < -1e-9).any() or (p > 1 + 1e-9).any():
+        raise ParameterError("proba must hold finite probabilities in [0, 1]; mask NaN rows before scoring.")
+    return y, p, cls
+
+
+def _bin_index(p: np.ndarray, n_bins: int) -> np.ndarray:
+    """Bin of each probability, bins ((m-1)/M, m/M] with 0 in the first."""
+    if not (isinstance(n_bins, (int, np.integer)) and n_bins >= 1):
+        raise ParameterError(f"n_bins must be an int >= 1; got {n_bins!r}.")
+    edges = np.linspace(0.0, 1.0, n_bins + 1)
+    return np.searchsorted(edges[1:-1], p, side="left")
+
+
+def _binned(conf: np.ndarray, hit: np.ndarray, n_bins: int, target: str) -> pd.DataFrame:
+    """Per-bin counts, mean predicted probability and observed frequency."""
+    b = _bin_index(conf, n_bins)
+    n = np.bincount(b, minlength=n_bins)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_p = np.bincount(b, weights=conf, minlength=n_bins) / n
+        obs = np.bincount(b, weights=hit.astype(float), minlength=n_bins) / n
+    edges = np.linspace(0.0, 1.0, n_bins + 1)
+    return pd.DataFrame({"target": target, "bin": np.arange(n_bins), "lower": edges[:-1], "upper": edges[1:],
+                         "n": n, "mean_predicted": mean_p, "observed_frequency": obs})
+
+
+# --------------------------------------------------------------------------- measures
+
+
+def reliability_table(y_true: Any, proba: Any, classes: Any, n_bins: int = 10) -> pd.DataFrame:
+    """Reliability-diagram data, one-vs-rest per class and for the top label.
+
+    Parameters
+    ----------
+    y_true : array-like of str, shape (n,)
+    proba : array-like, shape (n, k)
+        Columns in the order of ``classes``.
+    classes : sequence of str
+    n_bins : int, default 10
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``target, bin, lower, upper, n, mean_predicted,
+        observed_frequency``.  ``target`` is a class name (predicted = that
+        class's probability, observed = label is that class) or ``"top_label"``
+        (predicted = the highest probability, observed = the arg-max class is
+        right).  Empty bins are kept with ``n = 0`` and NaN means, so every
+        target has ``n_bins`` rows.
+    """
+    y, p, cls = _check(y_true, proba, classes)
+    parts = [_binned(p[:, j], y == c, n_bins, c) for j, c in enumerate(cls)]
+    top = np.argmax(p, axis=1)
+    parts.append(_binned(p.max(axis=1), np.asarray(cls)[top] == y, n_bins, TOP_LABEL))
+    return pd.concat(parts, ignore_index=True)
+
+
+def brier_score(y_true: Any, proba: Any, classes: Any) -> float:
+    """Multi-class Brier score, Brier's (1950) original definition.
+
+    ``BS = (1/N) sum_i sum_c (p_ic - o_ic)^2`` with ``o_ic = 1`` if sample ``i``
+    is of class ``c``; 0 is perfect, 2 the worst.  For two classes it is twice
+    the common binary score (``sklearn.metrics.brier_score_loss``).
+
+    Returns
+    -------
+    float
+    """
+    y, p, cls = _check(y_true, proba, classes)
+    onehot = (y[:, None] == np.asarray(cls)[None, :]).astype(float)
+    return float(np.mean(np.sum((p - onehot) ** 2, axis=1)))
+
+
+def expected_calibration_error(y_true: Any, proba: Any, classes: Any, n_bins: int = 15) -> float:
+    """Top-label expected calibration error, Guo et al. (2017), their eq. (3).
+
+    ``ECE = sum_m |B_m| / n * |acc(B_m) - conf(B_m)|`` over ``n_bins``
+    equal-width confidence bins, with confidence the highest class probability
+    and accuracy the share of arg-max predictions that are right.  (Naeini et
+    al. 2015 introduced the measure; Guo et al.'s top-label, equal-width form
+    with M = 15 is the one followed here.)
+
+    Returns
+    -------
+    float
+        In [0, 1]; 0 means confidence equals accuracy in every bin.
+    """
+    t = reliability_table(y_true, proba, classes, n_bins=n_bins)
+    t = t[(t["target"] == TOP_LABEL) & (t["n"] > 0)]
+    gap = (t["observed_frequency"] - t["mean_predicted"]).abs()
+    return float((t["n"] * gap).sum() / t["n"].sum())
+
+
+def plot_reliability(table: pd.DataFrame, targets: Any = None) -> Any:
+    """Reliability diagram (left) and bin counts (right) from :func:`reliability_table`.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+    targets : sequence of str, optional
+        Targets to draw; default all.  Empty bins are not drawn.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Built without pyplot; nothing is shown.
+    """
+    from matplotlib.figure import Figure
+
+    from .models import PALETTE
+
+    fig = Figure(figsize=(9, 4), layout="constrained")
+    ax, axn = fig.subplots(1, 2, width_ratios=[3, 2])
+    ax.plot([0, 1], [0, 1], color="0.6", linestyle="--", label="perfect calibration")
+    for name in targets if targets is not None else table["target"].unique():
+        t = table[(table["target"] == name) & (table["n"] > 0)]
+        colour = "black" if name == TOP_LABEL else PALETTE.get(name)
+        ax.plot(t["mean_predicted"], t["observed_frequency"], marker="o", label=name, color=colour)
+        axn.step(t["upper"], t["n"], where="pre", color=colour, label=name)
+    ax.set(xlim=(0, 1), ylim=(0, 1), xlabel="mean predicted probability", ylabel="observed frequency",
+           aspect="equal")
+    axn.set(xlim=(0, 1), xlabel="predicted probability (bin upper edge)", ylabel="samples per bin",
+            yscale="log")
+    ax.legend(fontsize="small")
+    return fig
+
+
+# --------------------------------------------------------------------------- recalibration
+
+
+class CalibratedWetlandClassifier(ClassifierMixin, BaseEstimator):
+    """Isotonic or sigmoid recalibration fitted within spatial folds.
+
+    For each ``(train, test)`` fold of ``cv`` (computed once in :meth:`fit`,
+    with the groups) a clone of ``base`` is fitted on ``train`` and a calibrator
+    on its ``test`` predictions; ``predict_proba`` averages the fold models
+    (scikit-learn's ``CalibratedClassifierCV`` with ``ensemble=True`` and
+    ``cv=`` the list of splits).  Calibrating on spatially held-out data
+    matters: calibrating on random folds would learn the over-confidence of
+    near-duplicate neighbours.
+
+    Parameters
+    ----------
+    base : WetlandClassifier (or any classifier with a ``classes`` parameter)
+        Its ``classes`` give the scheme order of ``predict_proba``.
+    method : {"isotonic", "sigmoid"}, default "isotonic"
+        Isotonic regression (Zadrozny & Elkan 2002) needs more held-out samples
+        per class than the two-parameter sigmoid (Platt 1999).
+    cv : splitter
+        E.g. :class:`~wetlandflow.validation.SpatialBlockKFold` with ``coords``
+        aligned with the ``X`` given to :meth:`fit`.
+
+    Notes
+    -----
+    scikit-learn's calibrator indexes classes in sorted order, and its binary
+    path assumes the base model's ``classes_`` are sorted.  The base is
+    therefore refitted over the classes present in ``y`` in sorted order, and
+    the output columns are mapped back to the scheme order (classes absent from
+    training get probability 0); :meth:`fit` checks that mapping.
+
+    References
+    ----------
+    Platt, J. C. (1999). Probabilistic outputs for support vector machines and
+    comparisons to regularized likelihood methods. In: Advances in Large Margin
+    Classifiers, MIT Press, 61-74.
+
+    Zadrozny, B., Elkan, C. (2002). Transforming classifier scores into accurate
+    multiclass probability estimates. Proc. 8th ACM SIGKDD, 694-699.
+    """
+
+    def __init__(self, base: Any = None, method: str = "isotonic", cv: Any = None):
+        self.base = base
+        self.method = method
+        self.cv = cv
+
+    def _validate(self) -> None:
+        if self.method not in ("isotonic", "sigmoid"):
+            raise ParameterError(
+                f"The 'method' parameter of CalibratedWetlandClassifier must be 'isotonic' or 'sigmoid'; "
+                f"got {self.method!r}."
+            )
+        if self.base is None or "classes" not in self.base.get_params():
+            raise ParameterError(
+                "The 'base' parameter of CalibratedWetlandClassifier must be a classifier with a 'classes' "
+                f"parameter (e.g. WetlandClassifier); got {self.base!r}."
+            )
+        if self.cv is None or not hasattr(self.cv, "split"):
+            raise ParameterError(
+                "The 'cv' parameter of CalibratedWetlandClassifier must be a splitter with "
+                f"split(X, y, groups), e.g. SpatialBlockKFold(coords=...); got {self.cv!r}."
+            )
+
+    def fit(self, X: Any, y: Any, groups: Any = None) -> CalibratedWetlandClassifier:
+        """Fit base models and calibrators on the spatial folds.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+        y : array-like of str
+        groups : array-like, optional
+            Plot ids, handed to ``cv.split``.
+
+        Returns
+        -------
+        CalibratedWetlandClassifier
+            ``self``.
+        """
+        from sklearn.calibration import CalibratedClassifierCV
+
+        self._validate()
+        X = np.asarray(X, dtype=np.float32)
+        y = np.asarray(y).astype(str)
+        scheme = tuple(self.base.get_params()["classes"])
+        unknown = sorted(set(y) - set(scheme))
+        if unknown:
+            raise ModelError(f"labels {unknown} are not in the class scheme {list(scheme)}")
+        present = tuple(sorted(set(y)))
+        splits = list(self.cv.split(X, y, None if groups is None else np.asarray(groups)))
+        base = clone(self.base).set_params(classes=present)
+        calibrator = CalibratedClassifierCV(base, method=self.method, cv=splits, ensemble=True)
+        self.calibrated_ = calibrator.fit(X, y)
+        self.classes_ = np.array(scheme)
+        self.column_of_ = self._column_map(scheme)
+        self.n_features_in_ = X.shape[1]
+        return self
+
+    def _column_map(self, scheme: tuple[str, ...]) -> np.ndarray:
+        """For each scheme class, its column in the calibrator's output (-1: absent from training)."""
+        cal = [str(c) for c in self.calibrated_.classes_]
+        if cal != sorted(cal) or not set(cal) <= set(scheme):
+            raise ModelError(
+                f"the calibrator's class order {cal} does not map onto the scheme {list(scheme)}; "
+                "expected a sorted subset of the scheme classes."
+            )
+        return np.array([cal.index(c) if c in cal else -1 for c in scheme])
+
+    def predict_proba(self, X: Any) -> np.ndarray:
+        """Calibrated probabilities, columns in scheme order, rows summing to 1."""
+        if not hasattr(self, "calibrated_"):
+            raise ModelError(
+                "this CalibratedWetlandClassifier is not fitted yet; call fit(X, y, groups) first."
+            )
+        raw = self.calibrated_.predict_proba(np.asarray(X, dtype=np.float32))
+        out = np.zeros((raw.shape[0], self.classes_.size))
+        have = self.column_of_ >= 0
+        out[:, have] = raw[:, self.column_of_[have]]
+        return out / out.sum(axis=1, keepdims=True)
+
+    def predict(self, X: Any) -> np.ndarray:
+        """The most probable scheme class per row."""
+        return self.classes_[np.argmax(self.predict_proba(X), axis=1)]

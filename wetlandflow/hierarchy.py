@@ -1,0 +1,269 @@
+"""Two-level classification: class groups first, then the classes inside each group.
+
+Wetland classes that look alike (marsh, swamp, fen, bog) are often easier to
+separate from each other once the model already knows a sample is a wetland.
+:class:`HierarchicalClassifier` fits one :class:`~wetlandflow.models.WetlandClassifier`
+over the top level (each parent group is one class, e.g. ``"wetland"``; a class
+under no parent stays itself, e.g. ``"upland"``) and one per parent over that
+parent's children, trained on that parent's samples only (a "local classifier
+per parent node" in the terms of Silla & Freitas 2011).  Leaf probabilities are
+combined by the definition of conditional probability,
+``P(leaf) = P(parent) * P(leaf | parent)``.
+
+References
+----------
+Silla, C. N., Freitas, A. A. (2011). A survey of hierarchical classification
+across different application domains. Data Mining and Knowledge Discovery
+22(1-2), 31-72.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from sklearn.base import BaseEstimator, ClassifierMixin
+
+from .errors import ModelError
+from .models import WetlandClassifier
+
+__all__ = ["HierarchicalClassifier"]
+
+_RESERVED = ("top", "leaf")
+
+
+def _top_of(classes: tuple[str, ...], parents: dict[str, tuple[str, ...]]) -> dict[str, str]:
+    """Map each leaf to its top-level class (its parent, or itself)."""
+    parent_of = {c: p for p, cs in parents.items() for c in cs}
+    return {c: parent_of.get(c, c) for c in classes}
+
+
+def _check_tree(classes: tuple[str, ...], parents: dict[str, tuple[str, ...]]) -> None:
+    """A two-level tree: every child is a known leaf, under one parent only."""
+    seen: dict[str, str] = {}
+    for p, children in parents.items():
+        if p in _RESERVED or p in classes:
+            raise ModelError(
+                f"parent name {p!r} clashes with a leaf class or a reserved level name {_RESERVED}; "
+                f"received parents={parents!r}. Rename the parent group (e.g. 'wetland')."
+            )
+        if len(children) == 0:
+            raise ModelError(f"parent {p!r} has no children; give it at least one class of {list(classes)}.")
+        for c in children:
+            if c not in classes:
+                raise ModelError(
+                    f"child {c!r} of parent {p!r} is not in the class scheme {list(classes)}; "
+                    "list only scheme classes as children."
+                )
+            if c in seen:
+                raise ModelError(f"class {c!r} is under two parents ({seen[c]!r} and {p!r}); keep one.")
+            seen[c] = p
+
+
+def _normalise(p: np.ndarray) -> np.ndarray:
+    """Rows rescaled to sum to 1 in float64 (the base model returns float32)."""
+    p = np.asarray(p, dtype=np.float64)
+    return p / p.sum(axis=1, keepdims=True)
+
+
+class _Constant:
+    """A 'classifier' for a parent with fewer than two children in the training data."""
+
+    def __init__(self, proba: np.ndarray):
+        self.proba = proba
+
+    def predict_proba(self, X: np.ndarray) -> np.ndarray:
+        return np.tile(self.proba, (X.shape[0], 1))
+
+
+class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
+    """Leaf probabilities from a top-level model times per-parent child models.
+
+    Parameters
+    ----------
+    classes : sequence of str
+        Leaf classes in scheme order; ``predict_proba`` columns follow it.
+    parents : dict of str to tuple of str
+        Parent group name to its child classes (``{"wetland": ("marsh", "swamp",
+        "fen", "bog")}``).  Classes under no parent are top-level classes.
+    base_params : dict, optional
+        Keyword arguments for every :class:`~wetlandflow.models.WetlandClassifier`
+        (``kind``, ``n_estimators``, ...); ``classes`` is set per level.
+    gate_threshold : float, default 0.0
+        The second level is evaluated only for rows where ``P(parent) >
+        gate_threshold``.  Elsewhere the parent's probability is shared among its
+        children in proportion to the children's training frequencies (their
+        priors), so no child model is run for rows that are clearly not in the
+        group.
+
+    Notes
+    -----
+    Error bound of the gate.  On a gated row the leaf estimate is ``P(parent) *
+    prior(leaf)`` instead of ``P(parent) * P(leaf | parent)``.  Both factors on
+    the right are in [0, 1], so each leaf's absolute error is
+    ``P(parent) * |prior(leaf) - P(leaf | parent)| <= P(parent) <= gate_threshold``.
+    Top-level probabilities and sums over each group are exact on every row.
+
+    Inside ``cross_val_predict`` use ``method="predict"`` (the default):
+    scikit-learn integer-encodes the labels for ``method="predict_proba"``, and
+    the integers are not scheme classes.  For out-of-fold probabilities loop
+    over ``cv.split(X, y, groups)`` and call ``predict_proba`` per fold.
+
+    Attributes
+    ----------
+    classes_ : ndarray of str
+        Leaf classes, scheme order.
+    top_classes_ : ndarray of str
+        Top-level classes, in order of their first leaf in the scheme.
+    top_model_ : WetlandClassifier
+    parents_ : dict of str to tuple of str
+        The validated tree.
+    child_models_ : dict of str to WetlandClassifier (or a constant model)
+    priors_ : dict of str to ndarray
+        Training frequency of each child within its parent.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> y = rng.choice(["upland", "marsh", "bog"], 300)
+    >>> X = np.c_[(y != "upland") * 2.0 + (y == "bog") * 1.0 + rng.normal(0, 0.3, 300)]
+    >>> m = HierarchicalClassifier(("upland", "marsh", "bog"), {"wetland": ("marsh", "bog")},
+    ...                            base_params={"n_estimators": 20, "max_depth": 2}).fit(X, y)
+    >>> bool(np.allclose(m.predict_proba(X).sum(axis=1), 1.0))
+    True
+    """
+
+    def __init__(
+        self,
+        classes: Any = ("upland", "open_water", "marsh", "swamp", "fen", "bog"),
+        parents: Any = None,
+        base_params: dict | None = None,
+        gate_threshold: float = 0.0,
+    ):
+        self.classes = classes
+        self.parents = parents
+        self.base_params = base_params
+        self.gate_threshold = gate_threshold
+
+    # ------------------------------------------------------------------ fit
+
+    def _base(self, classes: tuple[str, ...]) -> WetlandClassifier:
+        params = {k: v for k, v in (self.base_params or {}).items() if k != "classes"}
+        return WetlandClassifier(classes=classes, **params)
+
+    def _validate(self) -> tuple[tuple[str, ...], dict[str, tuple[str, ...]]]:
+        classes = tuple(self.classes)
+        parents = {str(p): tuple(cs) for p, cs in (self.parents or {}).items()}
+        _check_tree(classes, parents)
+        t = self.gate_threshold
+        if not (np.isscalar(t) and 0.0 <= float(t) < 1.0):
+            raise ModelError(
+                "The 'gate_threshold' parameter of HierarchicalClassifier must be a float in [0, 1); "
+                f"got {t!r}."
+            )
+        return classes, parents
+
+    def fit(self, X: Any, y: Any, sample_weight: Any = None) -> HierarchicalClassifier:
+        """Fit the top-level model and one child model per parent.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+        y : array-like of str, shape (n_samples,)
+            Leaf labels from ``classes``.
+        sample_weight : array-like, optional
+            Passed to every level (subset to each parent's rows).
+
+        Returns
+        -------
+        HierarchicalClassifier
+            ``self``.
+        """
+        classes, parents = self._validate()
+        X = np.asarray(X, dtype=np.float32)
+        y = np.asarray(y).astype(str)
+        unknown = sorted(set(y) - set(classes))
+        if unknown:
+            raise ModelError(f"labels {unknown} are not in the class scheme {list(classes)}")
+        w = None if sample_weight is None else np.asarray(sample_weight, dtype=float)
+        top_of = _top_of(classes, parents)
+        self.classes_ = np.array(classes)
+        self.parents_ = parents
+        self.top_classes_ = np.array(list(dict.fromkeys(top_of[c] for c in classes)))
+        y_top = np.array([top_of[c] for c in y])
+        self.top_model_ = self._base(tuple(self.top_classes_)).fit(X, y_top, sample_weight=w)
+        self.child_models_, self.priors_ = {}, {}
+        for p, children in parents.items():
+            rows = y_top == p
+            self._fit_child(p, children, X[rows], y[rows], None if w is None else w[rows])
+        self.n_features_in_ = X.shape[1]
+        return self
+
+    def _fit_child(self, parent: str, children: tuple[str, ...], X: np.ndarray, y: np.ndarray,
+                   w: np.ndarray | None) -> None:
+        counts = np.array([(y == c).sum() for c in children], dtype=float)
+        # A parent absent from training gets uniform priors (nothing else is known about it).
+        prior = counts / counts.sum() if counts.sum() > 0 else np.full(len(children), 1.0 / len(children))
+        self.priors_[parent] = prior
+        if (counts > 0).sum() < 2:
+            # One child (or none) seen: its conditional probability is its prior; no model to fit.
+            self.child_models_[parent] = _Constant(prior)
+        else:
+            self.child_models_[parent] = self._base(children).fit(X, y, sample_weight=w)
+
+    # ------------------------------------------------------------------ predict
+
+    def _levels(self, X: Any) -> tuple[np.ndarray, dict[str, np.ndarray], np.ndarray]:
+        """Top probabilities, per-parent conditional probabilities and leaf probabilities."""
+        if not hasattr(self, "top_model_"):
+            raise ModelError("this HierarchicalClassifier is not fitted yet; call fit(X, y) first.")
+        Xa = np.asarray(X, dtype=np.float32)
+        top = _normalise(self.top_model_.predict_proba(Xa))
+        leaf = np.zeros((Xa.shape[0], len(self.classes_)))
+        conditional = {}
+        col = {c: i for i, c in enumerate(self.classes_)}
+        for j, t in enumerate(self.top_classes_):
+            if t not in self.child_models_:
+                leaf[:, col[t]] = top[:, j]
+                continue
+            cond = self._conditional(t, Xa, top[:, j])
+            conditional[t] = cond
+            for k, c in enumerate(self.parents_[t]):
+                leaf[:, col[c]] = top[:, j] * cond[:, k]
+        return top, conditional, leaf
+
+    def _conditional(self, parent: str, X: np.ndarray, p_parent: np.ndarray) -> np.ndarray:
+        """P(child | parent): the child model where the gate is open, the priors elsewhere."""
+        cond = np.tile(self.priors_[parent], (X.shape[0], 1))
+        open_rows = p_parent > float(self.gate_threshold)
+        if open_rows.any():
+            cond[open_rows] = _normalise(self.child_models_[parent].predict_proba(X[open_rows]))
+        return cond
+
+    def predict_proba(self, X: Any) -> np.ndarray:
+        """Leaf probabilities, columns in ``classes`` order, rows summing to 1 (float64)."""
+        return self._levels(X)[2]
+
+    def predict(self, X: Any) -> np.ndarray:
+        """The most probable leaf class per row."""
+        return self.classes_[np.argmax(self.predict_proba(X), axis=1)]
+
+    def predict_proba_levels(self, X: Any) -> dict[str, pd.DataFrame]:
+        """Probabilities at every level of the tree.
+
+        Returns
+        -------
+        dict of str to pandas.DataFrame
+            ``"top"``: P(top-level class); one entry per parent name: P(child |
+            parent) (the priors on gated rows); ``"leaf"``: the joint leaf
+            probabilities of :meth:`predict_proba`.  Indexes follow ``X``'s
+            index when ``X`` is a DataFrame.
+        """
+        index = X.index if isinstance(X, pd.DataFrame) else None
+        top, conditional, leaf = self._levels(X)
+        out = {"top": pd.DataFrame(top, columns=list(self.top_classes_), index=index)}
+        for p, cond in conditional.items():
+            out[p] = pd.DataFrame(cond, columns=list(self.parents_[p]), index=index)
+        out["leaf"] = pd.DataFrame(leaf, columns=list(self.classes_), index=index)
+        return out
