@@ -323,28 +323,22 @@ def ndre2(reflectance: xr.DataArray) -> xr.DataArray:
 # Several normalised differences in one pass
 # ---------------------------------------------------------------------------
 
-# Pixels per work item: the ten bands of a run of 4096 float32 pixels (160 kB)
-# stay in L2 cache while every index reads its two bands from them.
-_FUSED_BLOCK = 4096
-
-
 def _nd_fused_py(bands, ia, ib, out):  # pragma: no cover - compiled below
     """``out[j] = (bands[ia[j]] - bands[ib[j]]) / (... + ...)`` for every j, NaN where the sum is 0.
 
-    ``bands`` is ``(band, pixels)``, ``out`` ``(len(ia), pixels)``.  The
-    arithmetic is that of :func:`_nd_ufunc` (float64, one rounding at the
-    end), so results are identical to the single-index functions; a compiled
-    loop raises no floating-point warning.
+    ``bands`` is ``(band, rows, x)`` with any strides (a dask chunk sliced out
+    of a larger array is read in place), ``out`` ``(len(ia), rows, x)``.  One
+    row of every band (a few tens of kB) stays in cache while each index
+    reads its two bands from it.  The arithmetic is that of :func:`_nd_ufunc`
+    (float64, one rounding at the end), so results are identical to the
+    single-index functions; a compiled loop raises no floating-point warning.
     """
-    npix = bands.shape[1]
-    for blk in numba.prange((npix + _FUSED_BLOCK - 1) // _FUSED_BLOCK):
-        p0 = blk * _FUSED_BLOCK
-        p1 = min(npix, p0 + _FUSED_BLOCK)
+    for r in numba.prange(bands.shape[1]):
         for j in range(ia.shape[0]):
-            a = bands[ia[j]]
-            b = bands[ib[j]]
-            o = out[j]
-            for i in range(p0, p1):
+            a = bands[ia[j], r]
+            b = bands[ib[j], r]
+            o = out[j, r]
+            for i in range(a.shape[0]):
                 x = np.float64(a[i])
                 y = np.float64(b[i])
                 total = x + y
@@ -366,7 +360,7 @@ def nd_fused_block(block: np.ndarray, ia: np.ndarray, ib: np.ndarray, *, paralle
     Parameters
     ----------
     block : numpy.ndarray
-        ``(band, ...)`` float32 or float64 (C-contiguous input is read without a copy).
+        ``(band, ...)`` float32 or float64, any strides (read in place when the leading dims merge).
     ia, ib : numpy.ndarray
         int64 positions along the band axis of the first and second band of each index.
     parallel : bool
@@ -377,9 +371,10 @@ def nd_fused_block(block: np.ndarray, ia: np.ndarray, ib: np.ndarray, *, paralle
     numpy.ndarray
         ``(len(ia), ...)``, same dtype as ``block``.
     """
-    flat = block.reshape(block.shape[0], -1)
-    out = np.empty((ia.shape[0], flat.shape[1]), dtype=block.dtype)
-    (_nd_fused_parallel if parallel else _nd_fused_serial)(flat, ia, ib, out)
+    # (band, rows, x): a view for the usual layouts (last axis kept, leading ones merged)
+    rows = block.reshape(block.shape[0], -1, block.shape[-1]) if block.ndim > 1 else block.reshape(-1, 1, 1)
+    out = np.empty((ia.shape[0],) + rows.shape[1:], dtype=block.dtype)
+    (_nd_fused_parallel if parallel else _nd_fused_serial)(rows, ia, ib, out)
     return out.reshape((ia.shape[0],) + block.shape[1:])
 
 
