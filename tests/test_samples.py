@@ -99,9 +99,8 @@ def test_missing_class_field(tmp_path):
 
 def test_balance_and_missing_policy():
     s = pd.DataFrame({"plot_id": ["a", "a", "b"], "class": ["fen", "fen", "bog"], "x": 0.0, "y": 0.0,
-                      "f": [1.0, np.nan, 2.0]})
+                      "f": [1.0, np.nan, 2.0], "g": [1.0, 1.0, 1.0]})
     assert class_balance(s).set_index("class").loc["fen", "pixels"] == 2
-    assert len(drop_incomplete(s, ["f"])) == 2
-    assert len(drop_incomplete(s, ["f"], policy="keep")) == 3
-    s.loc[2, "f"] = np.nan
-    assert len(drop_incomplete(s, ["f"], policy="keep")) == 1  # rows with every feature NaN always go
+    assert len(drop_incomplete(s, ["f", "g"])) == 2
+    assert len(drop_incomplete(s, ["f", "g"], policy="keep")) == 3
+    assert len(drop_incomplete(s, ["f"], policy="keep")) == 2  # rows with every feature NaN always go
