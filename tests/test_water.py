@@ -21,23 +21,7 @@ from wetlandflow.errors import DataQualityError, GridMismatchError
 from wetlandflow.features import sar
 from wetlandflow.features import water as S
 
-
-def speckle(shape, seed=0, looks=4.4) -> np.ndarray:
-    """Unit-mean gamma speckle of ``looks`` looks (variance 1 / looks)."""
-    return np.random.default_rng(seed).gamma(looks, 1.0 / looks, shape).astype("float32")
-
-
-def sar_stack(n=8, ny=20, nx=30, seed=0, orbits=("ascending", "descending")) -> xr.DataArray:
-    """Linear power: VV about -13 dB, VH about -20 dB, with speckle; orbits alternate."""
-    level = np.array([0.05, 0.01], dtype="float32")[None, :, None, None]
-    data = speckle((n, 2, ny, nx), seed) * level
-    times = pd.date_range("2024-04-03", periods=n, freq="12D")
-    orbit = [orbits[i % len(orbits)] for i in range(n)]
-    return xr.DataArray(
-        data, dims=("time", "pol", "y", "x"),
-        coords={"time": times, "pol": ["VV", "VH"], "orbit": ("time", orbit),
-                "y": 5.0 + 10.0 * np.arange(ny)[::-1], "x": 5.0 + 10.0 * np.arange(nx)},
-    )
+from test_sar import sar_stack, speckle  # the shared synthetic SAR data
 
 
 def db(x):
