@@ -78,8 +78,8 @@ def olofsson2014() -> AreaAccuracyResult:
 
 
 def _olofsson_formulas(counts: np.ndarray, mapped: np.ndarray) -> dict[str, np.ndarray]:
-    """The printed estimators of Olofsson et al. (2014), written out term by term (CHECK-VALUES 1b;
-    the formulas are FROM MEMORY, after Cochran 1977).  Independent of the package's ratio engine."""
+    """The printed estimators of Olofsson et al. (2014), written out term by term
+    (the formulas are FROM MEMORY, after Cochran 1977).  Independent of the package's ratio engine."""
     n_i = counts.sum(axis=1)
     w = mapped / mapped.sum()
     q = counts / n_i[:, None]
@@ -137,9 +137,9 @@ def test_olofsson2014_accuracies(olofsson2014):
 
 @pytest.mark.reference
 def test_olofsson2014_derived_values(olofsson2014):
-    """CHECK-VALUES 1c, DERIVED from the Olofsson et al. (2014) Table 8 counts (not read in the paper):
+    """DERIVED from the Olofsson et al. (2014) Table 8 counts (not read in the paper):
     areas in pixels, area proportions with SE, producer's accuracy with 95 % CI, overall SE.
-    CHECK-VALUES prints P = 0.934 for stable forest; the recomputation gives 0.93451 (a rounding slip in
+    A value of P = 0.934 is sometimes quoted for stable forest; the recomputation gives 0.93451 (a rounding slip in
     that table), so producer's accuracies are held to 1e-3."""
     table = olofsson2014.area_table
     np.testing.assert_allclose(
@@ -157,7 +157,7 @@ def test_olofsson2014_derived_values(olofsson2014):
 @pytest.mark.reference
 def test_engine_equals_printed_olofsson_formulas(olofsson2014):
     """The linearised ratio engine equals the estimators as printed by Olofsson et al. (2014), including
-    the long producer's-accuracy variance (formulas FROM MEMORY, CHECK-VALUES 1b)."""
+    the long producer's-accuracy variance (formulas FROM MEMORY)."""
     ref = _olofsson_formulas(OLOFSSON_2014_COUNTS.astype(float), np.array(OLOFSSON_2014_PIXELS, float))
     acc, area = olofsson2014.accuracy_table, olofsson2014.area_table
     np.testing.assert_allclose(area["estimated_proportion"], ref["p_col"], rtol=1e-12)
@@ -196,7 +196,7 @@ def test_olofsson2013_example1():
 def test_lunetta_lyon_table_9_4():
     """Lunetta & Lyon (eds.) (2004), Remote Sensing and GIS Accuracy Assessment, CRC Press, Table 9.4
     (VERIFIED): OA 68 %, Khat 0.61, SE(Khat) 0.029, PA/UA per class in %.  Mesquite is skipped: its
-    printed 42/41 does not match the matrix (CHECK-VALUES 2a)."""
+    printed 42/41 does not match the matrix."""
     res = accuracy_measures(_frame(LUNETTA_COUNTS, LUNETTA_CLASSES), kappa=True)
     assert round(100 * res["overall"].value) == 68
     assert round(res["kappa"].value, 2) == 0.61
@@ -213,7 +213,7 @@ def test_lunetta_lyon_table_9_4():
     }
     table = res["per_class"].set_index("class")
     # Held to 0.6 percentage points rather than exact rounding: riparian PA is 19/21 = 90.48 % but is
-    # printed as 91 (CHECK-VALUES says every pair matches; this one is off by the rounding).
+    # printed as 91 (this pair is off by the rounding).
     for name, (pa, ua) in printed.items():
         assert abs(100 * table.loc[name, "producers"] - pa) < 0.6, name
         assert abs(100 * table.loc[name, "users"] - ua) < 0.6, name
@@ -223,7 +223,7 @@ def test_lunetta_lyon_table_9_4():
 
 @pytest.mark.reference
 def test_lunetta_lyon_derived_kappa_terms():
-    """CHECK-VALUES 2a DERIVED: kappa 0.61154, SE 0.029262 (delta method, Bishop, Fienberg & Holland 1975,
+    """DERIVED: kappa 0.61154, SE 0.029262 (delta method, Bishop, Fienberg & Holland 1975,
     FROM MEMORY, reproduces the printed SE)."""
     res = accuracy_measures(LUNETTA_COUNTS, kappa=True)
     assert res["kappa"].value == pytest.approx(0.61154, abs=5e-6)
@@ -348,7 +348,7 @@ def test_collapse_matrix_sums_blocks():
 @pytest.mark.reference
 def test_collapsed_stratified_estimates_keep_original_strata(olofsson2014):
     """Coarse-level area SE equals the Olofsson et al. (2014) proportion-SE formula applied to the merged
-    reference columns with the original strata kept (formula FROM MEMORY, CHECK-VALUES 1b)."""
+    reference columns with the original strata kept (formula FROM MEMORY)."""
     counts = _frame(OLOFSSON_2014_COUNTS, OLOFSSON_2014_CLASSES)
     res = stratified_estimates(counts, OLOFSSON_2014_PIXELS, pixel_area_ha=PIXEL_HA, collapse=PARENTS)
     fine = olofsson2014.area_table["estimated_area_ha"].to_numpy()

@@ -202,7 +202,7 @@ def test_open_water_is_dark_in_the_nir(demo_dir, truth):
 
 @pytest.mark.reference
 def test_open_water_is_dark_in_sar_vv(demo_dir, truth):
-    """CHECK-VALUES section 9 (typical backscatter, FROM MEMORY): calm water VV about -18 to -25 dB,
+    """Typical backscatter (FROM MEMORY): calm water VV about -18 to -25 dB,
     vegetated land about -6 to -12 dB.  Wind roughens water on a date or two, so the ranges must hold on
     most dates and water must stay darker than upland on all of them."""
     in_range = []
@@ -216,7 +216,7 @@ def test_open_water_is_dark_in_sar_vv(demo_dir, truth):
 
 @pytest.mark.reference
 def test_speckle_has_the_equivalent_number_of_looks(demo_dir, truth):
-    """Lee (1980), multiplicative speckle model (CHECK-VALUES section 9, FROM MEMORY): for intensity with
+    """Lee (1980), multiplicative speckle model (FROM MEMORY): for intensity with
     L looks var = mean^2 / L.  Calm water is near homogeneous, so mean^2 / var there estimates L (4-5 here;
     a little texture lowers it)."""
     enl = []
@@ -229,7 +229,7 @@ def test_speckle_has_the_equivalent_number_of_looks(demo_dir, truth):
 
 @pytest.mark.reference
 def test_wetland_backscatter_seasonality(demo_dir, truth):
-    """CHECK-VALUES section 9 (FROM MEMORY): flooded forest and emergent marsh brighten VV by double bounce;
+    """FROM MEMORY: flooded forest and emergent marsh brighten VV by double bounce;
     open flooded marsh without a canopy is specular and dark.  Spring (April) is flooded, July has canopy."""
     april, july = _db(demo_dir / "sar" / "sar_20240415.tif")[0], _db(demo_dir / "sar" / "sar_20240708.tif")[0]
     marsh, swamp = truth == CODE["marsh"], truth == CODE["swamp"]

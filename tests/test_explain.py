@@ -1,6 +1,6 @@
 """Tests for wetlandflow.explain and wetlandflow.explain_plots.
 
-Reference checks follow CHECK-VALUES section 12: local accuracy of TreeSHAP and
+Reference checks: local accuracy of TreeSHAP and
 agreement with the reference library ``shap`` (PyPI), after
 Lundberg, S. M. et al. (2020) From local explanations to global understanding with
 explainable AI for trees. Nature Machine Intelligence 2(1), 56-67; and
@@ -75,7 +75,7 @@ def xgb_sv(xgb_model, data):
 @pytest.mark.reference
 def test_local_accuracy_xgboost_margin(xgb_model, xgb_sv, data):
     """base + sum phi = raw margin per class (Lundberg et al. 2020, local accuracy; xgboost docs:
-    pred_contribs rows sum to the output_margin prediction).  atol 1e-4 for float32 (CHECK-VALUES 12, DERIVED)."""
+    pred_contribs rows sum to the output_margin prediction).  atol 1e-4 for float32 (DERIVED)."""
     from xgboost import DMatrix
 
     margin = xgb_model.model_.get_booster().predict(DMatrix(data[0].to_numpy()), output_margin=True)

@@ -196,7 +196,7 @@ def test_reip_nominal_centres_equal_s2rep():
 
 @pytest.mark.reference
 def test_reip_s2a_centres_hand_derived():
-    """DERIVED (CHECK-VALUES section 8): with S2A centres 704.1 / 740.5 nm, REIP = 704.1 + 36.4 (...).
+    """DERIVED: with S2A centres 704.1 / 740.5 nm, REIP = 704.1 + 36.4 (...).
 
     The centre wavelengths themselves are checked against the spyndex catalogue
     (bands.json, sentinel2a / sentinel2b entries).

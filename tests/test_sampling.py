@@ -56,7 +56,7 @@ def test_sample_size_olofsson2014_example():
     """Olofsson et al. (2014), Good practices for estimating area and assessing accuracy of land
     change, RSE 148, eq. 13, after Cochran (1977), Sampling Techniques, eq. 5.25 (equation numbers FROM
     MEMORY): U = 0.70/0.60/0.90/0.95, S(O) = 0.01, W from Table 8 (VERIFIED-2nd) gives n = 641.
-    The paper's 641 is FROM MEMORY; DERIVED: (sum W_i S_i / 0.01)^2 = 640.54, rounded up (CHECK-VALUES 1d)."""
+    The paper's 641 is FROM MEMORY; DERIVED: (sum W_i S_i / 0.01)^2 = 640.54, rounded up."""
     w = [0.02, 0.015, 0.32, 0.645]
     assert sample_size_overall(w, [0.70, 0.60, 0.90, 0.95], 0.01) == 641
     by_name = dict(zip("abcd", w, strict=True))

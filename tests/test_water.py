@@ -67,7 +67,7 @@ def test_otsu_matches_skimage(kind, nbins):
 
 @pytest.mark.reference
 def test_otsu_two_level_image_separates_levels():
-    """DERIVED (CHECK-VALUES section 13): half 0, half 10: the foreground image > t is exactly the 10s."""
+    """DERIVED: half 0, half 10: the foreground image > t is exactly the 10s."""
     img = np.zeros((20, 20))
     img[:, 10:] = 10
     t = S.otsu_threshold(xr.DataArray(img).chunk(5))  # dask input is computed (a global operation)
