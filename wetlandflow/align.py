@@ -52,6 +52,8 @@ class RasterInfo:
     path: str
     crs: str
     count: int
+    width: int
+    height: int
     dtype: str
     nodata: float | None
     resolution: tuple[float, float]
@@ -72,7 +74,7 @@ def inspect_raster(path: str | Path) -> RasterInfo:
             src.read(src.count, window=Window(max(0, src.width - 16), max(0, src.height - 16), 16, 16),
                      boundless=True)
             return RasterInfo(
-                str(path), src.crs.to_string(), src.count, src.dtypes[0], src.nodata,
+                str(path), src.crs.to_string(), src.count, src.width, src.height, src.dtypes[0], src.nodata,
                 (abs(src.transform.a), abs(src.transform.e)), tuple(src.bounds), tuple(src.descriptions),
             )
     except AlignmentError:
@@ -85,9 +87,7 @@ def _source_resolution_on_grid(info: RasterInfo, grid: Grid) -> float:
     """Approximate source pixel size in the grid's units (metres)."""
     xmin, ymin, xmax, ymax = info.bounds
     gx0, gy0, gx1, gy1 = transform_bounds(info.crs, grid.crs, xmin, ymin, xmax, ymax, densify_pts=21)
-    with rasterio.open(info.path) as src:
-        w, h = src.width, src.height
-    return float(np.sqrt(((gx1 - gx0) / w) * ((gy1 - gy0) / h)))
+    return float(np.sqrt(((gx1 - gx0) / info.width) * ((gy1 - gy0) / info.height)))
 
 
 def choose_resampling(kind: str, src_res_m: float, grid: Grid) -> Resampling:

@@ -114,12 +114,6 @@ def build_cog(src_path: str | Path, dst_path: str | Path, *, overview_resampling
     return Path(dst_path)
 
 
-def read_class_map(path: str | Path) -> xr.DataArray:
-    import rioxarray
-
-    return rioxarray.open_rasterio(path).isel(band=0, drop=True)
-
-
 def class_areas(class_tif: str | Path, class_names: tuple[str, ...], pixel_area_m2: float):
     """Mapped pixel counts and areas (ha) per class, read window by window."""
     import pandas as pd

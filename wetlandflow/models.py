@@ -219,11 +219,3 @@ def load_bundle(folder: str | Path) -> tuple[WetlandClassifier, dict]:
     clf.model_ = m
     return clf, side
 
-
-def align_features(cube_features: list[str], bundle_features: list[str]) -> list[str]:
-    """Order the cube's features as the bundle expects, or say which are missing."""
-    missing = [f for f in bundle_features if f not in cube_features]
-    if missing:
-        raise ModelError(f"the feature cube lacks {len(missing)} feature(s) the model was trained on: {missing[:8]}; "
-                         "rebuild the cube with the same [features] selection, or retrain")
-    return list(bundle_features)
