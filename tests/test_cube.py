@@ -93,3 +93,26 @@ def test_feature_without_provenance_is_refused(inputs):
             build_cube(inputs, ["bare_test"])
     finally:
         REGISTRY.pop("bare_test", None)
+
+
+def test_sar_speckle_filter_and_hydroperiod_are_cube_options(inputs):
+    params = {"sar_temporal": {"speckle": "lee", "window": 5}, "hydroperiod": {"thresholds": (0.2, 0.5, 0.9)}}
+    cube = build_cube(inputs, ["sar_temporal", "water_frequency", "hydroperiod"], params).compute()
+    plain = build_cube(inputs, ["sar_temporal"]).compute()
+    recorded = json.loads(cube["vv_mean_db"].attrs["parameters"])["speckle_filter"]
+    assert recorded == {"method": "lee", "window": 5}
+    assert json.loads(plain["vv_mean_db"].attrs["parameters"])["speckle_filter"] == "none"
+    # the filter smooths: the spread of the temporal-mean level across neighbouring pixels drops
+    rough = lambda a: float(np.nanstd(np.diff(a.values, axis=1)))  # noqa: E731
+    assert rough(cube["vv_mean_db"]) < rough(plain["vv_mean_db"])
+    # hydroperiod codes follow the frequency and the thresholds given
+    f, h = cube["water_frequency"].values, cube["hydroperiod"].values
+    ok = np.isfinite(f)
+    expected = np.select([f == 0, f < 0.2, f < 0.5, f < 0.9], [0, 1, 2, 3], 4)
+    np.testing.assert_array_equal(h[ok], expected[ok])
+    assert np.isnan(h[~ok]).all()
+
+
+def test_unknown_speckle_filter_names_the_choices(inputs):
+    with pytest.raises(ProjectFileError, match=r"speckle filter 'gamma'.*lee"):
+        build_cube(inputs, ["sar_temporal"], {"sar_temporal": {"speckle": "gamma"}})

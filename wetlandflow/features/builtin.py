@@ -7,10 +7,15 @@ formula, units and published source live.
 
 from __future__ import annotations
 
+import json
+
 import xarray as xr
 
+from .._provenance import parameters_of
+from ..errors import ProjectFileError
+
 from . import mrvbf as mrvbf_module
-from . import optical, sar, terrain
+from . import optical, sar, terrain, water
 from .registry import FeatureInputs, feature
 
 
@@ -61,16 +66,67 @@ def ndvi_season_difference(inputs: FeatureInputs, *, a: str = "spring", b: str =
 
 
 # -- SAR -----------------------------------------------------------------------------------
+SPECKLE_FILTERS = ("none", "lee", "multitemporal")
+
+
+def sar_stack(inputs: FeatureInputs, speckle: str = "none", window: int = 7) -> xr.DataArray:
+    """The SAR stack in linear power, speckle-filtered per date as asked, computed once per choice."""
+    if speckle not in SPECKLE_FILTERS:
+        raise ProjectFileError(f"speckle filter {speckle!r} is unknown; choose one of {list(SPECKLE_FILTERS)}",
+                               key="features.params")
+    if speckle == "none":
+        return inputs.sar
+
+    def make() -> xr.DataArray:
+        if speckle == "lee":
+            return sar.lee_filter(inputs.sar, window=window)
+        return sar.temporal_ratio_filter(inputs.sar, window=window)
+
+    return inputs.cached(f"sar_{speckle}_{window}", make)
+
+
+def _note_speckle(out: xr.Dataset | xr.DataArray, speckle: str, window: int):
+    """Record the speckle filter in every output's ``parameters`` attr."""
+    for da in (out.data_vars.values() if isinstance(out, xr.Dataset) else [out]):
+        params = parameters_of(da)
+        params["speckle_filter"] = speckle if speckle == "none" else {"method": speckle, "window": int(window)}
+        da.attrs["parameters"] = json.dumps(params, sort_keys=True, default=str)
+    return out
+
+
 @feature("sar_temporal", domain="sar", needs=("sar",))
-def sar_temporal(inputs: FeatureInputs) -> xr.Dataset:
-    """Temporal statistics of VV, VH and VH/VV, in linear power, levels in dB."""
-    return sar.temporal_stats(inputs.sar, seasons=inputs.seasons)
+def sar_temporal(inputs: FeatureInputs, *, speckle: str = "none", window: int = 7,
+                 orbit_policy: str = "per_orbit") -> xr.Dataset:
+    """Temporal statistics of VV, VH and VH/VV, in linear power, levels in dB.
+
+    ``speckle`` filters each date first: ``"lee"`` (Lee 1980) or
+    ``"multitemporal"`` (ratio-to-local-mean averaging over dates).
+    """
+    stack = sar_stack(inputs, speckle, window)
+    out = sar.temporal_stats(stack, seasons=inputs.seasons, orbit_policy=orbit_policy)
+    return _note_speckle(out, speckle, window)
+
+
+def _water_frequency(inputs: FeatureInputs, speckle: str, window: int) -> xr.DataArray:
+    def make() -> xr.DataArray:
+        return sar.surface_water_frequency(sar_stack(inputs, speckle, window), aoi_mask=inputs.aoi)
+
+    return inputs.cached(f"water_frequency_{speckle}_{window}", make)
 
 
 @feature("water_frequency", domain="sar", needs=("sar",))
-def water_frequency(inputs: FeatureInputs) -> xr.DataArray:
+def water_frequency(inputs: FeatureInputs, *, speckle: str = "none", window: int = 7) -> xr.DataArray:
     """Fraction of valid SAR dates detected as open water (Otsu per date on VV dB)."""
-    return sar.surface_water_frequency(inputs.sar, aoi_mask=inputs.aoi)
+    return _note_speckle(_water_frequency(inputs, speckle, window).copy(), speckle, window)
+
+
+@feature("hydroperiod", domain="sar", needs=("sar",))
+def hydroperiod(inputs: FeatureInputs, *, thresholds: tuple[float, float, float] = (0.1, 0.4, 0.8),
+                speckle: str = "none", window: int = 7) -> xr.DataArray:
+    """Hydroperiod class (0 not flooded .. 4 permanent) from surface-water frequency; no data as NaN."""
+    code = water.hydroperiod_class(_water_frequency(inputs, speckle, window), thresholds=tuple(thresholds))
+    out = code.where(code >= 0).astype("float32").assign_attrs(code.attrs)
+    return _note_speckle(out.rename("hydroperiod"), speckle, window)
 
 
 # -- terrain -------------------------------------------------------------------------------
