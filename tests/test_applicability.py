@@ -212,3 +212,19 @@ def test_xgb_importance_weights_maps_by_index():
         xgb_importance_weights(clf, feats[:3])
     with pytest.raises(ModelError, match="kind='xgboost'"):
         xgb_importance_weights(WetlandClassifier(kind="random_forest"), feats)
+
+
+@pytest.mark.reference
+def test_near_ties_and_duplicates_match_scipy_brute_force():
+    """The float32 ranking with its float64 re-ranking equals scipy's exact distances (cdist) also where
+    many training points nearly tie: duplicated training rows and query points a hair from them."""
+    rng = np.random.default_rng(7)
+    X = rng.normal(size=(400, 40)) * 50.0 + 1000.0  # large offset and spread: stress cancellation
+    X[200:260] = X[100:160]  # exact duplicates
+    folds = np.arange(400) % 4
+    model = fit_applicability(X, rng.uniform(0.5, 2.0, 40), folds)
+    queries = np.vstack([X[:300] + rng.normal(scale=1e-6, size=(300, 40)), rng.normal(size=(300, 40)) * 50 + 1000])
+    got = dissimilarity_index(model, queries, chunk_rows=97)
+    Z = (queries - model.mean) / model.sd * model.weights
+    expected = cdist(Z, model.train_scaled).min(axis=1) / model.mean_distance
+    np.testing.assert_allclose(got, expected, rtol=1e-9, atol=1e-12)
