@@ -69,3 +69,68 @@ def test_windowed_prediction_equals_in_memory(tmp_path):
     areas = class_areas(paths["class"], CLASSES, GRID.pixel_area_m2)
     assert areas["pixels"].sum() == ok.sum()
     assert not (tmp_path / "maps" / ".stage").exists()
+
+
+class _Interrupting:
+    """A model wrapper that counts windows and dies at the n-th one, like a killed run."""
+
+    def __init__(self, model, die_at=None):
+        self.model, self.die_at, self.calls = model, die_at, 0
+        self.kind = model.kind
+        self.model_ = model.model_
+
+    def predict_proba(self, X):
+        self.calls += 1
+        if self.die_at is not None and self.calls == self.die_at:
+            raise KeyboardInterrupt("simulated interruption")
+        return self.model.predict_proba(X)
+
+
+def _fitted(cube):
+    X = np.stack([cube.a.values.ravel(), cube.b.values.ravel()], 1)
+    y = np.where(X[:, 0] > 0.5, "fen", np.where(X[:, 1] > 0, "bog", "upland"))
+    return WetlandClassifier(classes=CLASSES, n_estimators=20, max_depth=3).fit(X[::10], y[::10]), X
+
+
+def test_interrupted_prediction_resumes_from_written_windows(tmp_path):
+    cube, valid = synthetic_cube()
+    model, _ = _fitted(cube)
+    kw = dict(valid=valid, class_names=CLASSES, window_size=96, progress=False)
+    counting = _Interrupting(model)
+    whole = predict_map(counting, cube, ["a", "b"], GRID, tmp_path / "whole", **kw)
+    dying = _Interrupting(model, die_at=4)
+    with pytest.raises(KeyboardInterrupt):
+        predict_map(dying, cube, ["a", "b"], GRID, tmp_path / "resumed", **kw)
+    assert (tmp_path / "resumed" / ".stage" / "windows_done.json").exists()
+    again = _Interrupting(model)
+    resumed = predict_map(again, cube, ["a", "b"], GRID, tmp_path / "resumed", **kw)
+    assert again.calls == counting.calls - 3, "the three finished windows must not be predicted again"
+    for layer in ("probability", "class", "confidence"):
+        with rasterio.open(whole[layer]) as a, rasterio.open(resumed[layer]) as b:
+            np.testing.assert_array_equal(a.read(), b.read())
+
+
+def test_applicability_layers_match_the_array_computation(tmp_path):
+    from wetlandflow.applicability import applicability_map, fit_applicability
+
+    cube, valid = synthetic_cube()
+    model, X = _fitted(cube)
+    train = X[::10][np.isfinite(X[::10]).all(axis=1)]
+    aoa = fit_applicability(train, np.ones(2), np.arange(len(train)) % 4)
+    paths = predict_map(model, cube, ["a", "b"], GRID, tmp_path / "maps", valid=valid, class_names=CLASSES,
+                        window_size=96, aoa_model=aoa, progress=False)
+    expected = applicability_map(aoa, cube, ["a", "b"], valid).compute()
+    with rasterio.open(paths["dissimilarity"]) as src:
+        np.testing.assert_allclose(src.read(1), expected["di"].values, rtol=1e-6, equal_nan=True)
+    with rasterio.open(paths["applicability"]) as src:
+        np.testing.assert_array_equal(src.read(1), expected["inside_aoa"].values)
+
+
+def test_memory_budget_refuses_an_oversized_window(tmp_path):
+    from wetlandflow.errors import BudgetError
+
+    cube, valid = synthetic_cube()
+    model, _ = _fitted(cube)
+    with pytest.raises(BudgetError, match="memory budget.*output.chunk_size"):
+        predict_map(model, cube, ["a", "b"], GRID, tmp_path / "maps", valid=valid, class_names=CLASSES,
+                    window_size=4096, memory_budget_gb=0.01, progress=False)

@@ -17,11 +17,14 @@ def test_run_folder_is_complete(demo_run):
     d = demo_run.run_dir
     for rel in ("manifest.json", "features.zarr", "samples.parquet", "validation/error_matrix.csv",
                 "validation/metrics.json", "validation/oof_predictions.parquet", "model/bundle.json",
-                "maps/probability.tif", "maps/class.tif", "maps/confidence.tif", "areas.csv"):
+                "maps/probability.tif", "maps/class.tif", "maps/confidence.tif", "maps/class_final.tif",
+                "maps/dissimilarity.tif", "maps/applicability.tif", "inventory.gpkg", "inventory_areas.csv",
+                "explain/importance.csv", "explain/domain_importance.csv", "explain/drivers.json", "areas.csv"):
         assert (d / rel).exists(), rel
     manifest = json.loads((d / "manifest.json").read_text())
     assert all(s["status"] == "done" for s in manifest["steps"].values())
-    assert set(manifest["steps"]) == {"inputs", "features", "samples", "validation", "model", "mapping"}
+    assert set(manifest["steps"]) == {"inputs", "features", "samples", "validation", "model", "mapping",
+                                       "inventory", "explain"}
     assert all(len(v["sha256"]) == 64 for v in manifest["inputs"].values())
     assert manifest["versions"]["gdal"] and manifest["versions"]["proj"]
     assert not list(d.rglob("*.partial"))
@@ -76,3 +79,28 @@ def test_summary_states_accuracy_areas_and_caution(demo_run):
     assert CAUTION in text
     for name in ("upland", "open_water", "marsh", "swamp", "fen", "bog"):
         assert name in text
+
+
+def test_inventory_polygons_match_the_final_raster(demo_run):
+    import geopandas as gpd
+
+    d = demo_run.run_dir
+    gdf = gpd.read_file(d / "inventory.gpkg", layer="inventory")
+    with rasterio.open(d / "maps" / "class_final.tif") as src:
+        final = src.read(1)
+        pixel_ha = abs(src.transform.a * src.transform.e) / 1e4
+    counts = np.bincount(final.ravel(), minlength=7)[1:]
+    per_class = gdf.groupby("class_code")["area_ha"].sum().reindex(range(1, 7), fill_value=0.0).to_numpy()
+    np.testing.assert_allclose(per_class, counts * pixel_ha, rtol=1e-9)
+    assert gdf["polygon_id"].is_unique
+    assert (gdf["n_pixels"] >= 9).sum() >= 0.95 * len(gdf)  # below-MMU patches survive only with no neighbour
+    assert gdf["share_outside_aoa"].between(0, 1).all()
+
+
+def test_applicability_flags_cover_the_mapped_pixels(demo_run):
+    d = demo_run.run_dir
+    with rasterio.open(d / "maps" / "applicability.tif") as a, rasterio.open(d / "maps" / "class.tif") as c:
+        flag, cls = a.read(1), c.read(1)
+    np.testing.assert_array_equal(flag == 255, cls == 0)
+    share = json.loads((d / "manifest.json").read_text())["steps"]["mapping"]["share_outside_applicability"]
+    assert share == round(float((flag == 0).sum() / (flag != 255).sum()), 4)

@@ -9,6 +9,8 @@ are then built from them as a separate step.
 
 from __future__ import annotations
 
+import json
+import shutil
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -18,7 +20,7 @@ import xarray as xr
 from rasterio.windows import Window
 
 from .grid import Grid
-from .io import atomic_path
+from .io import atomic_path, write_json
 from .progress import progress_bar
 
 CLASS_NODATA = 0
@@ -52,51 +54,159 @@ def _profile(grid: Grid, count: int, dtype: str, nodata: float) -> dict:
             "blockysize": 256, "compress": "deflate", "BIGTIFF": "IF_SAFER"}
 
 
+LAYERS = ("probability", "class", "confidence")
+AOA_LAYERS = ("dissimilarity", "applicability")
+
+
+def window_memory_bytes(n_features: int, n_classes: int, window_size: int, *, n_train: int = 0) -> int:
+    """Working memory of one prediction window: the feature block (float32, read and transposed),
+    the outputs, and the AOA distance block (2048 rows x training points, float32) when asked."""
+    px = window_size * window_size
+    features = 2 * 4 * n_features * px
+    outputs = 4 * (2 * n_classes + 3) * px + px
+    aoa = 4 * 2048 * n_train * 2 if n_train else 0
+    return int(features + outputs + aoa)
+
+
+def _stage_profiles(grid: Grid, k: int, with_aoa: bool) -> dict[str, dict]:
+    profiles = {"probability": _profile(grid, k, "float32", np.nan),
+                "class": _profile(grid, 1, "uint8", CLASS_NODATA),
+                "confidence": _profile(grid, 3, "float32", np.nan)}
+    if with_aoa:
+        profiles["dissimilarity"] = _profile(grid, 1, "float32", np.nan)
+        profiles["applicability"] = _profile(grid, 1, "uint8", 255)
+    return profiles
+
+
+class _Progress:
+    """Which windows are already on disk: a small JSON beside the staged rasters, rewritten per window.
+
+    A window is recorded only after all its layers were written, so a run killed at any moment
+    resumes at a window boundary and never trusts a half-written window.
+    """
+
+    def __init__(self, stage: Path, signature: dict):
+        self.path = stage / "windows_done.json"
+        self.signature = signature
+        self.done: set[int] = set()
+        if self.path.exists():
+            record = json.loads(self.path.read_text())
+            if record.get("signature") == signature:
+                self.done = set(record.get("done", []))
+
+    def mark(self, i: int) -> None:
+        self.done.add(i)
+        write_json({"signature": self.signature, "done": sorted(self.done)}, self.path)
+
+
+def _create_stage(stage: Path, profiles: dict[str, dict], class_names: tuple[str, ...], resume: bool) -> None:
+    """Create the staged tiled GeoTIFFs (kept as they are when resuming)."""
+    names = {"probability": class_names, "confidence": CONFIDENCE_BANDS, "class": ("class",),
+             "dissimilarity": ("dissimilarity_index",), "applicability": ("inside_aoa",)}
+    for layer, prof in profiles.items():
+        path = stage / f"{layer}.tif"
+        if resume and path.exists():
+            continue
+        with rasterio.open(path, "w", **prof) as dst:
+            for i, n in enumerate(names[layer], start=1):
+                dst.set_band_description(i, n)
+
+
+def _write_window(stage: Path, res: dict[str, np.ndarray], w: Window) -> None:
+    """Write one window to every staged layer and close them: only a closed file is surely on disk
+    (rasterio exposes no flush), and a window is recorded as done only after this returns."""
+    for name, values in res.items():
+        with rasterio.open(stage / f"{name}.tif", "r+") as dst:
+            dst.write(values.T.reshape(values.shape[1], w.height, w.width), window=w)
+
+
+def _predict_window(model, X: np.ndarray, ok: np.ndarray, k: int, aoa_model) -> dict[str, np.ndarray]:
+    n = ok.size
+    res = {"probability": np.full((n, k), np.nan, np.float32), "class": np.zeros((n, 1), np.uint8),
+           "confidence": np.full((n, 3), np.nan, np.float32)}
+    if aoa_model is not None:
+        res["dissimilarity"] = np.full((n, 1), np.nan, np.float32)
+        res["applicability"] = np.full((n, 1), 255, np.uint8)
+    if X.shape[0]:
+        p = model.predict_proba(X)
+        res["probability"][ok] = p
+        res["class"][ok, 0] = np.argmax(p, axis=1) + 1
+        res["confidence"][ok] = confidence_layers(p).T
+        if aoa_model is not None:
+            from .applicability import dissimilarity_index
+
+            di = dissimilarity_index(aoa_model, X)
+            res["dissimilarity"][ok, 0] = di
+            res["applicability"][ok, 0] = np.where(np.isnan(di), 255, di <= aoa_model.threshold)
+    return res
+
+
 def predict_map(model, cube: xr.Dataset, features: list[str], grid: Grid, out_dir: str | Path, *,
                 valid: xr.DataArray, class_names: tuple[str, ...], window_size: int = 512,
-                progress: bool = True) -> dict[str, Path]:
+                aoa_model=None, memory_budget_gb: float | None = None, progress: bool = True) -> dict[str, Path]:
     """Predict the whole grid window by window; return the paths of the COGs written.
 
     Writes ``probability.tif`` (one band per class, band descriptions = class
     names), ``class.tif`` (codes 1..K, 0 = nodata, equal to the per-pixel argmax)
-    and ``confidence.tif`` into ``out_dir``.
+    and ``confidence.tif`` into ``out_dir``; with an ``aoa_model``
+    (:func:`~wetlandflow.applicability.fit_applicability`) also
+    ``dissimilarity.tif`` (DI) and ``applicability.tif`` (1 inside the area of
+    applicability, 0 outside, 255 no data).
+
+    Only pixels inside ``valid`` are sent to the model.  Windows are staged in
+    ``out_dir/.stage`` and recorded as done one by one: calling again after an
+    interruption (same model, features and grid) resumes at the first window
+    not yet written.  ``memory_budget_gb`` refuses to start when one window's
+    working memory (:func:`window_memory_bytes`) would exceed the budget.
     """
+    from .errors import BudgetError
+
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     k = len(class_names)
+    need = window_memory_bytes(len(features), k, window_size,
+                               n_train=0 if aoa_model is None else aoa_model.train_scaled.shape[0])
+    if memory_budget_gb is not None and need > memory_budget_gb * 2**30:
+        raise BudgetError(f"one prediction window of {window_size} x {window_size} pixels needs about "
+                          f"{need / 2**30:.2f} GiB, above the memory budget of {memory_budget_gb} GiB; "
+                          "lower output.chunk_size or raise output.memory_budget_gb")
     stage = out_dir / ".stage"
     stage.mkdir(exist_ok=True)
-    paths = {n: stage / f"{n}.tif" for n in ("probability", "class", "confidence")}
+    profiles = _stage_profiles(grid, k, aoa_model is not None)
+    signature = {"features": list(features), "classes": list(class_names), "grid": str(grid.to_dict()),
+                 "window_size": int(window_size), "model": _model_signature(model),
+                 "aoa": None if aoa_model is None else float(aoa_model.threshold)}
+    done = _Progress(stage, signature)
     wins = list(windows(grid, window_size))
     data = cube[features].to_dataarray("feature").transpose("feature", "y", "x")
-    with rasterio.open(paths["probability"], "w", **_profile(grid, k, "float32", np.nan)) as p_dst, \
-         rasterio.open(paths["class"], "w", **_profile(grid, 1, "uint8", CLASS_NODATA)) as c_dst, \
-         rasterio.open(paths["confidence"], "w", **_profile(grid, 3, "float32", np.nan)) as q_dst:
-        for dst, names in ((p_dst, class_names), (q_dst, CONFIDENCE_BANDS), (c_dst, ("class",))):
-            for i, n in enumerate(names, start=1):
-                dst.set_band_description(i, n)
-        for w in progress_bar(wins, desc="predicting", unit="window", disable=not progress):
-            sl = {"y": slice(w.row_off, w.row_off + w.height), "x": slice(w.col_off, w.col_off + w.width)}
-            block = np.asarray(data.isel(sl).values, dtype=np.float32)
-            ok = np.asarray(valid.isel(sl).values, dtype=bool).ravel()
-            X = block.reshape(len(features), -1).T[ok]
-            proba = np.full((w.height * w.width, k), np.nan, np.float32)
-            cls = np.zeros(w.height * w.width, np.uint8)
-            conf = np.full((w.height * w.width, 3), np.nan, np.float32)
-            if X.shape[0]:
-                p = model.predict_proba(X)
-                proba[ok] = p
-                cls[ok] = np.argmax(p, axis=1) + 1
-                conf[ok] = confidence_layers(p).T
-            p_dst.write(proba.T.reshape(k, w.height, w.width), window=w)
-            c_dst.write(cls.reshape(1, w.height, w.width), window=w)
-            q_dst.write(conf.T.reshape(3, w.height, w.width), window=w)
+    _create_stage(stage, profiles, class_names, resume=bool(done.done))
+    todo = [(i, w) for i, w in enumerate(wins) if i not in done.done]
+    for i, w in progress_bar(todo, desc="predicting", unit="window", disable=not progress):
+        sl = {"y": slice(w.row_off, w.row_off + w.height), "x": slice(w.col_off, w.col_off + w.width)}
+        block = np.asarray(data.isel(sl).values, dtype=np.float32)
+        ok = np.asarray(valid.isel(sl).values, dtype=bool).ravel()
+        _write_window(stage, _predict_window(model, block.reshape(len(features), -1).T[ok], ok, k, aoa_model), w)
+        done.mark(i)
     out = {}
-    for name, resampling in (("probability", "average"), ("class", "mode"), ("confidence", "average")):
-        out[name] = build_cog(paths[name], out_dir / f"{name}.tif", overview_resampling=resampling)
-        paths[name].unlink()
-    stage.rmdir()
+    for name in profiles:
+        resampling = "mode" if name in ("class", "applicability") else "average"
+        out[name] = build_cog(stage / f"{name}.tif", out_dir / f"{name}.tif", overview_resampling=resampling)
+    shutil.rmtree(stage)
     return out
+
+
+def _model_signature(model) -> str:
+    """A short fingerprint of a fitted model, so staged windows of another model are never reused."""
+    import hashlib
+    import pickle
+
+    try:
+        raw = model.model_.get_booster().save_raw("ubj") if getattr(model, "kind", "") == "xgboost" else None
+    except AttributeError:
+        raw = None
+    if raw is None:
+        raw = pickle.dumps(model)
+    return hashlib.sha256(bytes(raw)).hexdigest()[:16]
 
 
 def build_cog(src_path: str | Path, dst_path: str | Path, *, overview_resampling: str) -> Path:

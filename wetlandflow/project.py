@@ -131,6 +131,18 @@ class SamplesSection:
 @dataclass(frozen=True)
 class OutputSection:
     chunk_size: int = 512
+    memory_budget_gb: float = 4.0
+    applicability: bool = True
+    mmu_pixels: int = 9
+    connectivity: int = 8
+    explain: bool = True
+    explain_rows: int = 1200
+
+
+@dataclass(frozen=True)
+class ComputeSection:
+    scheduler: str = ""  # "" threads in this process; "local" a LocalCluster; else a scheduler address
+    n_workers: int = 2
 
 
 @dataclass(frozen=True)
@@ -152,6 +164,7 @@ class Project:
     validation: ValidationSection = ValidationSection()
     samples: SamplesSection = SamplesSection()
     output: OutputSection = OutputSection()
+    compute: ComputeSection = ComputeSection()
 
     @property
     def root(self) -> Path:
@@ -355,6 +368,16 @@ def _validate(p: Project) -> None:
         )
     if p.output.chunk_size < 64:
         raise ProjectFileError(f"chunk_size must be >= 64, got {p.output.chunk_size}", key="output.chunk_size")
+    if p.output.mmu_pixels < 1:
+        raise ProjectFileError(f"mmu_pixels must be >= 1 (1 keeps every patch), got {p.output.mmu_pixels}",
+                               key="output.mmu_pixels")
+    if p.output.connectivity not in (4, 8):
+        raise ProjectFileError(f"connectivity must be 4 or 8, got {p.output.connectivity}", key="output.connectivity")
+    if p.output.memory_budget_gb <= 0:
+        raise ProjectFileError(f"memory_budget_gb must be > 0, got {p.output.memory_budget_gb}",
+                               key="output.memory_budget_gb")
+    if p.compute.n_workers < 1:
+        raise ProjectFileError(f"n_workers must be >= 1, got {p.compute.n_workers}", key="compute.n_workers")
     if p.grid.pixel_size_m < 0:
         raise ProjectFileError(f"pixel_size_m must be > 0 (or 0 for the default), got {p.grid.pixel_size_m}",
                                key="grid.pixel_size_m")

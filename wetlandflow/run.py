@@ -25,6 +25,7 @@ from .io import check_writable, sha256_file, write_figure, write_json, write_tab
 from .mapping import class_areas, predict_map
 from .models import ClassScheme, WetlandClassifier, data_hash, save_bundle
 from .project import Project, config_hash, load_project, to_dict
+from .steps import applicability_model, write_explanations, write_inventory_outputs
 from .samples import class_balance, drop_incomplete, extract_samples, missing_report, plot_pixels, read_plots
 
 
@@ -226,19 +227,50 @@ def run_project(project: Project | str | Path, *, progress: bool = True) -> RunR
         save_bundle(model, run_dir / "model", features=features, scheme=scheme,
                     training_hash=data_hash(samples, features), extra={"config_sha256": manifest.data["config_sha256"]})
         rec["n_features"] = len(features)
+        aoa_model = None
+        if project.output.applicability:
+            aoa_model = applicability_model(model, samples, features, folds)
+            rec["applicability_threshold"] = round(aoa_model.threshold, 6)
 
     with manifest.step("mapping") as rec:
-        valid = inputs.aoi
-        maps = predict_map(model, cube, features, grid, run_dir / "maps", valid=valid,
+        maps = predict_map(model, cube, features, grid, run_dir / "maps", valid=inputs.aoi,
                            class_names=project.classes.names, window_size=project.output.chunk_size,
+                           aoa_model=aoa_model, memory_budget_gb=project.output.memory_budget_gb,
                            progress=progress)
-        areas = class_areas(maps["class"], project.classes.names, grid.pixel_area_m2)
-        write_table(areas, run_dir / "areas.csv")
         rec["outputs"] = {k: str(v.relative_to(run_dir)) for k, v in maps.items()}
+        if "applicability" in maps:
+            rec["share_outside_applicability"] = share_outside_applicability(maps["applicability"])
+
+    with manifest.step("inventory") as rec:
+        rec.update(write_inventory_outputs(maps, run_dir, grid, project.classes.names,
+                                           mmu_pixels=project.output.mmu_pixels,
+                                           connectivity=project.output.connectivity))
+        areas = class_areas(run_dir / rec["outputs"]["class_final"], project.classes.names, grid.pixel_area_m2)
+        write_table(areas, run_dir / "areas.csv")
+
+    if project.output.explain:
+        with manifest.step("explain") as rec:
+            rec.update(write_explanations(model, samples, features, {k: dict(v.attrs) for k, v in
+                                                                     cube.data_vars.items()},
+                                          run_dir / "explain", n_rows=project.output.explain_rows,
+                                          seed=project.project.seed,
+                                          block_size_m=project.validation.block_size_m))
 
     manifest.data["finished"] = dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")
     manifest.save()
     return RunResult(run_dir, manifest.data, areas, metrics, balance)
+
+
+def share_outside_applicability(path: Path) -> float:
+    """Share of the mapped pixels (applicability flag 0 or 1) outside the area of applicability."""
+    import rasterio
+
+    counts = np.zeros(256, np.int64)
+    with rasterio.open(path) as src:
+        for _, w in src.block_windows(1):
+            counts += np.bincount(src.read(1, window=w).ravel(), minlength=256)
+    mapped = counts[0] + counts[1]
+    return round(float(counts[0] / mapped), 4) if mapped else float("nan")
 
 
 def prediction_points(aoi, grid, *, n: int, seed: int) -> np.ndarray:
@@ -308,7 +340,21 @@ def format_summary(result: RunResult) -> str:
     a = result.areas
     for name, ha, share in zip(a["class"], a["mapped_area_ha"], a["mapped_share"], strict=True):
         lines.append(f"  {name:<12s} {ha:>12,.1f} ha ({100 * share:5.1f} %)")
-    lines += ["", "Outputs: maps/probability.tif, maps/class.tif, maps/confidence.tif, validation/, model/, "
-              "areas.csv, manifest.json", "", f"CAUTION: {CAUTION}"]
+    steps = result.manifest.get("steps", {})
+    share = steps.get("mapping", {}).get("share_outside_applicability")
+    if share is not None:
+        lines += ["", f"Outside the area of applicability (Meyer & Pebesma 2021): {100 * share:.1f} % of the "
+                      "mapped pixels; predictions there extrapolate beyond the training data."]
+    inv = steps.get("inventory", {})
+    if inv:
+        lines += [f"Inventory: {inv['n_polygons']:,} polygons after a minimum mapping unit of "
+                  f"{inv['mmu_pixels']} pixels ({inv['connectivity']}-connected)."]
+    drivers = steps.get("explain", {}).get("top_drivers")
+    if drivers:
+        lines += ["", "Top drivers per class (mean |SHAP|):"]
+        lines += [f"  {c:<12s} {', '.join(f)}" for c, f in drivers.items()]
+    lines += ["", "Outputs: maps/ (probability, class, class_final, confidence, dissimilarity, applicability), "
+              "inventory.gpkg, validation/, model/, explain/, areas.csv, manifest.json", "",
+              f"CAUTION: {CAUTION}"]
     return "\n".join(lines)
 

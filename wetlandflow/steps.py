@@ -1,0 +1,149 @@
+"""The later steps of a run, each a composition of library functions that writes its outputs.
+
+:func:`wetlandflow.run.run_project` calls these after the model is fitted:
+the area of applicability model, the inventory (minimum mapping unit and
+polygons) and the explanations.  Each returns the small record the manifest
+keeps; the tables and figures go into the run folder.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import rasterio
+
+from .applicability import ApplicabilityModel, fit_applicability, xgb_importance_weights
+from .grid import Grid
+from .io import write_figure, write_table
+
+
+# -- area of applicability ------------------------------------------------------------------------------------
+def importance_weights(model, features: list[str]) -> np.ndarray:
+    """Importance weights for the AOA: gain for XGBoost, impurity decrease for a random forest."""
+    if model.kind == "xgboost":
+        return xgb_importance_weights(model, features)
+    return np.asarray(model.model_.feature_importances_, dtype=np.float64)
+
+
+def applicability_model(model, samples: pd.DataFrame, features: list[str], folds: np.ndarray
+                        ) -> ApplicabilityModel:
+    """The AOA model (Meyer & Pebesma 2021) from the training samples, the fitted model and the CV folds.
+
+    Missing feature values count as the training mean (``nan_policy="impute_mean"``), as the
+    samples keep NaN where a layer has no data.
+    """
+    X = samples[features].to_numpy(np.float64)
+    return fit_applicability(X, importance_weights(model, features), np.asarray(folds),
+                             nan_policy="impute_mean")
+
+
+# -- inventory: minimum mapping unit and polygons --------------------------------------------------------------
+def _read(path: Path) -> np.ndarray:
+    with rasterio.open(path) as src:
+        return src.read()
+
+
+def _write_class_cog(values: np.ndarray, like: Path, dst: Path) -> Path:
+    """Write a class raster with the profile of ``like`` (staged, then COG with mode overviews)."""
+    from .mapping import build_cog
+
+    stage = dst.with_name(f".{dst.stem}.stage.tif")
+    with rasterio.open(like) as src:
+        profile = src.profile | {"driver": "GTiff", "tiled": True, "blockxsize": 256, "blockysize": 256,
+                                 "compress": "deflate"}
+        desc = src.descriptions
+    with rasterio.open(stage, "w", **profile) as out:
+        out.write(values[None])
+        out.set_band_description(1, desc[0] or "class")
+    build_cog(stage, dst, overview_resampling="mode")
+    stage.unlink()
+    return dst
+
+
+def write_inventory_outputs(maps: dict[str, Path], run_dir: Path, grid: Grid, class_names: tuple[str, ...], *,
+                            mmu_pixels: int, connectivity: int) -> dict[str, Any]:
+    """Apply the minimum mapping unit, write ``maps/class_final.tif`` and the polygon inventory.
+
+    Writes ``inventory.gpkg`` (layer ``inventory``) and ``inventory_areas.csv``; returns the
+    record for the manifest, including the check that polygon areas per class sum to the final
+    raster's class areas.  Computes in memory (connected components are global).
+    """
+    from .inventory import apply_mmu, area_summary, polygonize, write_inventory
+
+    cm = _read(maps["class"])[0]
+    proba = np.nan_to_num(_read(maps["probability"]), nan=0.0)
+    final = apply_mmu(cm, proba, min_pixels=mmu_pixels, connectivity=connectivity) if mmu_pixels > 1 else cm
+    final_path = _write_class_cog(final, maps["class"], run_dir / "maps" / "class_final.tif")
+    outside = None
+    if "applicability" in maps:
+        outside = _read(maps["applicability"])[0] == 0
+    gdf = polygonize(final, grid, class_names=class_names, proba=proba, outside_aoa=outside,
+                     connectivity=connectivity)
+    write_inventory(gdf, run_dir / "inventory.gpkg")
+    summary = area_summary(gdf)
+    write_table(summary, run_dir / "inventory_areas.csv")
+    raster_ha = np.bincount(final.ravel(), minlength=len(class_names) + 1)[1:] * grid.pixel_area_m2 / 1e4
+    poly_ha = summary.set_index("class_code")["area_ha"].reindex(range(1, len(class_names) + 1), fill_value=0.0)
+    worst = float(np.max(np.abs(poly_ha.to_numpy() - raster_ha))) if raster_ha.size else 0.0
+    return {"mmu_pixels": int(mmu_pixels), "connectivity": int(connectivity),
+            "pixels_changed_by_mmu": int((final != cm).sum()), "n_polygons": int(len(gdf)),
+            "polygon_vs_raster_area_max_diff_ha": round(worst, 6),
+            "outputs": {"class_final": str(final_path.relative_to(run_dir)), "inventory": "inventory.gpkg",
+                        "inventory_areas": "inventory_areas.csv"}}
+
+
+# -- explanations -------------------------------------------------------------------------------------------------
+def _domains(cube_attrs: dict[str, dict], features: list[str]) -> dict[str, str]:
+    return {f: str(cube_attrs.get(f, {}).get("domain", "user")) for f in features}
+
+
+def top_drivers(importance: pd.DataFrame, classes: list[str], n: int = 3) -> dict[str, list[str]]:
+    """The ``n`` features with the largest mean |SHAP| for each class."""
+    return {c: [str(f) for f in importance[c].sort_values(ascending=False).head(n).index] for c in classes}
+
+
+def write_explanations(model, samples: pd.DataFrame, features: list[str], cube_attrs: dict[str, dict],
+                       out_dir: Path, *, n_rows: int, seed: int, block_size_m: float) -> dict[str, Any]:
+    """SHAP values of a spatially stratified subsample and their summaries, into ``explain/``.
+
+    Writes ``shap_values.parquet`` (long table), ``importance.csv`` (mean |SHAP| per feature and
+    class), ``domain_importance.csv``, ``cluster_importance.csv`` (correlation clusters, |r| >= 0.8),
+    and figures ``importance.png``, ``domains.png`` and ``beeswarm_<class>.png``.
+    """
+    import matplotlib.pyplot as plt
+
+    from .explain import cluster_importance, domain_importance, global_importance, shap_values, stratified_subsample
+    from .explain_plots import plot_beeswarm, plot_domain_importance, plot_importance
+    from .explore import predictor_correlation, redundant_predictors
+
+    sub = stratified_subsample(samples, n=n_rows, seed=seed, block_size_m=block_size_m)
+    sv = shap_values(model, sub[features], features=features)
+    imp = global_importance(sv)
+    domains = domain_importance(sv, _domains(cube_attrs, features))
+    corr = predictor_correlation(samples, features)
+    red = redundant_predictors(corr, threshold=0.8)
+    clusters = cluster_importance(sv, {f: f"cluster {int(c)} ({red.table['kept_member'][f]})"
+                                       for f, c in red.table["cluster"].items()})
+    values = sv["values"]
+    long = values.drop_vars("present").to_dataframe(name="shap").reset_index()
+    write_table(long, out_dir / "shap_values.parquet")
+    write_table(imp.reset_index(), out_dir / "importance.csv")
+    write_table(domains, out_dir / "domain_importance.csv")
+    write_table(clusters, out_dir / "cluster_importance.csv")
+    classes = [str(c) for c in values["class"].values]
+    figures = {"importance.png": plot_importance(imp), "domains.png": plot_domain_importance(domains)}
+    figures |= {f"beeswarm_{c}.png": plot_beeswarm(sv, sub[features], c, seed=seed) for c in classes}
+    for name, fig in figures.items():
+        write_figure(fig, out_dir / name)
+        plt.close(fig)
+    drivers = top_drivers(imp, classes)
+    by_domain = {c: domains[domains["class"] == c].sort_values("share", ascending=False)
+                 .head(2)[["domain", "share"]].round(3).to_dict(orient="records") for c in classes}
+    record = {"n_rows": int(len(sub)), "top_drivers": drivers, "top_domains": by_domain,
+              "cluster_note": clusters.attrs.get("note", "")}
+    (out_dir / "drivers.json").write_text(json.dumps(record, indent=2))
+    return record
