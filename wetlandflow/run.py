@@ -157,18 +157,58 @@ def cross_validate(project: Project, samples: pd.DataFrame, features: list[str],
     return oof, folds
 
 
+SCHEDULER_ENV = "WETLANDFLOW_SCHEDULER"
+
+
+@contextmanager
+def compute_context(project: Project):
+    """Where dask work runs: this process's threads, a LocalCluster, or a cluster at an address.
+
+    ``compute.scheduler`` in the project file, or the environment variable ``WETLANDFLOW_SCHEDULER``
+    (which wins, so a notebook or batch job can redirect a run without editing the file): ``""`` keeps
+    dask's threaded scheduler in this process; ``"local"`` starts a ``dask.distributed.LocalCluster``
+    with ``compute.n_workers`` single-threaded worker processes for the run; anything else is taken as
+    a scheduler address (``tcp://host:8786``) of a running cluster whose workers can read the
+    project's input files under the same paths.  Yields the client (``None`` for threads).
+    """
+    import os
+
+    target = os.environ.get(SCHEDULER_ENV, project.compute.scheduler).strip()
+    if not target:
+        yield None
+        return
+    from distributed import Client, LocalCluster
+
+    if target == "local":
+        with LocalCluster(n_workers=project.compute.n_workers, threads_per_worker=1, processes=True,
+                          dashboard_address=None) as cluster, Client(cluster) as client:
+            yield client
+        return
+    with Client(target) as client:
+        yield client
+
+
 def run_project(project: Project | str | Path, *, progress: bool = True) -> RunResult:
-    """Run a project end to end and write its run folder.
+    """Run a project end to end and write its run folder (on the cluster of :func:`compute_context`).
 
     Examples
     --------
     >>> result = run_project("demo/project.toml")  # doctest: +SKIP
     >>> print(result.summary())                     # doctest: +SKIP
     """
-    from .accuracy import accuracy_measures, error_matrix
-
     if not isinstance(project, Project):
         project = load_project(project)
+    with compute_context(project) as client:
+        result = _run(project, progress=progress)
+        result.manifest.setdefault("compute", {})["scheduler"] = (
+            "threads (this process)" if client is None else str(client.scheduler.address))
+        write_json(result.manifest, result.run_dir / "manifest.json")
+        return result
+
+
+def _run(project: Project, *, progress: bool = True) -> RunResult:
+    from .accuracy import accuracy_measures, error_matrix
+
     run_dir = check_writable(project.run_dir)
     manifest = Manifest(run_dir, project)
     scheme = ClassScheme(project.classes.names, project.classes.parents)
