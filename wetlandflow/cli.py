@@ -1,4 +1,4 @@
-"""Command-line entry point: ``wetlandflow demo|run|check``.
+"""Command-line entry point: ``wetlandflow demo|run|check|sample|assess``.
 
 Exit code 0 on success; on failure one clear message and a non-zero code
 (``--debug`` shows the traceback).
@@ -52,7 +52,65 @@ def _cmd_demo(args: argparse.Namespace) -> int:
         return 0
     result = run_project(project_file, progress=not args.quiet)
     print(result.summary())
+    if args.no_assess:
+        return 0
+    from .assessment import class_codes, design_sample, label_from_reference
+    from .demo import load_truth
+    from .project import load_project
+
+    project = load_project(project_file)
+    sample = design_sample(project, overwrite=True)
+    # The demo's "photo-interpreter" is its hidden truth raster; with real data people label the sample.
+    labelled = label_from_reference(sample, load_truth(out), class_codes(project),
+                                    sample.with_name("sample_labelled.gpkg"))
+    print("")
+    print(format_assessment(project, labelled))
     return 0
+
+
+def _cmd_sample(args: argparse.Namespace) -> int:
+    from .assessment import design_sample, sample_design_record
+    from .project import load_project
+
+    project = load_project(args.project)
+    path = design_sample(project, target_se=args.target_se, allocation=args.allocation,
+                         min_per_class=args.min_per_class, exclude_buffer_m=args.buffer_m, overwrite=args.overwrite)
+    rec = sample_design_record(project.run_dir)
+    print(f"validation sample: {rec['n_total']} points (formula: {rec['n_from_formula']} for a standard error of "
+          f"{rec['target_se']:g} in overall accuracy), {args.allocation} allocation:")
+    for name, n in rec["per_class"].items():
+        print(f"  {name:<12s} {n:>6d}")
+    print(f"written to {path}\n{rec['instructions']}")
+    return 0
+
+
+def _cmd_assess(args: argparse.Namespace) -> int:
+    from .project import load_project
+
+    project = load_project(args.project)
+    print(format_assessment(project, args.labelled, design=args.design))
+    return 0
+
+
+def format_assessment(project, labelled, *, design: str = "stratified") -> str:
+    """Assess a labelled sample and format the error-adjusted areas and accuracy as text."""
+    import pandas as pd
+
+    from .assessment import assess
+
+    res = assess(project, labelled, design=design)
+    table = pd.read_csv(project.run_dir / "areas.csv")
+    acc = pd.read_csv(project.run_dir / "accuracy" / "accuracy_table.csv").set_index("class")
+    lines = [f"Accuracy from {res['n']} labelled sample points ({design} estimator, Olofsson et al. 2014):",
+             f"  overall accuracy {res['overall_accuracy']:.3f} (SE {res['overall_se']:.3f})", "",
+             f"  {'class':<12s} {'mapped ha':>10s} {'adjusted ha':>12s} {'95% CI ha':>21s} {'user':>6s} "
+             f"{'producer':>9s}"]
+    for _, r in table.iterrows():
+        a = acc.loc[r["class"]]
+        lines.append(f"  {r['class']:<12s} {r['mapped_area_ha']:>10,.1f} {r['estimated_area_ha']:>12,.1f} "
+                     f"{r['ci_low_ha']:>10,.1f}-{r['ci_high_ha']:<10,.1f} {a['users']:>6.2f} {a['producers']:>9.2f}")
+    lines += ["", f"Tables and figures: {res['folder']}; areas.csv updated.", "", f"CAUTION: {CAUTION}"]
+    return "\n".join(lines)
 
 
 class _pandas_wide:
@@ -87,8 +145,25 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--size", type=int, default=600, help="pixels per side at 10 m (default 600 = 6 km)")
     d.add_argument("--seed", type=int, default=0, help="seed of the landscape")
     d.add_argument("--no-run", action="store_true", help="only generate the inputs")
+    d.add_argument("--no-assess", action="store_true",
+                   help="skip the validation sample (labelled from the demo's truth) and the area estimates")
     d.add_argument("--quiet", action="store_true", help="no progress bars")
     d.set_defaults(func=_cmd_demo)
+
+    s = sub.add_parser("sample", help="design the validation sample of a finished run (GeoPackage to label)")
+    s.add_argument("project", help="project file (TOML)")
+    s.add_argument("--target-se", type=float, default=0.01, help="target standard error of overall accuracy")
+    s.add_argument("--allocation", choices=("min_per_class", "proportional", "equal"), default="min_per_class")
+    s.add_argument("--min-per-class", type=int, default=50, help="floor per class for min_per_class")
+    s.add_argument("--buffer-m", type=float, default=100.0, help="keep points this far from training plots")
+    s.add_argument("--overwrite", action="store_true", help="replace an existing sample file (it may hold labels)")
+    s.set_defaults(func=_cmd_sample)
+
+    a = sub.add_parser("assess", help="error-adjusted areas and accuracy from the labelled validation sample")
+    a.add_argument("project", help="project file (TOML)")
+    a.add_argument("labelled", help="the sample GeoPackage with reference_class filled in")
+    a.add_argument("--design", choices=("stratified", "simple_random", "systematic"), default="stratified")
+    a.set_defaults(func=_cmd_assess)
     return p
 
 

@@ -444,7 +444,8 @@ def write_sample(gdf: gpd.GeoDataFrame, path: str | Path, *, overwrite: bool = F
         )
     if path.exists() and not overwrite:
         raise OutputError(
-            f"{path} already exists (it may hold labels); pass overwrite=True or choose a new name."
+            f"{path} already exists (it may hold labels); pass overwrite=True (command line: --overwrite) "
+            "or choose a new name."
         )
     try:
         path.parent.mkdir(parents=True, exist_ok=True)

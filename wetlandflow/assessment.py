@@ -1,0 +1,244 @@
+"""The accuracy assessment of a run: design the validation sample, ingest its labels, write the tables.
+
+Good practice (Olofsson et al. 2014, Good practices for estimating area and
+assessing accuracy of land change, Remote Sensing of Environment 148) estimates
+class areas and accuracies from a probability sample of reference labels, with
+the map classes as strata; the map's own pixel counts are biased by its errors.
+This module composes :mod:`.sampling` and :mod:`.accuracy` for a run folder:
+
+1. :func:`design_sample` sizes the sample for a target standard error of overall
+   accuracy, allocates it over the final map's classes, draws it (away from the
+   training plots) and writes ``validation_sample/sample.gpkg`` with an empty
+   ``reference_class`` column for the photo-interpreters;
+2. :func:`assess` reads the labelled file back and writes ``accuracy/`` and the
+   error-adjusted ``areas.csv``.
+
+:func:`coverage_study` repeats design, draw and estimation against a reference
+raster to measure how often the confidence intervals contain the true areas.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from . import CAUTION
+from .errors import ValidationDesignError
+from .io import write_figure, write_json, write_table
+from .project import Project, load_project
+
+SAMPLE_DIR = "validation_sample"
+ACCURACY_DIR = "accuracy"
+# Conjectured user's accuracies for sizing the sample (Olofsson et al. 2014 suggest using expected values;
+# these defaults are a rule of thumb: common practice, no source).
+DEFAULT_EXPECTED_USERS = 0.8
+
+
+def _project(project: Project | str | Path) -> Project:
+    return project if isinstance(project, Project) else load_project(project)
+
+
+def final_class_map(run_dir: Path) -> xr.DataArray:
+    """The run's final class map (after the minimum mapping unit) as a DataArray with its CRS."""
+    import rioxarray
+
+    path = run_dir / "maps" / "class_final.tif"
+    if not path.exists():
+        raise ValidationDesignError(f"{path} not found: run the project first (wetlandflow run PROJECT.toml)")
+    return rioxarray.open_rasterio(path).isel(band=0, drop=True).load()
+
+
+def class_codes(project: Project) -> dict[int, str]:
+    """Map code -> class name, in the scheme's order (codes 1..K)."""
+    return {i + 1: n for i, n in enumerate(project.classes.names)}
+
+
+def design_sample(project: Project | str | Path, *, target_se: float = 0.01,
+                  expected_users: Mapping[str, float] | float = DEFAULT_EXPECTED_USERS,
+                  allocation: str = "min_per_class", min_per_class: int = 50, exclude_buffer_m: float = 100.0,
+                  seed: int | None = None, overwrite: bool = False) -> Path:
+    """Size, allocate and draw the validation sample of a finished run; return the GeoPackage written.
+
+    Parameters
+    ----------
+    project : Project or path
+        The project whose run folder holds ``maps/class_final.tif``.
+    target_se : float
+        Target standard error of overall accuracy (0.01 = one percentage point).
+    expected_users : float or dict
+        Conjectured user's accuracy per class (or one value for all) for the sample-size formula.
+    allocation : {"min_per_class", "proportional", "equal"}
+        How the total is split over the map classes; ``"min_per_class"`` is proportional with a floor
+        (Olofsson et al. 2014 recommend enough points in rare classes).
+    min_per_class : int
+        The floor for ``"min_per_class"``.
+    exclude_buffer_m : float
+        No point within this distance of a training plot (spatially independent validation).
+    seed : int, optional
+        Seed of the draw; default: the project's seed.
+    overwrite : bool
+        Replace an existing sample file (off: it may already hold labels).
+    """
+    from .inputs import project_grid
+    from .samples import read_plots
+    from .sampling import allocate, draw_stratified_sample, mapped_proportions, sample_size_overall, write_sample
+
+    p = _project(project)
+    codes = class_codes(p)
+    cmap = final_class_map(p.run_dir)
+    props = mapped_proportions(cmap, codes)
+    users = {c: (expected_users.get(n, DEFAULT_EXPECTED_USERS) if isinstance(expected_users, Mapping)
+                 else float(expected_users)) for c, n in codes.items()}
+    present = {c: w for c, w in props.items() if w > 0}
+    n = sample_size_overall(present, {c: users[c] for c in present}, target_se)
+    if allocation == "min_per_class":
+        n = max(n, min_per_class * len(present))  # the floor must fit inside the total
+    alloc = allocate(n, present, method=allocation, min_per_class=min_per_class)
+    plots = read_plots(p.plots.path, class_field=p.plots.class_field, id_field=p.plots.id_field,
+                       classes=p.classes.names, grid=project_grid(p), aoi=None)
+    seed = p.project.seed if seed is None else seed
+    gdf = draw_stratified_sample(cmap, alloc, seed=seed, exclude=plots, exclude_buffer_m=exclude_buffer_m,
+                                 class_names=codes)
+    out = p.run_dir / SAMPLE_DIR
+    path = write_sample(gdf, out / "sample.gpkg", overwrite=overwrite)
+    write_json({"n_total": int(sum(alloc.values())), "n_from_formula": int(n), "target_se": target_se,
+                "allocation": allocation, "per_class": {codes[c]: int(k) for c, k in alloc.items()},
+                "expected_users": {codes[c]: users[c] for c in present},
+                "mapped_proportions": {codes[c]: float(w) for c, w in props.items()},
+                "exclude_buffer_m": exclude_buffer_m, "seed": seed,
+                "instructions": "Fill reference_class for every point with a class name of the scheme from "
+                                "imagery or field visits, without looking at the map class; then run "
+                                "`wetlandflow assess PROJECT.toml " + f"{SAMPLE_DIR}/sample.gpkg`."},
+               out / "sample_design.json")
+    return path
+
+
+def assess(project: Project | str | Path, labelled: str | Path, *, design: str = "stratified",
+           confidence: float = 0.95) -> dict[str, Any]:
+    """Error-adjusted areas and accuracies from the labelled validation sample; write the tables and figures.
+
+    Writes ``accuracy/area_table.csv``, ``accuracy/accuracy_table.csv`` (user's, producer's, F1 with SE
+    and CI), ``accuracy/proportion_matrix.csv``, ``accuracy/summary.json`` (overall accuracy, disagreement,
+    notes, caution), the same tables at the level of the scheme's parent groups (``accuracy/grouped_*``),
+    figures ``error_matrix.png`` and ``areas.png``, and rewrites the run's ``areas.csv`` with mapped and
+    error-adjusted areas and their confidence intervals.
+    """
+    from .accuracy import plot_areas, plot_error_matrix
+    from .sampling import estimates_from_sample, read_labelled_sample
+
+    p = _project(project)
+    codes = class_codes(p)
+    cmap = final_class_map(p.run_dir)
+    labelled = Path(labelled)
+    if not labelled.is_absolute() and not labelled.exists():
+        labelled = p.run_dir / labelled
+    gdf = read_labelled_sample(labelled, codes, cmap)
+    result = estimates_from_sample(gdf, cmap, codes, design=design, confidence=confidence)
+    out = p.run_dir / ACCURACY_DIR
+    _write_result(result, out, "")
+    if p.classes.parents:
+        placed = {c for children in p.classes.parents.values() for c in children}
+        collapse = {k: list(v) for k, v in p.classes.parents.items()} | {
+            c: [c] for c in p.classes.names if c not in placed}
+        grouped = estimates_from_sample(gdf, cmap, codes, design=design, confidence=confidence, collapse=collapse)
+        _write_result(grouped, out, "grouped_")
+    import matplotlib.pyplot as plt
+
+    for name, fig in (("error_matrix.png", plot_error_matrix(result.proportion_matrix)),
+                      ("areas.png", plot_areas(result))):
+        write_figure(fig, out / name)
+        plt.close(fig)
+    write_table(result.area_table, p.run_dir / "areas.csv")
+    return {"n": int(len(gdf)), "overall_accuracy": result.overall.value, "overall_se": result.overall.se,
+            "folder": str(out)}
+
+
+def _write_result(result, out: Path, prefix: str) -> None:
+    write_table(result.area_table, out / f"{prefix}area_table.csv")
+    write_table(result.accuracy_table, out / f"{prefix}accuracy_table.csv")
+    write_table(result.proportion_matrix.reset_index(names="map \\ reference"),
+                out / f"{prefix}proportion_matrix.csv")
+    write_json({"overall_accuracy": result.overall.value, "overall_se": result.overall.se,
+                "overall_ci_half_width": result.overall.ci, "confidence": result.confidence,
+                "design": result.design, "disagreement": result.disagreement, "notes": list(result.notes),
+                "caution": CAUTION}, out / f"{prefix}summary.json")
+
+
+def label_from_reference(sample_path: str | Path, reference: xr.DataArray, codes: Mapping[int, str],
+                         out_path: str | Path) -> Path:
+    """Fill ``reference_class`` of a sample from a reference raster of class codes (e.g. a prior survey).
+
+    Points on reference no-data (code 0) keep an empty label and must be labelled by hand.
+    """
+    import geopandas as gpd
+
+    gdf = gpd.read_file(sample_path, layer="sample")
+    xs = xr.DataArray(gdf.geometry.x.to_numpy(), dims="p")
+    ys = xr.DataArray(gdf.geometry.y.to_numpy(), dims="p")
+    ref = np.asarray(reference.sel(x=xs, y=ys, method="nearest").values).astype(int)
+    gdf["reference_class"] = [codes.get(int(c), "") for c in ref]
+    gdf.to_file(out_path, layer="sample", driver="GPKG", mode="w")
+    return Path(out_path)
+
+
+def coverage_study(class_map: xr.DataArray, reference: xr.DataArray, codes: Mapping[int, str], *,
+                   allocation: Mapping[int, int], n_reps: int = 200, seed: int = 0,
+                   confidence: float = 0.95) -> pd.DataFrame:
+    """How often the stratified estimator's confidence intervals contain the true class areas.
+
+    Each repetition draws a stratified random sample of the map with ``allocation``, labels it from
+    ``reference`` (the truth), and estimates areas (Olofsson et al. 2014).  Returns, per class: the true
+    area, the mapped area and its bias, the mean estimated area, the estimator's mean bias, and the share
+    of repetitions whose interval covered the true area.
+    """
+    from .accuracy import error_matrix, stratified_estimates
+
+    cm = np.asarray(class_map.values).astype(int).ravel()
+    ref = np.asarray(reference.values).astype(int).ravel()
+    if cm.shape != ref.shape:
+        raise ValidationDesignError(f"class map {class_map.shape} and reference {reference.shape} differ in shape;"
+                                    " put the reference on the map's grid first")
+    both = (cm > 0) & (ref > 0)
+    cm, ref = cm[both], ref[both]
+    dx = float(abs(class_map["x"].values[1] - class_map["x"].values[0]))
+    dy = float(abs(class_map["y"].values[1] - class_map["y"].values[0]))
+    pixel_ha = dx * dy / 1e4
+    names = [codes[c] for c in sorted(codes)]
+    true_ha = np.array([(ref == c).sum() for c in sorted(codes)]) * pixel_ha
+    mapped_ha = np.array([(cm == c).sum() for c in sorted(codes)]) * pixel_ha
+    areas = dict(zip(names, mapped_ha / pixel_ha, strict=True))
+    pools = {c: np.flatnonzero(cm == c) for c in sorted(codes)}
+    rng = np.random.default_rng(seed)
+    covered = np.zeros(len(names))
+    estimates = np.zeros((n_reps, len(names)))
+    for r in range(n_reps):  # a loop over repetitions, each fully vectorised over its sample
+        idx = np.concatenate([rng.choice(pools[c], size=min(allocation.get(c, 0), pools[c].size), replace=False)
+                              for c in sorted(codes) if pools[c].size])
+        counts = error_matrix([codes[c] for c in ref[idx]], [codes[c] for c in cm[idx]], names)
+        res = stratified_estimates(counts, areas, pixel_area_ha=pixel_ha, confidence=confidence)
+        t = res.area_table
+        estimates[r] = t["estimated_area_ha"].to_numpy()
+        covered += (t["ci_low_ha"].to_numpy() <= true_ha) & (true_ha <= t["ci_high_ha"].to_numpy())
+    return pd.DataFrame({"class": names, "true_area_ha": true_ha, "mapped_area_ha": mapped_ha,
+                         "mapped_bias_ha": mapped_ha - true_ha, "mean_estimated_area_ha": estimates.mean(axis=0),
+                         "estimator_bias_ha": estimates.mean(axis=0) - true_ha,
+                         "coverage": covered / n_reps, "n_reps": n_reps})
+
+
+def coverage_note(table: pd.DataFrame) -> str:
+    """One plain sentence per class for a report."""
+    lines = [f"{r['class']}: interval covered the true area in {100 * r['coverage']:.0f} % of {r['n_reps']} "
+             f"samples; map pixel count off by {r['mapped_bias_ha']:+.1f} ha, estimator by "
+             f"{r['estimator_bias_ha']:+.1f} ha" for _, r in table.iterrows()]
+    return "\n".join(lines)
+
+
+def sample_design_record(run_dir: Path) -> dict[str, Any]:
+    path = run_dir / SAMPLE_DIR / "sample_design.json"
+    return json.loads(path.read_text()) if path.exists() else {}
