@@ -51,3 +51,42 @@ def project_copy(small_demo, tmp_path):
 
     write.base = base
     return write
+
+
+def project_variant(project_file: Path, name: str, **changes) -> Path:
+    """A sibling project file ``<name>.toml`` with ``{"section.key": value}`` edits (same inputs)."""
+    import tomli_w
+
+    data = tomllib.loads(Path(project_file).read_text())
+    for dotted, value in changes.items():
+        section, key = dotted.split(".")
+        data.setdefault(section, {})[key] = value
+    out = Path(project_file).with_name(f"{name}.toml")
+    out.write_text(tomli_w.dumps(data))
+    return out
+
+
+def light_project(folder: Path) -> Path:
+    """A 300 x 300 px demo with a light model and 3 folds, so that several full runs stay short."""
+    from wetlandflow.demo import make_demo
+
+    pf = make_demo(folder, size=300, seed=1)
+    # Capping pixels per plot keeps the runs light and gives the seed something to choose (which pixels train).
+    return project_variant(pf, "light", **{"model.n_estimators": 60, "validation.n_folds": 3,
+                                           "samples.max_pixels_per_plot": 30,
+                                           "validation.block_size_m": 300.0, "output.explain": False,
+                                           "output.chunk_size": 128, "project.output_dir": "runs/light"})
+
+
+@pytest.fixture(scope="session")
+def light_demo(tmp_path_factory) -> Path:
+    """The project file of :func:`light_project` (inputs generated once per session)."""
+    return light_project(tmp_path_factory.mktemp("light_demo"))
+
+
+@pytest.fixture(scope="session")
+def light_run(light_demo):
+    """One threaded run of the light project (``runs/light``), shared by the tests that compare runs."""
+    from wetlandflow.run import run_project
+
+    return run_project(light_demo, progress=False)

@@ -1,4 +1,4 @@
-"""Tests for wetlandflow.validation and wetlandflow.nndm (spatial CV designs)."""
+"""Tests for wetlandflow.validation, .nndm, .variogram and .nested (spatial CV designs)."""
 
 from __future__ import annotations
 
@@ -20,7 +20,9 @@ from sklearn.model_selection import (
     cross_val_score,
 )
 
+from wetlandflow import nested, validation, variogram
 from wetlandflow.errors import BudgetError, ValidationDesignError
+from wetlandflow.nested import spatial_grid_search, subset_splitter
 from wetlandflow.validation import (
     KNNDM,
     NNDM,
@@ -38,11 +40,9 @@ from wetlandflow.validation import (
     plot_distance_ecdf,
     plot_folds,
     random_pixel_kfold,
-    spatial_grid_search,
-    subset_splitter,
-    suggest_block_size,
     wasserstein_w,
 )
+from wetlandflow.variogram import suggest_block_size
 
 CLASSES = np.array(["bog", "fen", "marsh", "upland"])
 
@@ -500,3 +500,12 @@ def test_spatial_grid_search_passes_groups_and_subset_coords():
     sub = subset_splitter(BufferedSplitter(inner, 100.0, coords=xy), np.arange(10))
     assert sub.coords.shape == (10, 2) and sub.base_splitter.coords.shape == (10, 2)
     assert inner.coords.shape == xy.shape  # the original is untouched
+
+
+def test_moved_functions_are_re_exported_by_validation():
+    """The variogram and nested-tuning code moved to their own modules; validation still offers them."""
+    for module in (variogram, nested):
+        for name in module.__all__:
+            assert getattr(validation, name) is getattr(module, name)
+            assert name in validation.__all__
+

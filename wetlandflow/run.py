@@ -19,11 +19,11 @@ import numpy as np
 import pandas as pd
 
 from . import CAUTION, __version__
-from .features.cube import build_cube, save_cube
+from .features.cube import build_cube, open_cube, save_cube
 from .inputs import load_inputs, project_grid, read_aoi
 from .io import check_writable, sha256_file, write_figure, write_json, write_table
 from .mapping import class_areas, predict_map
-from .models import ClassScheme, WetlandClassifier, data_hash, save_bundle
+from .models import ClassScheme, WetlandClassifier, data_hash, load_bundle, save_bundle
 from .project import Project, config_hash, load_project, to_dict
 from .steps import applicability_model, write_explanations, write_inventory_outputs
 from .samples import class_balance, drop_incomplete, extract_samples, missing_report, plot_pixels, read_plots
@@ -60,10 +60,21 @@ class Manifest:
             "steps": {},
             "caution": CAUTION,
         }
+        self.previous = _previous_manifest(self.path)
+
+    def reusable(self, name: str, key: str, outputs: list[Path]) -> bool:
+        """True, with the earlier record carried over, when the last run finished this step with the same key
+        and its outputs are all there; the step is then not recomputed."""
+        prev = self.previous.get("steps", {}).get(name, {})
+        if prev.get("status") != "done" or prev.get("key") != key or not all(Path(o).exists() for o in outputs):
+            return False
+        self.data["steps"][name] = {**prev, "reused": True}
+        self.save()
+        return True
 
     @contextmanager
-    def step(self, name: str):
-        rec = {"status": "running", "started": time.time()}
+    def step(self, name: str, key: str = ""):
+        rec = {"status": "running", "started": time.time(), "key": key}
         self.data["steps"][name] = rec
         self.save()
         t0 = time.perf_counter()
@@ -79,6 +90,32 @@ class Manifest:
 
     def save(self) -> None:
         write_json(self.data, self.path)
+
+
+def _previous_manifest(path: Path) -> dict[str, Any]:
+    """The manifest an earlier run left in this folder (empty when there is none or it is unreadable)."""
+    import json
+
+    try:
+        return json.loads(path.read_text())
+    except (OSError, ValueError):
+        return {}
+
+
+def step_key(*parts: Any) -> str:
+    """The cache key of a step: SHA-256 of everything it depends on (config, upstream keys, file hashes)."""
+    import hashlib
+    import json
+
+    text = json.dumps([__version__, *parts], sort_keys=True, default=str)
+    return hashlib.sha256(text.encode()).hexdigest()[:20]
+
+
+def _portable_config(project: Project) -> dict[str, Any]:
+    """The resolved project with its folder replaced by a placeholder, so keys survive moving the folder."""
+    import json
+
+    return json.loads(json.dumps(to_dict(project), default=str).replace(str(project.root), "<project>"))
 
 
 def library_versions() -> dict[str, str]:
@@ -200,18 +237,23 @@ def run_project(project: Project | str | Path, *, progress: bool = True) -> RunR
         project = load_project(project)
     with compute_context(project) as client:
         result = _run(project, progress=progress)
-        result.manifest.setdefault("compute", {})["scheduler"] = (
-            "threads (this process)" if client is None else str(client.scheduler.address))
+        import os
+
+        result.manifest["compute"] = {
+            "scheduler": "threads (this process)" if client is None else str(client.scheduler.address),
+            "workers": None if client is None else len(client.scheduler_info().get("workers", {})),
+            "cpu_count": os.cpu_count(), "model_threads": project.model.n_threads,
+            "omp_wait_policy": os.environ.get("OMP_WAIT_POLICY", "")}
         write_json(result.manifest, result.run_dir / "manifest.json")
         return result
 
 
 def _run(project: Project, *, progress: bool = True) -> RunResult:
-    from .accuracy import accuracy_measures, error_matrix
-
+    """The steps of a run; each is skipped when an earlier run in the folder finished it with the same key."""
     run_dir = check_writable(project.run_dir)
     manifest = Manifest(run_dir, project)
-    scheme = ClassScheme(project.classes.names, project.classes.parents)
+    cfg = _portable_config(project)
+    seed = project.project.seed
 
     with manifest.step("inputs") as rec:
         _record_inputs(manifest, project)
@@ -221,84 +263,165 @@ def _run(project: Project, *, progress: bool = True) -> RunResult:
         rec["layers"] = {"optical": inputs.optical.attrs, "dem": inputs.dem.attrs,
                          "sar": inputs.sar.attrs if inputs.sar is not None else None}
         rec["checks"] = plausibility_checks(project, inputs)
+    hashes = {k: v["sha256"] for k, v in manifest.data["inputs"].items()}
 
-    with manifest.step("features") as rec:
-        cube = build_cube(inputs, project.features.select, project.features.params)
-        cube = save_cube(cube, run_dir / "features.zarr", chunk=project.output.chunk_size)
-        rec["features"] = {k: dict(v.attrs) for k, v in cube.data_vars.items()}
+    k_feat = step_key(*(cfg[s] for s in ("area", "grid", "optical", "sar", "dem", "seasons", "features")),
+                      cfg["output"]["chunk_size"], {k: v for k, v in hashes.items() if k != "plots"})
+    zarr_path = run_dir / "features.zarr"
+    if manifest.reusable("features", k_feat, [zarr_path]):
+        cube = open_cube(zarr_path)
+    else:
+        with manifest.step("features", k_feat) as rec:
+            cube = build_cube(inputs, project.features.select, project.features.params)
+            cube = save_cube(cube, zarr_path, chunk=project.output.chunk_size)
+            rec["features"] = {k: dict(v.attrs) for k, v in cube.data_vars.items()}
 
-    with manifest.step("samples") as rec:
-        plots = read_plots(project.plots.path, class_field=project.plots.class_field, id_field=project.plots.id_field,
-                           classes=project.classes.names, grid=grid, aoi=read_aoi(project))
-        px = plot_pixels(plots, grid, inward_buffer_m=project.samples.inward_buffer_m,
-                         max_pixels_per_plot=project.samples.max_pixels_per_plot, seed=project.project.seed)
-        samples = extract_samples(cube, px, grid)
-        features = feature_names(samples)
-        rec["missing_before_drop"] = missing_report(samples, features).sum(axis=1).astype(int).to_dict()
-        samples = drop_incomplete(samples, features, policy=project.samples.missing)
-        write_table(samples, run_dir / "samples.parquet")
-        balance = class_balance(samples)
-        rec["class_balance"] = balance.to_dict(orient="records")
-        rec["n_samples"], rec["n_plots"] = len(samples), int(samples["plot_id"].nunique())
+    k_samples = step_key(k_feat, cfg["plots"], cfg["classes"], cfg["samples"], seed, hashes["plots"])
+    samples_path = run_dir / "samples.parquet"
+    if manifest.reusable("samples", k_samples, [samples_path]):
+        samples = pd.read_parquet(samples_path)
+    else:
+        with manifest.step("samples", k_samples) as rec:
+            samples = _samples_step(project, grid, cube, rec)
+            write_table(samples, samples_path)
+    features = feature_names(samples)
+    balance = class_balance(samples)
 
-    with manifest.step("validation") as rec:
-        oof, folds = cross_validate(project, samples, features, progress=progress)
-        vdir = run_dir / "validation"
-        pred = np.array(project.classes.names)[np.argmax(oof, axis=1)]
-        write_table(pd.DataFrame({"plot_id": samples["plot_id"], "class": samples["class"], "fold": folds,
-                                  "predicted": pred, **{f"p_{c}": oof[:, i] for i, c in
-                                                         enumerate(project.classes.names)}}),
-                    vdir / "oof_predictions.parquet")
-        matrix = error_matrix(samples["class"].to_numpy(), pred, list(project.classes.names))
-        write_table(matrix.reset_index(names="map \\ reference"), vdir / "error_matrix.csv")
-        metrics = _metrics_dict(accuracy_measures(matrix))
-        metrics["design"] = project.validation.design
-        metrics["n_folds"] = int(len(np.unique(folds)))
-        rec["diagnostics"] = write_fold_diagnostics(vdir, samples, folds, inputs.aoi, grid,
-                                                    block_size_m=project.validation.block_size_m,
-                                                    seed=project.project.seed)
-        metrics["note"] = ("Spatial cross-validation serves to choose models and predictors; the inventory's "
-                           "accuracy and areas come from an independent probability sample.")
-        write_json(metrics, vdir / "metrics.json")
-        rec["overall_accuracy"] = metrics["overall_accuracy"]
+    k_val = step_key(k_samples, cfg["validation"], cfg["model"], seed)
+    vdir = run_dir / "validation"
+    if manifest.reusable("validation", k_val, [vdir / "metrics.json", vdir / "oof_predictions.parquet"]):
+        import json
 
-    with manifest.step("model") as rec:
-        model = make_model(project).fit(samples[features].to_numpy(np.float32), samples["class"].to_numpy())
-        save_bundle(model, run_dir / "model", features=features, scheme=scheme,
-                    training_hash=data_hash(samples, features), extra={"config_sha256": manifest.data["config_sha256"]})
-        rec["n_features"] = len(features)
-        aoa_model = None
-        if project.output.applicability:
-            aoa_model = applicability_model(model, samples, features, folds)
-            rec["applicability_threshold"] = round(aoa_model.threshold, 6)
+        metrics = json.loads((vdir / "metrics.json").read_text())
+        folds = pd.read_parquet(vdir / "oof_predictions.parquet", columns=["fold"])["fold"].to_numpy()
+    else:
+        with manifest.step("validation", k_val) as rec:
+            metrics, folds = _validation_step(project, samples, features, inputs.aoi, grid, vdir, rec, progress)
 
-    with manifest.step("mapping") as rec:
-        maps = predict_map(model, cube, features, grid, run_dir / "maps", valid=inputs.aoi,
-                           class_names=project.classes.names, window_size=project.output.chunk_size,
-                           aoa_model=aoa_model, memory_budget_gb=project.output.memory_budget_gb,
-                           progress=progress)
-        rec["outputs"] = {k: str(v.relative_to(run_dir)) for k, v in maps.items()}
-        if "applicability" in maps:
-            rec["share_outside_applicability"] = share_outside_applicability(maps["applicability"])
+    k_model = step_key(k_samples, cfg["model"], seed)
+    if manifest.reusable("model", k_model, [run_dir / "model" / "bundle.json"]):
+        model, _ = load_bundle(run_dir / "model")
+    else:
+        with manifest.step("model", k_model) as rec:
+            model = make_model(project).fit(samples[features].to_numpy(np.float32), samples["class"].to_numpy())
+            save_bundle(model, run_dir / "model", features=features,
+                        scheme=ClassScheme(project.classes.names, project.classes.parents),
+                        training_hash=data_hash(samples, features),
+                        extra={"config_sha256": manifest.data["config_sha256"]})
+            rec["n_features"] = len(features)
+            rec["hyperparameters"] = {k: v for k, v in model.get_params().items() if k != "classes"}
 
-    with manifest.step("inventory") as rec:
-        rec.update(write_inventory_outputs(maps, run_dir, grid, project.classes.names,
-                                           mmu_pixels=project.output.mmu_pixels,
-                                           connectivity=project.output.connectivity))
-        areas = class_areas(run_dir / rec["outputs"]["class_final"], project.classes.names, grid.pixel_area_m2)
-        write_table(areas, run_dir / "areas.csv")
+    applicability = project.output.applicability
+    k_map = step_key(k_model, k_val if applicability else None, applicability, cfg["output"]["chunk_size"])
+    layers = ("probability", "class", "confidence") + (("dissimilarity", "applicability") if applicability else ())
+    map_paths = {n: run_dir / "maps" / f"{n}.tif" for n in layers}
+    if not manifest.reusable("mapping", k_map, list(map_paths.values())):
+        with manifest.step("mapping", k_map) as rec:
+            aoa_model = None
+            if applicability:
+                aoa_model = applicability_model(model, samples, features, folds)
+                rec["applicability_threshold"] = round(aoa_model.threshold, 6)
+            map_paths = predict_map(model, cube, features, grid, run_dir / "maps", valid=inputs.aoi,
+                                    class_names=project.classes.names, window_size=project.output.chunk_size,
+                                    aoa_model=aoa_model, memory_budget_gb=project.output.memory_budget_gb,
+                                    progress=progress)
+            rec["outputs"] = {k: str(v.relative_to(run_dir)) for k, v in map_paths.items()}
+            rec["data_sha256"] = {k: raster_data_sha256(v) for k, v in map_paths.items()}
+            if applicability:
+                rec["share_outside_applicability"] = share_outside_applicability(map_paths["applicability"])
+
+    k_inv = step_key(k_map, cfg["output"]["mmu_pixels"], cfg["output"]["connectivity"])
+    final_path = run_dir / "maps" / "class_final.tif"
+    if not manifest.reusable("inventory", k_inv, [final_path, run_dir / "inventory.gpkg", run_dir / "areas.csv"]):
+        with manifest.step("inventory", k_inv) as rec:
+            rec.update(write_inventory_outputs(map_paths, run_dir, grid, project.classes.names,
+                                               mmu_pixels=project.output.mmu_pixels,
+                                               connectivity=project.output.connectivity))
+            rec["data_sha256"] = {"class_final": raster_data_sha256(final_path)}
+            write_table(class_areas(final_path, project.classes.names, grid.pixel_area_m2), run_dir / "areas.csv")
+            stale = _set_aside_stale_assessment(run_dir)
+            if stale:
+                rec["stale_assessment_moved_to"] = stale
+    areas = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
 
     if project.output.explain:
-        with manifest.step("explain") as rec:
-            rec.update(write_explanations(model, samples, features, {k: dict(v.attrs) for k, v in
-                                                                     cube.data_vars.items()},
-                                          run_dir / "explain", n_rows=project.output.explain_rows,
-                                          seed=project.project.seed,
-                                          block_size_m=project.validation.block_size_m))
+        k_exp = step_key(k_model, cfg["output"]["explain_rows"], cfg["validation"]["block_size_m"], seed)
+        if not manifest.reusable("explain", k_exp, [run_dir / "explain" / "drivers.json"]):
+            with manifest.step("explain", k_exp) as rec:
+                rec.update(write_explanations(model, samples, features,
+                                              {k: dict(v.attrs) for k, v in cube.data_vars.items()},
+                                              run_dir / "explain", n_rows=project.output.explain_rows, seed=seed,
+                                              block_size_m=project.validation.block_size_m))
 
     manifest.data["finished"] = dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")
     manifest.save()
     return RunResult(run_dir, manifest.data, areas, metrics, balance)
+
+
+def _samples_step(project: Project, grid, cube, rec: dict[str, Any]) -> pd.DataFrame:
+    plots = read_plots(project.plots.path, class_field=project.plots.class_field, id_field=project.plots.id_field,
+                       classes=project.classes.names, grid=grid, aoi=read_aoi(project))
+    px = plot_pixels(plots, grid, inward_buffer_m=project.samples.inward_buffer_m,
+                     max_pixels_per_plot=project.samples.max_pixels_per_plot, seed=project.project.seed)
+    samples = extract_samples(cube, px, grid)
+    features = feature_names(samples)
+    rec["missing_before_drop"] = missing_report(samples, features).sum(axis=1).astype(int).to_dict()
+    samples = drop_incomplete(samples, features, policy=project.samples.missing)
+    rec["class_balance"] = class_balance(samples).to_dict(orient="records")
+    rec["n_samples"], rec["n_plots"] = len(samples), int(samples["plot_id"].nunique())
+    return samples
+
+
+def _validation_step(project: Project, samples: pd.DataFrame, features: list[str], aoi, grid, vdir: Path,
+                     rec: dict[str, Any], progress: bool) -> tuple[dict[str, Any], np.ndarray]:
+    from .accuracy import accuracy_measures, error_matrix
+
+    oof, folds = cross_validate(project, samples, features, progress=progress)
+    names = list(project.classes.names)
+    pred = np.array(names)[np.argmax(oof, axis=1)]
+    write_table(pd.DataFrame({"plot_id": samples["plot_id"], "class": samples["class"], "fold": folds,
+                              "predicted": pred, **{f"p_{c}": oof[:, i] for i, c in enumerate(names)}}),
+                vdir / "oof_predictions.parquet")
+    matrix = error_matrix(samples["class"].to_numpy(), pred, names)
+    write_table(matrix.reset_index(names="map \\ reference"), vdir / "error_matrix.csv")
+    metrics = _metrics_dict(accuracy_measures(matrix))
+    metrics["design"] = project.validation.design
+    metrics["n_folds"] = int(len(np.unique(folds)))
+    rec["splitter"] = repr(make_splitter(project, samples[["x", "y"]].to_numpy()))
+    rec["folds_file"] = "validation/folds.parquet"
+    rec["diagnostics"] = write_fold_diagnostics(vdir, samples, folds, aoi, grid,
+                                                block_size_m=project.validation.block_size_m,
+                                                seed=project.project.seed)
+    metrics["note"] = ("Spatial cross-validation serves to choose models and predictors; the inventory's "
+                       "accuracy and areas come from an independent probability sample.")
+    write_json(metrics, vdir / "metrics.json")
+    rec["overall_accuracy"] = metrics["overall_accuracy"]
+    return metrics, folds
+
+
+def _set_aside_stale_assessment(run_dir: Path) -> str | None:
+    """A new final map makes an earlier accuracy assessment stale: move it aside (never delete user work)."""
+    acc = run_dir / "accuracy"
+    if not acc.exists():
+        return None
+    stamp = dt.datetime.now(dt.timezone.utc).strftime("%Y%m%dT%H%M%S")
+    target = run_dir / f"accuracy_stale_{stamp}"
+    acc.rename(target)
+    return target.name
+
+
+def raster_data_sha256(path: Path) -> str:
+    """SHA-256 of a raster's pixel values (all bands, read in order), independent of file layout."""
+    import hashlib
+
+    import rasterio
+
+    h = hashlib.sha256()
+    with rasterio.open(path) as src:
+        for b in range(1, src.count + 1):
+            for _, w in src.block_windows(b):
+                h.update(np.ascontiguousarray(src.read(b, window=w)).tobytes())
+    return h.hexdigest()
 
 
 def share_outside_applicability(path: Path) -> float:

@@ -16,6 +16,15 @@ as many rows as ``coords``.  For an inner loop on a subset, use
 :func:`subset_splitter`, which returns a copy whose coordinates follow the
 subset; :func:`spatial_grid_search` does this for you.  ``groups`` are plot ids.
 
+Where things live
+-----------------
+Splitters, fold assignment and fold checks are defined here.  Distance
+matching (NNDM, kNNDM) and the distance diagnostics live in
+:mod:`wetlandflow.nndm`, the variogram block-size suggestion in
+:mod:`wetlandflow.variogram`, and nested tuning in :mod:`wetlandflow.nested`;
+all are re-exported here, so ``from wetlandflow.validation import ...`` keeps
+one entry point for every design.
+
 All splitters follow scikit-learn's protocol: ``__init__`` stores its arguments
 unchanged, ``split(X, y=None, groups=None)`` validates them and yields
 ``(train_idx, test_idx)`` integer arrays, and ``get_n_splits`` gives the count,
@@ -30,20 +39,18 @@ temporal, spatial, hierarchical, or phylogenetic structure. Ecography 40(8),
 
 from __future__ import annotations
 
-import copy
 import warnings
 from collections.abc import Iterable
-from typing import Any, NamedTuple
+from typing import Any
 
 import numpy as np
 import pandas as pd
 from numpy.typing import ArrayLike
-from scipy.optimize import curve_fit
 from scipy.spatial import cKDTree
-from sklearn.base import clone
-from sklearn.model_selection import BaseCrossValidator, GridSearchCV, GroupKFold, KFold, StratifiedGroupKFold
+from sklearn.model_selection import BaseCrossValidator, GroupKFold, KFold, StratifiedGroupKFold
 
 from .errors import ValidationDesignError
+from .nested import NestedCVResult, spatial_grid_search, subset_splitter
 from .nndm import (
     KNNDM,
     NNDM,
@@ -58,6 +65,7 @@ from .nndm import (
     plot_folds,
     wasserstein_w,
 )
+from .variogram import BlockSizeSuggestion, suggest_block_size, variogram
 
 __all__ = [
     "KNNDM",
@@ -114,21 +122,6 @@ def _groups_or_rows(groups: ArrayLike | None, n: int) -> np.ndarray:
             f"groups must have one plot id per sample ({n}); received shape {g.shape}."
         )
     return g
-
-
-def subset_splitter(splitter: Any, idx: ArrayLike) -> Any:
-    """Return a copy of ``splitter`` whose coordinates follow the rows ``idx``.
-
-    Splitters that hold no coordinates (scikit-learn's own) are returned as
-    copies unchanged.  Wrapped splitters (``base_splitter``) are subset too.
-    """
-    out = copy.copy(splitter)
-    idx = np.asarray(idx)
-    if getattr(out, "coords", None) is not None:
-        out.coords = np.asarray(out.coords, dtype=float)[idx]
-    if getattr(out, "base_splitter", None) is not None:
-        out.base_splitter = subset_splitter(out.base_splitter, idx)
-    return out
 
 
 # --------------------------------------------------------------------------- blocks
@@ -571,238 +564,3 @@ def random_pixel_kfold(
             "allow_random_pixels=True to build the leaky baseline on purpose for comparison."
         )
     return KFold(n_splits=n_splits, shuffle=shuffle, random_state=random_state if shuffle else None)
-
-
-# --------------------------------------------------------------------------- block size from a variogram
-
-
-def _spherical(h, nugget, psill, a):
-    r = np.minimum(h / a, 1.0)
-    return nugget + psill * (1.5 * r - 0.5 * r**3)
-
-
-def _exponential(h, nugget, psill, a):
-    return nugget + psill * (1.0 - np.exp(-h / a))
-
-
-_MODELS = {"spherical": _spherical, "exponential": _exponential}
-
-
-def variogram(
-    x: ArrayLike,
-    y: ArrayLike,
-    values: ArrayLike,
-    *,
-    n_lags: int = 15,
-    max_lag: float | None = None,
-    max_points: int = 3000,
-    random_state: int = 0,
-) -> pd.DataFrame:
-    """Empirical semivariogram (Matheron estimator) of ``values``.
-
-    ``gamma(h) = mean over pairs in lag bin h of (z_i - z_j)^2 / 2``.  At most
-    ``max_points`` points (random subset) are used, since all pairs are formed.
-    ``max_lag`` defaults to half the largest pair distance (common practice,
-    no source).
-
-    Returns
-    -------
-    pandas.DataFrame
-        Columns ``lag`` (mean pair distance in the bin, metres), ``gamma`` and
-        ``n_pairs``; empty bins are dropped.
-    """
-    from scipy.spatial.distance import pdist
-
-    xy = np.column_stack([np.asarray(x, float), np.asarray(y, float)])
-    z = np.asarray(values, float)
-    ok = np.isfinite(z) & np.isfinite(xy).all(axis=1)
-    xy, z = xy[ok], z[ok]
-    if z.size > max_points:
-        keep = np.random.default_rng(random_state).choice(z.size, max_points, replace=False)
-        xy, z = xy[keep], z[keep]
-    if z.size < 10:
-        raise ValidationDesignError(f"variogram needs at least 10 finite values; received {z.size}.")
-    d, sq = pdist(xy), pdist(z[:, None], "sqeuclidean")
-    top = d.max() / 2 if max_lag is None else float(max_lag)
-    edges = np.linspace(0.0, top, n_lags + 1)
-    b = np.digitize(d, edges[1:], right=True)
-    inside = d <= top
-    n = np.bincount(b[inside], minlength=n_lags)[:n_lags]
-    lag = np.bincount(b[inside], weights=d[inside], minlength=n_lags)[:n_lags]
-    gam = np.bincount(b[inside], weights=sq[inside], minlength=n_lags)[:n_lags] / 2
-    table = pd.DataFrame({"lag": lag / np.maximum(n, 1), "gamma": gam / np.maximum(n, 1), "n_pairs": n})
-    return table[table["n_pairs"] > 0].reset_index(drop=True)
-
-
-def _fit_model(table: pd.DataFrame, model: str) -> tuple[np.ndarray, float]:
-    h, g, n = (table[c].to_numpy(float) for c in ("lag", "gamma", "n_pairs"))
-    p0 = [max(g[0] * 0.5, 0.0), max(g.max() - g[0] * 0.5, 1e-12), h.max() / 3]
-    upper = [np.inf, np.inf, 10 * h.max()]
-    # Weighting by pair counts trusts the well-populated bins (common practice, no source).
-    par, _ = curve_fit(
-        _MODELS[model], h, g, p0=p0, bounds=([0, 0, 1e-9], upper), sigma=1 / np.sqrt(n), maxfev=20000
-    )
-    sse = float(np.sum(n * (g - _MODELS[model](h, *par)) ** 2))
-    return par, sse
-
-
-def _first_pc(values: np.ndarray) -> np.ndarray:
-    """Scores on the first principal component of standardised columns (NaN rows stay NaN)."""
-    ok = np.isfinite(values).all(axis=1)
-    v = values[ok]
-    v = (v - v.mean(axis=0)) / np.where(v.std(axis=0) > 0, v.std(axis=0), 1.0)
-    out = np.full(values.shape[0], np.nan)
-    out[ok] = v @ np.linalg.svd(v, full_matrices=False)[2][0]
-    return out
-
-
-class BlockSizeSuggestion(NamedTuple):
-    """Result of :func:`suggest_block_size`.
-
-    ``block_size_m`` is the effective range of the fitted model (spherical:
-    the range ``a``; exponential: the practical range ``3a``, where 95 % of the
-    sill is reached); ``variogram`` is the empirical table with a ``fitted``
-    column; ``fit`` holds the model name, parameters and the value source.
-    """
-
-    block_size_m: float
-    variogram: pd.DataFrame
-    fit: dict
-
-
-def suggest_block_size(
-    x: ArrayLike,
-    y: ArrayLike,
-    values: ArrayLike,
-    *,
-    model: str = "auto",
-    n_lags: int = 15,
-    max_lag: float | None = None,
-    max_points: int = 3000,
-    random_state: int = 0,
-) -> BlockSizeSuggestion:
-    """Block size from the autocorrelation range of a variable.
-
-    Roberts et al. (2017) advise blocks larger than the range of spatial
-    autocorrelation of the model residuals (block-size advice from memory).
-    Fit the variogram of the residuals of a first model where you can; before
-    modelling, a key feature or the first principal component of the features
-    is a proxy.
-
-    Parameters
-    ----------
-    x, y : array-like of shape (n,)
-        Coordinates in metres.
-    values : array-like of shape (n,) or (n, p)
-        A feature or residuals (1-D), or several features (2-D), reduced to
-        the first principal component of the standardised columns.
-    model : {"auto", "spherical", "exponential"}, default "auto"
-        Variogram model fitted with ``scipy.optimize.curve_fit``; "auto" keeps
-        the one with the smaller pair-weighted squared error.
-    n_lags, max_lag, max_points, random_state
-        Passed to :func:`variogram`.
-
-    Returns
-    -------
-    BlockSizeSuggestion
-    """
-    if model not in ("auto", *_MODELS):
-        raise ValidationDesignError(f"model must be 'auto', 'spherical' or 'exponential'; got {model!r}.")
-    vals = np.asarray(values, float)
-    source = "first principal component" if vals.ndim == 2 else "values"
-    z = _first_pc(vals) if vals.ndim == 2 else vals
-    table = variogram(
-        x, y, z, n_lags=n_lags, max_lag=max_lag, max_points=max_points, random_state=random_state
-    )
-    fits = {}
-    for name in _MODELS if model == "auto" else (model,):
-        try:
-            fits[name] = _fit_model(table, name)
-        except RuntimeError:
-            continue
-    if not fits:
-        raise ValidationDesignError(
-            "no variogram model could be fitted; check that the values vary in space."
-        )
-    name = min(fits, key=lambda m: fits[m][1])
-    par = fits[name][0]
-    eff = float(par[2] * (3.0 if name == "exponential" else 1.0))
-    if eff >= table["lag"].max():
-        warnings.warn(
-            f"the fitted range ({eff:.0f} m) reaches the largest lag ({table['lag'].max():.0f} m); "
-            f"the true range may be longer. Treat the block size as a lower bound.",
-            UserWarning,
-            stacklevel=2,
-        )
-    table = table.assign(fitted=_MODELS[name](table["lag"].to_numpy(), *par))
-    fit = {
-        "model": name,
-        "nugget": float(par[0]),
-        "partial_sill": float(par[1]),
-        "range_param_m": float(par[2]),
-        "effective_range_m": eff,
-        "source": source,
-    }
-    return BlockSizeSuggestion(eff, table, fit)
-
-
-# --------------------------------------------------------------------------- nested tuning
-
-
-class NestedCVResult(NamedTuple):
-    """Outer-loop scores, chosen parameters and out-of-fold predictions."""
-
-    scores: np.ndarray
-    best_params: list[dict]
-    predictions: np.ndarray
-    folds: np.ndarray
-
-
-def _rows(X: Any, idx: np.ndarray) -> Any:
-    return X.iloc[idx] if hasattr(X, "iloc") else np.asarray(X)[idx]
-
-
-def spatial_grid_search(
-    estimator: Any,
-    param_grid: dict | list,
-    X: Any,
-    y: ArrayLike,
-    groups: ArrayLike | None = None,
-    *,
-    outer: Any,
-    inner: Any,
-    scoring: Any = None,
-    n_jobs: int | None = None,
-) -> NestedCVResult:
-    """Nested spatial CV: tune on inner spatial folds inside each outer fold.
-
-    ``cross_val_score(GridSearchCV(...), groups=g)`` does not hand the groups,
-    nor the subset coordinates, to the inner splitter.  This explicit outer
-    loop fits ``GridSearchCV(cv=inner)`` on each outer training set with
-    ``groups=groups[train]`` and an inner splitter whose coordinates follow
-    that subset (:func:`subset_splitter`), then scores the refitted best
-    model on the outer test fold.
-
-    Returns
-    -------
-    NestedCVResult
-        ``scores`` per outer fold, ``best_params`` per outer fold,
-        ``predictions`` (out-of-fold ``predict`` output) and the outer ``folds``.
-    """
-    from sklearn.metrics import check_scoring
-
-    y_arr = np.asarray(y)
-    g = None if groups is None else np.asarray(groups)
-    scorer = check_scoring(estimator, scoring=scoring)
-    scores, params, preds = [], [], np.empty_like(y_arr)
-    folds = np.full(y_arr.size, -1)
-    for f, (train, test) in enumerate(outer.split(X, y_arr, g)):
-        search = GridSearchCV(
-            clone(estimator), param_grid, cv=subset_splitter(inner, train), scoring=scoring, n_jobs=n_jobs
-        )
-        search.fit(_rows(X, train), y_arr[train], groups=None if g is None else g[train])
-        scores.append(scorer(search.best_estimator_, _rows(X, test), y_arr[test]))
-        params.append(search.best_params_)
-        preds[test] = search.best_estimator_.predict(_rows(X, test))
-        folds[test] = f
-    return NestedCVResult(np.asarray(scores), params, preds, folds)

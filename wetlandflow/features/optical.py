@@ -1,4 +1,4 @@
-"""Optical features: seasonal composites, spectral indices, reflectance sanity checks.
+"""Optical features: spectral indices of Sentinel-2-like surface reflectance.
 
 Conventions
 -----------
@@ -7,23 +7,33 @@ float32 surface reflectance (already scaled, NaN where masked) and a ``band``
 coordinate holding the portable names in :data:`BANDS` (Sentinel-2 B02, B03,
 B04, B05, B06, B07, B08, B8A, B11, B12).  Index functions take any array with
 a ``band`` dim (a single scene, a stack, or a seasonal composite) and keep the
-other dims.  Everything stays lazy on dask input except the plausibility
-checks, which reduce each scene to a few numbers and so compute.
+other dims, and stay lazy on dask input.
+
+Seasonal compositing, season masks and the reflectance plausibility checks
+live in :mod:`wetlandflow.features.composite`; they are re-exported here so
+``optical.seasonal_composite`` and friends keep working.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping, Sequence
-from types import MappingProxyType
 from typing import Any
 
+import dask.array as da
 import numba
 import numpy as np
 import xarray as xr
 
 from .._provenance import with_attrs
 from ..errors import DataQualityError, GridMismatchError
-from ._kernels import nanmedian_time, quiet_call
+from ._kernels import quiet_call
+from .composite import (  # noqa: F401  (re-exported: the optical module's public API before the split)
+    PLAUSIBILITY_LIMITS,
+    check_reflectance,
+    reflectance_plausibility,
+    season_mask,
+    seasonal_composite,
+)
 
 BANDS: tuple[str, ...] = (
     "blue", "green", "red", "re1", "re2", "re3", "nir", "nir_narrow", "swir1", "swir2",
@@ -45,12 +55,6 @@ CENTRE_WAVELENGTH_NM: dict[str, dict[str, float]] = {
 CENTRE_WAVELENGTH_SOURCE = (
     "Awesome Spectral Indices bands.json as shipped with spyndex 0.12.0, after ESA S2-SRF "
     "COPE-GSEG-EOPG-TN-15-0007 (issue not stated in the catalogue)"
-)
-
-_OFFSET_HINT = (
-    "reflectance = (DN + offset_dn) * scale; Sentinel-2 L2A products from processing baseline 04.00 "
-    "(2022) on carry offset_dn = -1000, earlier ones 0 (from memory; check the product metadata "
-    "BOA_ADD_OFFSET)"
 )
 
 
@@ -323,21 +327,25 @@ def ndre2(reflectance: xr.DataArray) -> xr.DataArray:
 # Several normalised differences in one pass
 # ---------------------------------------------------------------------------
 
-def _nd_fused_py(bands, ia, ib, out):  # pragma: no cover - compiled below
-    """``out[j] = (bands[ia[j]] - bands[ib[j]]) / (... + ...)`` for every j, NaN where the sum is 0.
+# Rows per tile: about 32 kB of each band (8 rows of a 1024-pixel float32
+# chunk), so the bands an index reads are still in L1/L2 when the next index
+# reads them again.
+_TILE_BYTES = 32768
 
-    ``bands`` is ``(band, rows, x)`` with any strides (a dask chunk sliced out
-    of a larger array is read in place), ``out`` ``(len(ia), rows, x)``.  One
-    row of every band (a few tens of kB) stays in cache while each index
-    reads its two bands from it.  The arithmetic is that of :func:`_nd_ufunc`
-    (float64, one rounding at the end), so results are identical to the
-    single-index functions; a compiled loop raises no floating-point warning.
+
+@numba.njit(cache=True)
+def _nd_rows(bands, r_in, ia, ib, out, r_out, nrows):  # pragma: no cover - compiled
+    """``out[j, r_out + k] = nd(bands[ia[j], r_in + k], bands[ib[j], r_in + k])`` for ``k < nrows``.
+
+    The arithmetic is that of :func:`_nd_ufunc` (float64, one rounding at the
+    end), so results are identical to the single-index functions; a compiled
+    loop raises no floating-point warning.
     """
-    for r in numba.prange(bands.shape[1]):
-        for j in range(ia.shape[0]):
-            a = bands[ia[j], r]
-            b = bands[ib[j], r]
-            o = out[j, r]
+    for j in range(ia.shape[0]):
+        for k in range(nrows):
+            a = bands[ia[j], r_in + k]
+            b = bands[ib[j], r_in + k]
+            o = out[j, r_out + k]
             for i in range(a.shape[0]):
                 x = np.float64(a[i])
                 y = np.float64(b[i])
@@ -345,13 +353,54 @@ def _nd_fused_py(bands, ia, ib, out):  # pragma: no cover - compiled below
                 o[i] = (x - y) / total if total != 0 else np.nan
 
 
+def _nd_fused_py(bands, ia, ib, used, out, tile, staged, nruns):  # pragma: no cover - compiled below
+    """Normalised differences of band pairs over ``bands`` ``(band, rows, x)``, ``tile`` rows at a time.
+
+    The tiles are split into ``nruns`` runs of consecutive tiles (one per
+    thread in the parallel build), each with its own staging buffer.
+
+    A C-contiguous block (a chunk that is its own array, a Zarr chunk, a
+    composite) is read in place (``staged`` false).  Otherwise (a chunk
+    viewed inside a larger array, whose rows lie far apart: each row a new
+    page, the hardware prefetcher restarting every time, and a strided loop
+    that does not vectorise) the bands in ``used`` are first copied tile by
+    tile into a small contiguous buffer, which the copy loop reads at close
+    to memory speed.
+    """
+    nb, ny, nx = bands.shape
+    ntiles = (ny + tile - 1) // tile
+    nruns = max(1, min(ntiles, nruns))
+    for run in numba.prange(nruns):
+        buf = np.empty((nb, tile if staged else 0, nx), dtype=bands.dtype)
+        for t in range(run * ntiles // nruns, (run + 1) * ntiles // nruns):
+            r0 = t * tile
+            m = min(tile, ny - r0)
+            if staged:
+                for u in range(used.shape[0]):
+                    for k in range(m):
+                        buf[used[u], k, :] = bands[used[u], r0 + k, :]
+                _nd_rows(buf, 0, ia, ib, out, r0, m)
+            else:
+                _nd_rows(bands, r0, ia, ib, out, r0, m)
+
+
 # Two builds of one loop: dask chunks run the serial one (dask's threads
-# already use the cores; nested OpenMP threads would only contend), a whole
-# in-memory array the parallel one.  The output is allocated by NumPy, which
+# already use the cores; nested OpenMP threads would only contend), which
+# releases the GIL so that those threads run chunks side by side; a whole
+# in-memory array runs the parallel one.  The output is allocated by NumPy, which
 # asks for huge pages on large arrays: fewer page faults than an allocation
 # inside the compiled function.
-_nd_fused_serial = numba.njit(cache=True)(_nd_fused_py)
+_nd_fused_serial = numba.njit(cache=True, nogil=True)(_nd_fused_py)
 _nd_fused_parallel = numba.njit(cache=True, parallel=True)(_nd_fused_py)
+
+
+def _as_planes(block: np.ndarray) -> np.ndarray:
+    """``(band, ...)`` as ``(band, lead, rows, x)``: a view for the usual layouts (leading dims merged)."""
+    if block.ndim == 1:
+        return block.reshape(-1, 1, 1, 1)
+    if block.ndim == 2:
+        return block[:, None, None, :]
+    return block.reshape((block.shape[0], -1) + block.shape[-2:])
 
 
 def nd_fused_block(block: np.ndarray, ia: np.ndarray, ib: np.ndarray, *, parallel: bool = True) -> np.ndarray:
@@ -360,22 +409,33 @@ def nd_fused_block(block: np.ndarray, ia: np.ndarray, ib: np.ndarray, *, paralle
     Parameters
     ----------
     block : numpy.ndarray
-        ``(band, ...)`` float32 or float64, any strides (read in place when the leading dims merge).
+        ``(band, ...)`` float32 or float64, any strides (read in place where
+        the bands of one leading index form a C-contiguous block, else staged
+        tile by tile through a small buffer).
     ia, ib : numpy.ndarray
         int64 positions along the band axis of the first and second band of each index.
     parallel : bool
-        Spread the pixels over numba's threads (off inside dask tasks).
+        Spread the tiles over numba's threads (off inside dask tasks).
 
     Returns
     -------
     numpy.ndarray
-        ``(len(ia), ...)``, same dtype as ``block``.
+        ``(len(ia), ...)``, same dtype as ``block``; C-contiguous for a single
+        plane (``block`` of ndim <= 3), else a view of a ``(lead, index, rows, x)`` array.
     """
-    # (band, rows, x): a view for the usual layouts (last axis kept, leading ones merged)
-    rows = block.reshape(block.shape[0], -1, block.shape[-1]) if block.ndim > 1 else block.reshape(-1, 1, 1)
-    out = np.empty((ia.shape[0],) + rows.shape[1:], dtype=block.dtype)
-    (_nd_fused_parallel if parallel else _nd_fused_serial)(rows, ia, ib, out)
-    return out.reshape((ia.shape[0],) + block.shape[1:])
+    planes = _as_planes(block)
+    nlead, ny, nx = planes.shape[1:]
+    out = np.empty((nlead, ia.shape[0], ny, nx), dtype=block.dtype)
+    tile = max(1, min(ny, _TILE_BYTES // (nx * planes.itemsize)))
+    used = np.unique(np.concatenate([ia, ib])).astype(np.int64)
+    kernel, nruns = (_nd_fused_parallel, numba.get_num_threads()) if parallel else (_nd_fused_serial, 1)
+    # One call per leading index (season, date: a handful), so that each call
+    # sees (band, rows, x) blocks that are C-contiguous for the usual layouts
+    # (the compiled loops then vectorise).
+    for lead in range(nlead):
+        src = planes[:, lead]
+        kernel(src, ia, ib, used, out[lead], tile, not src.flags.c_contiguous, nruns)
+    return np.moveaxis(out, 1, 0).reshape((ia.shape[0],) + block.shape[1:])
 
 
 def normalized_differences(
@@ -415,28 +475,43 @@ def normalized_differences(
         raise ValueError("pairs is empty; give at least one, e.g. {'ndvi': ('nir', 'red')}")
     present = _require_bands(reflectance, [b for pair in pairs.values() for b in pair])
     provenance = {n: _nd_provenance(n, a, b) for n, (a, b) in pairs.items()}
-    stacked = _nd_stack(reflectance, [present.index(a) for a, _ in pairs.values()],
-                        [present.index(b) for _, b in pairs.values()], list(pairs))
-    order = [d for d in reflectance.dims if d != "band"]
-    return xr.Dataset(
-        {n: with_attrs(stacked.sel(index=n, drop=True).transpose(*order), n, **provenance[n]) for n in pairs}
-    )
+    planes = _nd_planes(reflectance, [present.index(a) for a, _ in pairs.values()],
+                        [present.index(b) for _, b in pairs.values()])
+    return xr.Dataset({n: with_attrs(p, n, **provenance[n]) for n, p in zip(pairs, planes, strict=True)})
 
 
-def _nd_stack(reflectance: xr.DataArray, ia: list[int], ib: list[int], names: list[str]) -> xr.DataArray:
-    """The fused kernel over ``reflectance`` (band moved first): an ``index`` dim in place of ``band``."""
+def _index_plane(blocks: list[np.ndarray], j: int) -> np.ndarray:
+    """Index ``j`` of the (single) fused block along the index axis, as a view."""
+    return blocks[0][j]
+
+
+def _nd_planes(reflectance: xr.DataArray, ia: list[int], ib: list[int]) -> list[xr.DataArray]:
+    """The fused kernel over ``reflectance`` (band moved first): one array per band pair, ``band`` dropped.
+
+    On dask input one task per chunk computes every index; each output then
+    takes its plane of that task's block as a view, so nothing is copied
+    before the outputs reach their destination (a Zarr store, ``.compute()``).
+    """
     r = reflectance.transpose("band", ...)
     r = r.astype(_float_dtype(r), copy=False)
     pos_a, pos_b = np.asarray(ia, dtype=np.int64), np.asarray(ib, dtype=np.int64)
     if r.chunks is not None:
-        data = r.data.rechunk({0: -1}).map_blocks(
-            nd_fused_block, pos_a, pos_b, parallel=False, chunks=((len(names),),) + r.data.chunks[1:],
+        fused = r.data.rechunk({0: -1}).map_blocks(
+            nd_fused_block, pos_a, pos_b, parallel=False, chunks=((len(ia),),) + r.data.chunks[1:],
             dtype=r.dtype,
         )
+        # Not fused[j]: dask's getitem copies a selection smaller than half its
+        # block.  A blockwise task with the index axis contracted and not
+        # concatenated (a concatenation would copy too) takes a view instead.
+        axes = tuple(range(fused.ndim))
+        data = [da.blockwise(_index_plane, axes[1:], fused, axes, j, None, concatenate=False,
+                             dtype=r.dtype, meta=np.empty((0,) * (fused.ndim - 1), dtype=r.dtype))
+                for j in range(len(ia))]
     else:
-        data = nd_fused_block(np.asarray(r.data), pos_a, pos_b)
+        fused = nd_fused_block(np.asarray(r.data), pos_a, pos_b)
+        data = list(fused)
     coords = {k: c for k, c in r.coords.items() if "band" not in c.dims and k != "band"}
-    return xr.DataArray(data, dims=("index", *r.dims[1:]), coords={**coords, "index": names})
+    return [xr.DataArray(d, dims=r.dims[1:], coords=coords) for d in data]
 
 
 # ---------------------------------------------------------------------------
@@ -585,280 +660,3 @@ def season_difference(
             parameters={"a": a, "b": b},
         )
     return xr.Dataset(out)
-
-
-# ---------------------------------------------------------------------------
-# Seasonal composites
-# ---------------------------------------------------------------------------
-
-
-def _month_day(text: str) -> int:
-    """'MM-DD' -> MM * 100 + DD, validated."""
-    try:
-        month, day = (int(p) for p in text.split("-"))
-    except (ValueError, AttributeError):
-        month = day = -1
-    if not (1 <= month <= 12 and 1 <= day <= 31):
-        raise ValueError(f"season bounds must be 'MM-DD' strings such as '04-01', received {text!r}")
-    return month * 100 + day
-
-
-def season_mask(times: xr.DataArray | np.ndarray, start: str, end: str) -> np.ndarray:
-    """Boolean mask of the dates whose month-day lies in ``[start, end]`` (inclusive).
-
-    A window whose start is later than its end wraps over the new year
-    (``("12-01", "02-28")`` is winter).
-    """
-    t = np.asarray(times, dtype="datetime64[D]")
-    months = t.astype("datetime64[M]").astype(int) % 12 + 1
-    days = (t - t.astype("datetime64[M]")).astype(int) + 1
-    md = months * 100 + days
-    lo, hi = _month_day(start), _month_day(end)
-    return (md >= lo) & (md <= hi) if lo <= hi else (md >= lo) | (md <= hi)
-
-
-def _require_stack(stack: xr.DataArray) -> None:
-    if tuple(stack.dims) != ("time", "band", "y", "x"):
-        raise DataQualityError(
-            f"expected a reflectance stack with dims ('time', 'band', 'y', 'x'), received {stack.dims}. "
-            "Transpose with stack.transpose('time', 'band', 'y', 'x')."
-        )
-
-
-def seasonal_composite(stack: xr.DataArray, seasons: Mapping[str, tuple[str, str]]) -> xr.Dataset:
-    """Per-pixel median of the valid observations in each season.
-
-    Parameters
-    ----------
-    stack : xarray.DataArray
-        Reflectance stack ``("time", "band", "y", "x")``, NaN where masked; lazy input stays lazy.
-    seasons : mapping of str to (str, str)
-        Season name to an inclusive ``("MM-DD", "MM-DD")`` window.
-
-    Returns
-    -------
-    xarray.Dataset
-        ``reflectance`` ``("season", "band", "y", "x")``: median of the non-NaN
-        values per band (NaN where a pixel has none); ``valid_count``
-        ``("season", "y", "x")`` int16: number of scenes in which the pixel is
-        finite in every band.  Coordinates ``season_start``, ``season_end`` and
-        ``n_scenes`` ride along the season dim.
-
-    Raises
-    ------
-    DataQualityError
-        If a season window holds no scene (the message lists the scene dates).
-    """
-    _require_stack(stack)
-    if not seasons:
-        raise ValueError("seasons is empty; give at least one, e.g. {'summer': ('06-11', '08-20')}")
-    dates = [str(d)[:10] for d in np.asarray(stack["time"].values, dtype="datetime64[D]")]
-    medians, counts, n_scenes = [], [], []
-    for season, (start, end) in seasons.items():
-        mask = season_mask(stack["time"].values, start, end)
-        if not mask.any():
-            raise DataQualityError(
-                f"season {season!r} ({start} to {end}, inclusive) contains no scene; the scene dates are "
-                f"{dates}. Widen the window in [seasons] of the project file or add scenes for it."
-            )
-        sub = stack.isel(time=np.flatnonzero(mask))
-        medians.append(nanmedian_time(sub))
-        counts.append(sub.notnull().all("band").sum("time").astype(np.int16))
-        n_scenes.append(int(mask.sum()))
-    season_coords = {
-        "season": list(seasons),
-        "season_start": ("season", [w[0] for w in seasons.values()]),
-        "season_end": ("season", [w[1] for w in seasons.values()]),
-        "n_scenes": ("season", n_scenes),
-    }
-    refl = xr.concat(medians, dim="season").assign_coords(season_coords)
-    count = xr.concat(counts, dim="season").assign_coords(season_coords)
-    params = {"seasons": {k: list(v) for k, v in seasons.items()}}
-    return xr.Dataset(
-        {
-            "reflectance": with_attrs(
-                refl.transpose("season", "band", "y", "x"),
-                "reflectance",
-                long_name="Seasonal median surface reflectance",
-                units="1",
-                domain="optical",
-                method="per-pixel median of the non-NaN observations of the scenes dated inside each "
-                "month-day window (inclusive)",
-                parameters=params,
-            ),
-            "valid_count": with_attrs(
-                count.transpose("season", "y", "x"),
-                "valid_count",
-                long_name="Number of valid observations in the seasonal composite",
-                units="1",
-                domain="optical",
-                method="count of scenes in the window with finite reflectance in every band",
-                parameters=params,
-            ),
-        }
-    )
-
-
-# ---------------------------------------------------------------------------
-# Reflectance plausibility (missing or doubled offset, unscaled DN)
-# ---------------------------------------------------------------------------
-
-# Plausibility thresholds: common practice, no source.  Dark objects (clear
-# water, shadow) put the low percentile of blue surface reflectance at about
-# 0 to 0.05; a forgotten -1000 DN offset (x 1e-4 scale) lifts it by ~0.1, a
-# doubled one pushes it to ~-0.1 with many negatives; DN left unscaled are
-# hundreds to thousands.
-PLAUSIBILITY_LIMITS: Mapping[str, float] = MappingProxyType(
-    {
-        "dark_percentile": 1.0,
-        "dark_blue_max": 0.08,
-        "dark_blue_min": -0.03,
-        "negative_fraction_max": 0.05,
-        "unscaled_value": 1.5,
-        "unscaled_fraction_max": 0.01,
-    }
-)
-
-
-def _scene_metrics(scene: xr.DataArray, max_pixels: int, limits: Mapping[str, float]) -> dict[str, Any]:
-    """Metrics of one ``(band, y, x)`` scene on a strided subsample (computes)."""
-    step = max(1, int(np.ceil(np.sqrt(scene.sizes["y"] * scene.sizes["x"] / max_pixels))))
-    sample = scene.isel(y=slice(None, None, step), x=slice(None, None, step))
-    values = np.asarray(sample.values, dtype=np.float64)
-    valid = values[np.isfinite(values)]
-    has_blue = "blue" in [str(b) for b in sample["band"].values]
-    blue = np.asarray(sample.sel(band="blue").values, dtype=np.float64) if has_blue else np.empty(0)
-    blue = blue[np.isfinite(blue)]  # no blue band: the dark-object test is skipped (NaN)
-    if valid.size == 0:
-        return {"n_valid": 0, "diagnosis": "empty"}
-    metrics = {
-        "n_valid": int(valid.size),
-        "negative_fraction": float(np.mean(valid < 0)),
-        "dark_blue": float(np.percentile(blue, limits["dark_percentile"])) if blue.size else float("nan"),
-        "unscaled_fraction": float(np.mean(valid > limits["unscaled_value"])),
-        "median": float(np.median(valid)),
-    }
-    metrics["diagnosis"] = _diagnose(metrics, limits)
-    return metrics
-
-
-def _diagnose(m: Mapping[str, float], limits: Mapping[str, float]) -> str:
-    if m["unscaled_fraction"] > limits["unscaled_fraction_max"]:
-        return "unscaled"
-    if m["negative_fraction"] > limits["negative_fraction_max"] or m["dark_blue"] < limits["dark_blue_min"]:
-        return "offset_doubled"
-    if m["dark_blue"] > limits["dark_blue_max"]:
-        return "offset_missing"
-    return "ok"
-
-
-def _scene_label(scene: xr.DataArray, name: str | None) -> str:
-    """A label for messages: the given name, else the scalar time coordinate, else 'scene'."""
-    if name:
-        return name
-    if "time" in scene.coords and scene["time"].ndim == 0:
-        return str(np.datetime64(scene["time"].values, "D"))
-    return "scene"
-
-
-def reflectance_plausibility(
-    stack_or_scene: xr.DataArray,
-    *,
-    name: str | None = None,
-    max_pixels: int = 1_000_000,
-    limits: Mapping[str, float] | None = None,
-) -> dict[str, dict[str, Any]]:
-    """Per-scene checks for a missing or doubled additive offset and for unscaled DN.
-
-    Computes (each scene is reduced to a few numbers on a strided subsample of
-    at most ``max_pixels`` pixels).
-
-    Parameters
-    ----------
-    stack_or_scene : xarray.DataArray
-        ``("time", "band", "y", "x")`` stack or one ``("band", "y", "x")`` scene.
-    name : str, optional
-        Label of a single scene in the report (e.g. its file name).
-    max_pixels : int
-        Pixels per scene sampled on a regular stride.
-    limits : mapping, optional
-        Overrides for :data:`PLAUSIBILITY_LIMITS` (thresholds are common practice, no source).
-
-    Returns
-    -------
-    dict
-        Scene label (ISO date for a stack; ``name``, the date or ``"scene"``
-        for one scene) to a dict with ``n_valid``, ``negative_fraction``
-        (share of valid values < 0), ``dark_blue`` (1st percentile of blue),
-        ``unscaled_fraction`` (share > 1.5), ``median`` and ``diagnosis`` in
-        {"ok", "offset_missing", "offset_doubled", "unscaled", "empty"}.
-    """
-    lim = {**PLAUSIBILITY_LIMITS, **(limits or {})}
-    if "time" not in stack_or_scene.dims:
-        return {_scene_label(stack_or_scene, name): _scene_metrics(stack_or_scene, max_pixels, lim)}
-    labels = [str(t)[:10] for t in np.asarray(stack_or_scene["time"].values, dtype="datetime64[D]")]
-    return {
-        label: _scene_metrics(stack_or_scene.isel(time=i), max_pixels, lim) for i, label in enumerate(labels)
-    }
-
-
-def _explain(label: str, m: Mapping[str, Any]) -> str:
-    where = f"scene {label}"
-    if m["diagnosis"] == "unscaled":
-        return (
-            f"{where}: {m['unscaled_fraction']:.0%} of valid values exceed 1.5 (median {m['median']:.4g}); "
-            "surface reflectance lies in about [0, 1], so these look like unscaled digital numbers. "
-            "Set scale = 0.0001 (and offset_dn) in that scene's [[optical]] table of the project file."
-        )
-    if m["diagnosis"] == "offset_missing":
-        return (
-            f"{where}: the darkest 1% of blue pixels sit at {m['dark_blue']:.3f}; dark objects should be "
-            "near 0 to 0.05, so the additive offset seems not applied. Set offset_dn = -1000 in that "
-            "scene's [[optical]] table of the project file."
-        )
-    if m["diagnosis"] == "offset_doubled":
-        return (
-            f"{where}: {m['negative_fraction']:.1%} of valid values are negative (dark blue level "
-            f"{m['dark_blue']:.3f}); this looks like the offset applied twice, or to data that already "
-            "carried it. Set offset_dn = 0 in that scene's [[optical]] table of the project file."
-        )
-    return f"{where}: no valid pixel; check the mask codes (mask_valid) and nodata of that scene."
-
-
-def check_reflectance(
-    stack_or_scene: xr.DataArray,
-    *,
-    name: str | None = None,
-    max_pixels: int = 1_000_000,
-    limits: Mapping[str, float] | None = None,
-    allow_empty: bool = True,
-) -> dict[str, dict[str, Any]]:
-    """Raise :class:`DataQualityError` if any scene fails :func:`reflectance_plausibility`.
-
-    Parameters
-    ----------
-    stack_or_scene : xarray.DataArray
-        Stack or scene, as for :func:`reflectance_plausibility`.
-    name : str, optional
-        Label of a single scene in messages (e.g. its file name).
-    max_pixels, limits
-        Passed to :func:`reflectance_plausibility`.
-    allow_empty : bool
-        Accept scenes with no valid pixel (fully clouded).
-
-    Returns
-    -------
-    dict
-        The plausibility report, when every scene passes.
-    """
-    report = reflectance_plausibility(stack_or_scene, name=name, max_pixels=max_pixels, limits=limits)
-    bad = {
-        k: m
-        for k, m in report.items()
-        if m["diagnosis"] != "ok" and not (allow_empty and m["diagnosis"] == "empty")
-    }
-    if bad:
-        lines = [_explain(k, m) for k, m in bad.items()]
-        message = "implausible surface reflectance:\n" + "\n".join(lines)
-        raise DataQualityError(f"{message}\nNote: {_OFFSET_HINT}.")
-    return report
