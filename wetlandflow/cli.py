@@ -113,6 +113,22 @@ def format_assessment(project, labelled, *, design: str = "stratified") -> str:
     return "\n".join(lines)
 
 
+def _cmd_report(args: argparse.Namespace) -> int:
+    from .report import write_report
+
+    paths = write_report(args.run_dir)
+    print(f"report: {paths['html']} and {paths['markdown']}\nCAUTION: {CAUTION}")
+    return 0
+
+
+def _cmd_doctor(args: argparse.Namespace) -> int:
+    from .doctor import doctor_report
+
+    text, _ = doctor_report()
+    print(text)
+    return 0
+
+
 class _pandas_wide:
     def __enter__(self):
         import pandas as pd
@@ -164,6 +180,13 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("labelled", help="the sample GeoPackage with reference_class filled in")
     a.add_argument("--design", choices=("stratified", "simple_random", "systematic"), default="stratified")
     a.set_defaults(func=_cmd_assess)
+
+    rp = sub.add_parser("report", help="write the methods report (HTML and Markdown) from a run folder")
+    rp.add_argument("run_dir", help="the run folder")
+    rp.set_defaults(func=_cmd_report)
+
+    dr = sub.add_parser("doctor", help="print the geospatial stack actually loaded and flag known conflicts")
+    dr.set_defaults(func=_cmd_doctor)
     return p
 
 

@@ -1,0 +1,300 @@
+"""The bibliography of the published methods a run can use, keyed by method.
+
+A run's report cites only what the run did: the sources recorded in the
+feature cube's ``reference`` attrs, matched to full entries here, plus the
+methods of the steps that ran (:data:`METHODS`).  :func:`cite_features` and
+:func:`collect` turn those into a de-duplicated, sorted reference list, each
+entry with what it was used for.
+
+Every entry carries ``checked``: ``"verified"`` when the citation (authors,
+year, title, journal, volume, pages) was read in the source or its publisher's
+record, ``"secondary"`` when it was read in another work's reference list, and
+``"from memory"`` otherwise.
+"""
+
+from __future__ import annotations
+
+import re
+import unicodedata
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass, field
+
+
+@dataclass(frozen=True, slots=True)
+class Reference:
+    """One published source: authors as printed, year, title and where it appeared."""
+
+    key: str
+    authors: str
+    year: int
+    title: str
+    source: str
+    checked: str = "from memory"
+
+    @property
+    def first_author(self) -> str:
+        """Surname of the first author (the text before the first comma)."""
+        return self.authors.split(",")[0].strip()
+
+    def citation(self) -> str:
+        """The full citation: authors (year). Title. Source."""
+        title = self.title if self.title.endswith(("?", ".", "!")) else f"{self.title}."
+        return f"{self.authors} ({self.year}). {title} {self.source}."
+
+    def surnames(self) -> list[str]:
+        """Authors' surnames in order (the comma-separated parts that are not initials)."""
+        return [t for t in self.authors.split(", ") if not _INITIALS.fullmatch(t)]
+
+    def short(self, *, parenthetical: bool = False) -> str:
+        """The in-text form: ``Surname (year)``, ``A & B (year)`` or ``Surname et al. (year)``.
+
+        ``parenthetical=True`` drops the brackets around the year (``Surname et al. 2014``), for use inside
+        a bracketed citation.
+        """
+        names = self.surnames()
+        who = names[0] if len(names) == 1 else f"{names[0]} & {names[1]}" if len(names) == 2 else \
+            f"{names[0]} et al."
+        return f"{who} {self.year}" if parenthetical else f"{who} ({self.year})"
+
+
+_INITIALS = re.compile(r"(?:[A-Z]\.(?:-[A-Z]\.)?\s?)+")
+
+
+def _ref(key: str, authors: str, year: int, title: str, source: str, checked: str = "from memory") -> Reference:
+    return Reference(key, authors, year, title, source, checked)
+
+
+# Status per entry: "verified" entries were read in the paper's own record or a published reference list of
+# record; "secondary" in reference lists of published code; the rest are from memory and say so.
+BIBLIOGRAPHY: dict[str, Reference] = {r.key: r for r in (
+    # -- accuracy, areas and sampling
+    _ref("olofsson2014", "Olofsson, P., Foody, G. M., Herold, M., Stehman, S. V., Woodcock, C. E., Wulder, M. A.",
+         2014, "Good practices for estimating area and assessing accuracy of land change",
+         "Remote Sensing of Environment 148, 42-57", "verified"),
+    _ref("olofsson2013", "Olofsson, P., Foody, G. M., Stehman, S. V., Woodcock, C. E.", 2013,
+         "Making better use of accuracy data in land change studies: Estimating accuracy and area and quantifying "
+         "uncertainty using stratified estimation", "Remote Sensing of Environment 129, 122-131", "verified"),
+    _ref("cochran1977", "Cochran, W. G.", 1977, "Sampling Techniques", "3rd edition, Wiley, New York"),
+    _ref("pontius2011", "Pontius, R. G., Millones, M.", 2011,
+         "Death to Kappa: birth of quantity disagreement and allocation disagreement for accuracy assessment",
+         "International Journal of Remote Sensing 32(15), 4407-4429"),
+    _ref("stehman2014", "Stehman, S. V.", 2014,
+         "Estimating area and map accuracy for stratified random sampling when the strata are different from the "
+         "map classes", "International Journal of Remote Sensing 35(13), 4923-4939", "secondary"),
+    # -- spatial validation and the area of applicability
+    _ref("roberts2017", "Roberts, D. R., Bahn, V., Ciuti, S., Boyce, M. S., Elith, J., Guillera-Arroita, G., "
+         "Hauenstein, S., Lahoz-Monfort, J. J., Schröder, B., Thuiller, W., Warton, D. I., Wintle, B. A., "
+         "Hartig, F., Dormann, C. F.", 2017,
+         "Cross-validation strategies for data with temporal, spatial, hierarchical, or phylogenetic structure",
+         "Ecography 40(8), 913-929", "verified"),
+    _ref("ploton2020", "Ploton, P., Mortier, F., Réjou-Méchain, M., Barbier, N., Picard, N., Rossi, V., "
+         "Dormann, C., Cornu, G., Viennois, G., Bayol, N., Lyapustin, A., Gourlet-Fleury, S., Pélissier, R.", 2020,
+         "Spatial validation reveals poor predictive performance of large-scale ecological mapping models",
+         "Nature Communications 11, 4540", "verified"),
+    _ref("mila2022", "Milà, C., Mateu, J., Pebesma, E., Meyer, H.", 2022,
+         "Nearest neighbour distance matching Leave-One-Out Cross-Validation for map validation",
+         "Methods in Ecology and Evolution 13(6), 1304-1316"),
+    _ref("linnenbrink2024", "Linnenbrink, J., Milà, C., Ludwig, M., Meyer, H.", 2024,
+         "kNNDM CV: k-fold nearest-neighbour distance matching cross-validation for map accuracy estimation",
+         "Geoscientific Model Development 17, 5897-5912", "verified"),
+    _ref("meyer2021", "Meyer, H., Pebesma, E.", 2021,
+         "Predicting into unknown space? Estimating the area of applicability of spatial prediction models",
+         "Methods in Ecology and Evolution 12(9), 1620-1633", "verified"),
+    # -- models and explanations
+    _ref("chen2016", "Chen, T., Guestrin, C.", 2016, "XGBoost: A scalable tree boosting system",
+         "Proceedings of the 22nd ACM SIGKDD International Conference on Knowledge Discovery and Data Mining, "
+         "785-794", "secondary"),
+    _ref("breiman2001", "Breiman, L.", 2001, "Random forests", "Machine Learning 45(1), 5-32", "secondary"),
+    _ref("lundberg2020", "Lundberg, S. M., Erion, G., Chen, H., DeGrave, A., Prutkin, J. M., Nair, B., Katz, R., "
+         "Himmelfarb, J., Bansal, N., Lee, S.-I.", 2020,
+         "From local explanations to global understanding with explainable AI for trees",
+         "Nature Machine Intelligence 2(1), 56-67", "verified"),
+    # -- optical indices
+    _ref("rouse1974", "Rouse, J. W., Haas, R. H., Schell, J. A., Deering, D. W.", 1974,
+         "Monitoring vegetation systems in the Great Plains with ERTS",
+         "Third Earth Resources Technology Satellite-1 Symposium, NASA SP-351, 309-317"),
+    _ref("mcfeeters1996", "McFeeters, S. K.", 1996,
+         "The use of the Normalized Difference Water Index (NDWI) in the delineation of open water features",
+         "International Journal of Remote Sensing 17(7), 1425-1432"),
+    _ref("xu2006", "Xu, H.", 2006, "Modification of normalised difference water index (NDWI) to enhance open "
+         "water features in remotely sensed imagery", "International Journal of Remote Sensing 27(14), 3025-3033"),
+    _ref("gao1996", "Gao, B.-C.", 1996, "NDWI - A normalized difference water index for remote sensing of "
+         "vegetation liquid water from space", "Remote Sensing of Environment 58, 257-266", "verified"),
+    _ref("wilson2002", "Wilson, E. H., Sader, S. A.", 2002,
+         "Detection of forest harvest type using multiple dates of Landsat TM imagery",
+         "Remote Sensing of Environment 80, 385-396"),
+    _ref("gitelson1994", "Gitelson, A., Merzlyak, M. N.", 1994,
+         "Spectral reflectance changes associated with autumn senescence of Aesculus hippocastanum L. and Acer "
+         "platanoides L. leaves", "Journal of Photochemistry and Photobiology B: Biology 22, 247-252"),
+    _ref("guyot1988", "Guyot, G., Baret, F.", 1988,
+         "Utilisation de la haute résolution spectrale pour suivre l'état des couverts végétaux",
+         "Proceedings of the 4th International Colloquium on Spectral Signatures of Objects in Remote Sensing, "
+         "ESA SP-287, 279-286"),
+    # -- SAR and water
+    _ref("lee1980", "Lee, J.-S.", 1980, "Digital image enhancement and noise filtering by use of local statistics",
+         "IEEE Transactions on Pattern Analysis and Machine Intelligence PAMI-2(2), 165-168"),
+    _ref("quegan2001", "Quegan, S., Yu, J. J.", 2001, "Filtering of multichannel SAR images",
+         "IEEE Transactions on Geoscience and Remote Sensing 39(11), 2373-2379"),
+    _ref("otsu1979", "Otsu, N.", 1979, "A threshold selection method from gray-level histograms",
+         "IEEE Transactions on Systems, Man, and Cybernetics SMC-9(1), 62-66", "verified"),
+    # -- terrain
+    _ref("horn1981", "Horn, B. K. P.", 1981, "Hill shading and the reflectance map",
+         "Proceedings of the IEEE 69(1), 14-47", "verified"),
+    _ref("zevenbergen1987", "Zevenbergen, L. W., Thorne, C. R.", 1987,
+         "Quantitative analysis of land surface topography", "Earth Surface Processes and Landforms 12(1), 47-56"),
+    _ref("guisan1999", "Guisan, A., Weiss, S. B., Weiss, A. D.", 1999,
+         "GLM versus CCA spatial modeling of plant species distribution", "Plant Ecology 143, 107-122"),
+    _ref("beven1979", "Beven, K. J., Kirkby, M. J.", 1979,
+         "A physically based, variable contributing area model of basin hydrology",
+         "Hydrological Sciences Bulletin 24(1), 43-69", "secondary"),
+    _ref("barnes2014", "Barnes, R., Lehman, C., Mulla, D.", 2014, "Priority-flood: An optimal depression-filling "
+         "and watershed-labeling algorithm for digital elevation models", "Computers & Geosciences 62, 117-127",
+         "secondary"),
+    _ref("ocallaghan1984", "O'Callaghan, J. F., Mark, D. M.", 1984,
+         "The extraction of drainage networks from digital elevation data",
+         "Computer Vision, Graphics, and Image Processing 28, 323-344", "verified"),
+    _ref("freeman1991", "Freeman, T. G.", 1991, "Calculating catchment area with divergent flow based on a "
+         "regular grid", "Computers & Geosciences 17(3), 413-422", "verified"),
+    _ref("quinn1991", "Quinn, P., Beven, K., Chevallier, P., Planchon, O.", 1991,
+         "The prediction of hillslope flow paths for distributed hydrological modelling using digital terrain "
+         "models", "Hydrological Processes 5, 59-79", "verified"),
+    _ref("renno2008", "Rennó, C. D., Nobre, A. D., Cuartas, L. A., Soares, J. V., Hodnett, M. G., Tomasella, J., "
+         "Waterloo, M. J.", 2008, "HAND, a new terrain descriptor using SRTM-DEM: mapping terra-firme rainforest "
+         "environments in Amazonia", "Remote Sensing of Environment 112, 3469-3481"),
+    _ref("murphy2009", "Murphy, P. N. C., Ogilvie, J., Arp, P.", 2009,
+         "Topographic modelling of soil moisture conditions: a comparison and verification of two models",
+         "European Journal of Soil Science 60, 94-109", "secondary"),
+    _ref("gallant2003", "Gallant, J. C., Dowling, T. I.", 2003,
+         "A multiresolution index of valley bottom flatness for mapping depositional areas",
+         "Water Resources Research 39(12), 1347", "verified"),
+)}
+
+# What each method of a run cites (keys of BIBLIOGRAPHY).
+METHODS: dict[str, tuple[str, ...]] = {
+    "spatial_cv": ("roberts2017", "ploton2020"),
+    "cv_distance_diagnostics": ("mila2022", "linnenbrink2024"),
+    "disagreement": ("pontius2011",),
+    "xgboost": ("chen2016",),
+    "random_forest": ("breiman2001",),
+    "area_of_applicability": ("meyer2021",),
+    "tree_shap": ("lundberg2020",),
+    "stratified_area_estimation": ("olofsson2014", "olofsson2013"),
+    "sample_size": ("cochran1977", "olofsson2014"),
+    "lee_filter": ("lee1980",),
+    "multitemporal_filter": ("quegan2001",),
+    "otsu_threshold": ("otsu1979",),
+    "priority_flood": ("barnes2014",),
+    "d8": ("ocallaghan1984",),
+    "mfd": ("freeman1991",),
+    "mfd_quinn": ("quinn1991",),
+}
+
+
+def _fold(text: str) -> str:
+    """Lower-case ASCII (accents dropped) so 'Renno' matches 'Rennó'."""
+    return unicodedata.normalize("NFKD", text).encode("ascii", "ignore").decode().lower()
+
+
+def match(text: str) -> list[Reference]:
+    """Bibliography entries a free-text reference names: first author's surname and year both present.
+
+    A reference attr may name several works (``"A (2002) ...; after B (1996) ..."``); each is returned.
+    """
+    folded = _fold(text)
+    hits = []
+    for ref in BIBLIOGRAPHY.values():
+        surname = re.escape(_fold(ref.first_author))
+        if re.search(rf"\b{surname}\b", folded) and re.search(rf"\b{ref.year}\b", folded):
+            hits.append(ref)
+    return hits
+
+
+@dataclass
+class Cited:
+    """A reference as the report lists it, with what it was used for."""
+
+    text: str
+    sort_key: str
+    used_for: list[str] = field(default_factory=list)
+    reference: Reference | None = None
+
+    def add_use(self, what: str) -> None:
+        if what not in self.used_for:
+            self.used_for.append(what)
+
+
+class Citations:
+    """Accumulates the references of a run, de-duplicated, in first-author order."""
+
+    def __init__(self) -> None:
+        self._by_text: dict[str, Cited] = {}
+
+    def add(self, ref: Reference, used_for: str) -> Cited:
+        cited = self._by_text.setdefault(ref.citation(), Cited(ref.citation(), _fold(ref.citation()),
+                                                              reference=ref))
+        cited.add_use(used_for)
+        return cited
+
+    def add_text(self, text: str, used_for: str) -> list[Cited]:
+        """Cite a recorded reference string: its bibliography entries, or the string itself when none match."""
+        refs = match(text)
+        if refs:
+            return [self.add(r, used_for) for r in refs]
+        cited = self._by_text.setdefault(text.strip(), Cited(text.strip(), _fold(text)))
+        cited.add_use(used_for)
+        return [cited]
+
+    def add_method(self, method: str, used_for: str) -> list[Cited]:
+        if method not in METHODS:
+            raise KeyError(f"method {method!r} has no entry in wetlandflow.references.METHODS; "
+                           f"known: {sorted(METHODS)}")
+        return [self.add(BIBLIOGRAPHY[k], used_for) for k in METHODS[method]]
+
+    def entries(self) -> list[Cited]:
+        return sorted(self._by_text.values(), key=lambda c: c.sort_key)
+
+
+def feature_methods(name: str, attrs: Mapping[str, object], parameters: Mapping[str, object]) -> list[str]:
+    """Methods a feature used beyond its own ``reference`` attr, read from its recorded parameters.
+
+    The speckle filter, DEM conditioning and flow routing are recorded as parameters, and surface-water
+    frequency thresholds each date by Otsu's method; their sources are cited too.
+    """
+    methods = []
+    speckle = parameters.get("speckle_filter")
+    if isinstance(speckle, Mapping):
+        methods.append({"lee": "lee_filter", "multitemporal": "multitemporal_filter"}.get(str(speckle.get(
+            "method")), ""))
+    if str(parameters.get("conditioning", "")).startswith("priority_flood") or "Priority-Flood" in str(
+            attrs.get("method", "")):
+        methods.append("priority_flood")
+    for key in ("method", "routing"):
+        value = str(parameters.get(key, ""))
+        if value in ("d8", "mfd", "mfd_quinn"):
+            methods.append(value)
+    if name in ("water_frequency", "hydroperiod"):
+        methods.append("otsu_threshold")
+    return [m for m in dict.fromkeys(methods) if m]
+
+
+def cite_features(citations: Citations, features: Mapping[str, Mapping[str, object]],
+                  parameters: Mapping[str, Mapping[str, object]]) -> dict[str, list[Cited]]:
+    """Add every feature's sources to ``citations``; return the citations per feature (empty: none recorded)."""
+    out: dict[str, list[Cited]] = {}
+    for name, attrs in features.items():
+        cited: list[Cited] = []
+        text = str(attrs.get("reference", "") or "").strip()
+        if text:
+            cited += citations.add_text(text, f"feature {name}")
+        for method in feature_methods(name, attrs, parameters.get(name, {})):
+            cited += citations.add_method(method, f"feature {name}")
+        out[name] = list({id(c): c for c in cited}.values())
+    return out
+
+
+def collect(methods: Iterable[tuple[str, str]]) -> Citations:
+    """A :class:`Citations` holding the sources of ``(method, used_for)`` pairs."""
+    citations = Citations()
+    for method, used_for in methods:
+        citations.add_method(method, used_for)
+    return citations

@@ -1,0 +1,689 @@
+"""The text of the methods report, generated from a run folder's manifest and results.
+
+Each ``section_*`` function reads a :class:`wetlandflow.report.RunFolder` and
+returns a :class:`Section` of blocks (paragraphs, tables, figures).  The text
+states what the recorded numbers show and no more: the cross-validated
+accuracy serves model choice, and only a labelled probability sample gives
+the inventory's accuracy and areas.  Sources are cited through the run
+folder's :class:`~wetlandflow.references.Citations`, so the references section
+lists exactly what the sections cited.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Any
+
+import pandas as pd
+
+from . import CAUTION, __version__
+from .references import cite_features
+
+if TYPE_CHECKING:
+    from .report import RunFolder
+
+SECTIONS = (
+    "Caution",
+    "Summary",
+    "Study area and grid",
+    "Inputs",
+    "Features",
+    "Training data",
+    "Validation design",
+    "Model",
+    "Cross-validated accuracy (for model choice)",
+    "Inventory accuracy and error-adjusted areas (probability sample)",
+    "Maps and mapped areas",
+    "Drivers per class",
+    "Area of applicability",
+    "Limitations",
+    "Software versions",
+    "Reproducing this run",
+    "References",
+)
+NO_SAMPLE = "No probability sample was assessed for this run"
+
+
+# -- blocks -------------------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Paragraph:
+    text: str
+
+
+@dataclass(frozen=True)
+class Bullets:
+    items: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class Table:
+    frame: pd.DataFrame
+    caption: str = ""
+
+
+@dataclass(frozen=True)
+class Figure:
+    name: str
+    png: bytes
+    caption: str
+
+
+@dataclass(frozen=True)
+class Code:
+    text: str
+
+
+@dataclass(frozen=True)
+class Callout:
+    text: str
+
+
+@dataclass
+class Section:
+    title: str
+    blocks: list = field(default_factory=list)
+
+    @property
+    def anchor(self) -> str:
+        return re.sub(r"[^a-z0-9]+", "-", self.title.lower()).strip("-")
+
+
+# -- number formats (the tests read the same files and format them the same way) -------------------------------
+def acc(x: float) -> str:
+    """An accuracy or proportion, three decimals."""
+    return f"{x:.3f}"
+
+
+def ha(x: float) -> str:
+    """An area in hectares, one decimal with thousands separators."""
+    return f"{x:,.1f}"
+
+
+def pct(x: float) -> str:
+    """A share as a percentage, one decimal."""
+    return f"{100 * x:.1f} %"
+
+
+def ha_small(x: float) -> str:
+    """A small area in hectares (a minimum mapping unit), three significant digits."""
+    return f"{x:.3g}"
+
+
+def _figure(blocks: list, name: str, png: bytes | None, caption: str) -> None:
+    if png is not None:
+        blocks.append(Figure(name, png, caption))
+
+
+# -- sections -------------------------------------------------------------------------------------------------------
+def section_caution(run: RunFolder) -> Section:
+    return Section("Caution", [Callout(CAUTION)])
+
+
+def section_summary(run: RunFolder) -> Section:
+    m, p = run.manifest, run.project
+    name = p.get("project", {}).get("name", "(unnamed)")
+    finished = f", finished {m['finished']}" if m.get("finished") else " (no finish time recorded)"
+    blocks: list = [Paragraph(
+        f"This appendix documents the run of project \"{name}\" recorded in this folder: wetlandflow "
+        f"{m.get('wetlandflow', '?')}, started {m.get('started', '?')}{finished}, seed {m.get('seed', '?')}, "
+        f"resolved configuration SHA-256 `{m.get('config_sha256', '?')}`. It was generated from the run "
+        f"folder alone by wetlandflow {__version__}.")]
+    steps = m.get("steps", {})
+    unfinished = [f"{k} ({v.get('status')})" for k, v in steps.items() if v.get("status") != "done"]
+    if unfinished:
+        blocks.append(Paragraph(f"Not every step finished: {', '.join(unfinished)}. Sections that depend on "
+                                "these steps say what is missing; other outputs in the folder may be left from an "
+                                "earlier run and need not match this manifest."))
+    if run.areas is not None and run.class_names:
+        blocks.append(Paragraph(
+            f"The run maps {len(run.class_names)} classes ({', '.join(run.class_names)}) on "
+            f"{run.pixel_size_m:g} m pixels over {ha(run.areas['mapped_area_ha'].sum())} ha."))
+    blocks.append(Paragraph(_headline_accuracy(run)))
+    return Section("Summary", blocks)
+
+
+def _headline_accuracy(run: RunFolder) -> str:
+    s, cv = run.accuracy_summary, run.metrics
+    cv_text = (f" Spatial cross-validation on the training plots gave an overall accuracy of "
+               f"{acc(cv['overall_accuracy'])}; that figure serves model choice only." if cv else "")
+    if s is None:
+        return (f"{NO_SAMPLE}: this report gives no accuracy or area estimate for the inventory. The mapped "
+                "areas are pixel counts of the map and carry its classification errors." + cv_text)
+    lo, hi = s["overall_accuracy"] - s["overall_ci_half_width"], s["overall_accuracy"] + s["overall_ci_half_width"]
+    return (f"From the labelled probability sample, the overall accuracy of the final map is "
+            f"{acc(s['overall_accuracy'])} ({_conf(s)} confidence interval {acc(lo)} to {acc(hi)}); the "
+            "section on inventory accuracy gives the error-adjusted class areas." + cv_text)
+
+
+def _conf(summary: dict[str, Any]) -> str:
+    return f"{100 * summary.get('confidence', 0.95):g} %"
+
+
+def section_study_area(run: RunFolder) -> Section:
+    g = run.step("inputs").get("grid")
+    if not g:
+        return Section("Study area and grid", [Paragraph("The inputs step did not record a grid.")])
+    t, w, h = g["transform"], g["width"], g["height"]
+    left, top = t[2], t[5]
+    right, bottom = left + w * t[0], top + h * t[4]
+    aoi = run.manifest.get("inputs", {}).get("aoi", {}).get("file", "the AOI file")
+    text = (f"The reference grid is {g['crs']} with {abs(t[0]):g} m pixels, {w:,} columns by {h:,} rows "
+            f"({w * h * run.pixel_area_ha / 100:,.2f} km2); its outer edges are x {left:,.0f} to {right:,.0f} m and "
+            f"y {bottom:,.0f} to {top:,.0f} m. Every raster of the run is on this grid.")
+    if run.aoi_pixels:
+        text += (f" The area of interest ({aoi}) covers {run.aoi_pixels:,} pixels "
+                 f"({ha(run.aoi_pixels * run.pixel_area_ha)} ha); outside it every output is no data.")
+    return Section("Study area and grid", [Paragraph(text)])
+
+
+def section_inputs(run: RunFolder) -> Section:
+    blocks = _optical_blocks(run) + _season_blocks(run) + _sar_blocks(run) + _dem_blocks(run)
+    files = run.manifest.get("inputs", {})
+    if files:
+        blocks.append(Table(pd.DataFrame([{"input": k, "file": v.get("file", ""), "sha256": v.get("sha256", "")}
+                                          for k, v in files.items()]), "Input files and their SHA-256"))
+    return Section("Inputs", blocks or [Paragraph("The manifest records no inputs.")])
+
+
+def _optical_blocks(run: RunFolder) -> list:
+    files, checks = run.manifest.get("inputs", {}), run.step("inputs").get("checks", {})
+    optical = sorted(run.project.get("optical", []), key=lambda s: str(s["date"]))
+    if not optical:
+        return []
+    rows = [{"date": s["date"], "file": files.get(f"optical {s['date']}", {}).get("file", ""),
+             "bands": len(s.get("bands", [])),
+             "reflectance": f"(DN + {s.get('offset_dn', 0):g}) x {s.get('scale', 1):g}",
+             "quality mask": files.get(f"optical mask {s['date']}", {}).get("file", "none"),
+             "valid codes": ", ".join(str(c) for c in s.get("mask_valid", [])),
+             "check": _diagnosis(checks.get(f"optical {s['date']}", {}))} for s in optical]
+    resampling = run.step("inputs").get("layers", {}).get("optical", {}).get("resampling", "the recorded")
+    text = (f"{len(optical)} multispectral optical scenes ({optical[0]['date']} to {optical[-1]['date']}), bands "
+            f"{', '.join(optical[0].get('bands', []))}, resampled onto the grid with {resampling} resampling. "
+            "Pixels whose quality code is not a valid code are masked (treated as cloud or no data); the check "
+            "column is the reflectance plausibility diagnosis of each scene.")
+    return [Paragraph(text), Table(pd.DataFrame(rows), "Optical scenes")]
+
+
+def _sar_blocks(run: RunFolder) -> list:
+    files, checks = run.manifest.get("inputs", {}), run.step("inputs").get("checks", {})
+    sar = sorted(run.project.get("sar", []), key=lambda s: str(s["date"]))
+    if not sar:
+        return []
+    rows = [{"date": s["date"], "file": files.get(f"sar {s['date']}", {}).get("file", ""),
+             "orbit": s.get("orbit", ""), "polarisations": ", ".join(s.get("bands", [])),
+             "declared units": s.get("units", ""),
+             "range check": checks.get(f"sar {s['date']}", {}).get("likely_units", "")} for s in sar]
+    text = (f"{len(sar)} SAR backscatter scenes ({sar[0]['date']} to {sar[-1]['date']}), converted to linear "
+            f"power before any statistic. Speckle filter: {_speckle_text(run)}.")
+    return [Paragraph(text), Table(pd.DataFrame(rows), "SAR scenes")]
+
+
+def _dem_blocks(run: RunFolder) -> list:
+    dem, cfg = run.step("inputs").get("layers", {}).get("dem", {}), run.project.get("dem")
+    if not cfg:
+        return []
+    file = run.manifest.get("inputs", {}).get("dem", {}).get("file", "")
+    return [Paragraph(f"Elevation model {file}: declared units {cfg.get('units', '?')}, source CRS "
+                      f"{dem.get('source_crs', '?')}, source pixel {_num(dem.get('source_resolution_m'))} m, "
+                      f"resampled to the grid with {dem.get('resampling', '?')} resampling.")]
+
+
+def _num(x: Any) -> str:
+    return f"{x:g}" if isinstance(x, (int, float)) else "?"
+
+
+def _diagnosis(check: dict[str, Any]) -> str:
+    values = [v.get("diagnosis") for v in check.values() if isinstance(v, dict) and "diagnosis" in v]
+    return ", ".join(sorted(set(values))) if values else ""
+
+
+def _season_blocks(run: RunFolder) -> list:
+    cov = run.season_coverage()
+    if cov is None:
+        return []
+    shown = cov.assign(**{"cloud-free coverage": [("not recorded" if v is None else pct(v))
+                                                  for v in cov["cloud-free coverage"]]})
+    return [Paragraph("Optical features are computed from per-season median composites of the valid "
+                      "observations. Cloud-free coverage is the share of the area's pixels with at least one "
+                      "valid observation in the season's composite."),
+            Table(shown, "Seasons, optical scenes and cloud-free coverage")]
+
+
+def _speckle_text(run: RunFolder) -> str:
+    used = {json.dumps(pr.get("speckle_filter"), sort_keys=True) for n, pr in run.feature_parameters.items()
+            if "speckle_filter" in pr}
+    if not used:
+        return "not recorded"
+    out = []
+    for u in sorted(used):
+        v = json.loads(u)
+        if isinstance(v, dict):
+            method = {"lee": "lee_filter", "multitemporal": "multitemporal_filter"}.get(v.get("method"), "")
+            cite = f" ({run.cite(method, 'SAR speckle filter')})" if method else ""
+            out.append(f"{v.get('method')} with a {v.get('window')} x {v.get('window')} window{cite}")
+        else:
+            out.append(str(v))
+    return "; ".join(out)
+
+
+def section_features(run: RunFolder) -> Section:
+    attrs = {k: a for k, a in run.feature_attrs.items() if "domain" in a}
+    if not attrs:
+        return Section("Features", [Paragraph("The run recorded no feature cube.")])
+    cited = cite_features(run.citations, attrs, run.feature_parameters)
+    used = run.model_features or list(attrs)
+    domains = pd.Series([a["domain"] for a in attrs.values()]).value_counts()
+    rows = [{"feature": k, "domain": a["domain"], "units": a.get("units", ""),
+             "definition": a.get("formula") or a.get("method", ""),
+             "parameters": _compact(run.feature_parameters.get(k, {})),
+             "source": "; ".join(c.reference.short() if c.reference else c.text for c in cited[k])
+             or "no published source recorded",
+             "in model": "yes" if k in used else "no"} for k, a in attrs.items()]
+    text = (f"The feature cube holds {len(attrs)} features ({', '.join(f'{n} {d}' for d, n in domains.items())}); "
+            f"the model used {sum(k in used for k in attrs)} of them. Every feature carries its formula or "
+            "method, units, parameters and published source as recorded when it was computed.")
+    return Section("Features", [Paragraph(text), Table(pd.DataFrame(rows), "Features of the cube")])
+
+
+def _compact(params: dict[str, Any]) -> str:
+    return json.dumps(params, sort_keys=True, separators=(", ", ": "), default=str) if params else ""
+
+
+def section_training(run: RunFolder) -> Section:
+    s = run.samples
+    if s is None:
+        return Section("Training data", [Paragraph("The run wrote no samples table.")])
+    g = s.groupby("class")
+    table = pd.DataFrame({"plots": g["plot_id"].nunique(), "pixels": g.size()}).reindex(
+        [c for c in run.class_names if c in g.groups] or list(g.groups)).reset_index()
+    cfg = run.project.get("samples", {})
+    text = (f"The model learned from {len(s):,} pixels of {s['plot_id'].nunique():,} labelled plots, at most "
+            f"{cfg.get('max_pixels_per_plot', '?')} pixels per plot (inward buffer "
+            f"{cfg.get('inward_buffer_m', 0):g} m). Pixels of one plot are strongly alike, so the plots, not the "
+            "pixels, are the independent units.")
+    blocks: list = [Paragraph(text), Table(table, "Plots and pixels per class")]
+    missing = run.step("samples").get("missing_before_drop", {})
+    gaps = {k: v for k, v in missing.items() if v}
+    if gaps:
+        worst = max(gaps, key=gaps.get)
+        blocks.append(Paragraph(
+            f"{len(gaps)} of {len(missing)} features had no value at some training pixels (most: {worst}, "
+            f"{gaps[worst]:,} pixels), typically cloud in a season. Missing-data policy "
+            f"\"{cfg.get('missing', '?')}\": " + ("the model routes missing values natively, the same way when "
+                                                  "mapping." if cfg.get("missing") == "keep" else
+                                                  "pixels with any missing feature were dropped.")))
+    from .report import plots_png
+
+    _figure(blocks, "training_plots.png", plots_png(run), "Training plots by class over the mapped area.")
+    return Section("Training data", blocks)
+
+
+def section_validation_design(run: RunFolder) -> Section:
+    v, rec = run.project.get("validation", {}), run.step("validation")
+    if not rec:
+        return Section("Validation design", [Paragraph("The validation step did not run.")])
+    design = v.get("design", "?")
+    blocks: list = [Paragraph(_design_text(run, v, design))]
+    _figure(blocks, "fold_map.png", run.png("validation/fold_map.png"), "Training samples by test fold.")
+    counts = run.csv("validation/fold_class_counts.csv")
+    if counts is not None:
+        blocks.append(Table(counts, "Samples and plots per class and test fold"))
+    diag = rec.get("diagnostics", {})
+    if diag.get("median_nn_distance_m"):
+        blocks.append(Paragraph(_distance_text(run, diag)))
+        _figure(blocks, "distance_ecdf.png", run.png("validation/distance_ecdf.png"),
+                "Nearest-neighbour distance distributions: CV test to training, prediction locations to "
+                "training, and sample to sample.")
+    return Section("Validation design", blocks)
+
+
+def _design_text(run: RunFolder, v: dict[str, Any], design: str) -> str:
+    k = (run.metrics or {}).get("n_folds", v.get("n_folds", "?"))
+    if design == "blocks":
+        return (f"Spatial block cross-validation: square blocks of {v.get('block_size_m', 0):g} m are assigned "
+                f"whole to {k} folds, with the classes balanced across folds and no plot split between folds. "
+                "Nearby pixels and plots are alike, so a random split would test the model on near-copies of "
+                "its training data and overstate the accuracy the map reaches away from the plots "
+                f"({run.cite('spatial_cv', 'validation design')}).")
+    if design == "group":
+        return (f"Grouped cross-validation: whole plots are assigned to {k} folds, so no plot is on both sides "
+                f"of a split; neighbouring plots can still fall on both sides "
+                f"({run.cite('spatial_cv', 'validation design')}).")
+    return (f"Random pixel cross-validation with {k} folds. Pixels of one plot fall on both sides of a split, so "
+            "the accuracy below is optimistic for the map "
+            f"({run.cite('spatial_cv', 'validation design')}).")
+
+
+def _distance_text(run: RunFolder, diag: dict[str, Any]) -> str:
+    med = diag["median_nn_distance_m"]
+    cv = next((v for k, v in med.items() if k.startswith("CV")), None)
+    pred = med.get("prediction-to-sample")
+    text = "To judge whether the folds resemble the mapping task, nearest-neighbour distances are compared"
+    cite = run.cite("cv_distance_diagnostics", "validation distance diagnostics")
+    if cv is None or pred is None:
+        return f"{text} ({cite}); the diagnostics are incomplete."
+    text += (f" ({cite}): the median distance from a CV test sample to the nearest training sample is {cv:,.1f} m, "
+             f"from a random location of the mapped area to the nearest training sample {pred:,.1f} m")
+    if diag.get("wasserstein_W_m") is not None:
+        text += f" (Wasserstein distance between the two distributions {diag['wasserstein_W_m']:,.1f} m)"
+    # A ratio within 0.8-1.25 counts as "similar": a rule of thumb (common practice, no source).
+    ratio = cv / pred if pred else float("nan")
+    if ratio < 0.8:
+        text += (". CV test samples lie closer to their training data than most mapped pixels do, so the "
+                 "cross-validated accuracy may be optimistic for the map as a whole.")
+    elif ratio > 1.25:
+        text += (". CV test samples lie farther from their training data than most mapped pixels do, so the "
+                 "cross-validated accuracy may be pessimistic for the map as a whole.")
+    else:
+        text += ". The two are of similar size, so the folds resemble the mapping task in this respect."
+    return text
+
+
+def section_model(run: RunFolder) -> Section:
+    b = run.bundle
+    if b is None:
+        return Section("Model", [Paragraph("The model step did not write a bundle.")])
+    kind = b.get("kind", "?")
+    params = run.step("model").get("hyperparameters") or {k: v for k, v in b.get("params", {}).items()
+                                                         if k != "classes"}
+    method = {"xgboost": "xgboost", "random_forest": "random_forest"}.get(kind)
+    label = {"xgboost": "gradient-boosted trees (XGBoost, multi-class soft probabilities)",
+             "random_forest": "a random forest"}.get(kind, kind)
+    cite = f" ({run.cite(method, 'classifier')})" if method else ""
+    weighting = ("Samples were weighted so that each class carries equal total weight. "
+                 if params.get("class_weighting") else "")
+    n_cube = len([a for a in run.feature_attrs.values() if "domain" in a])
+    n_used = len(run.model_features)
+    selection = (f"The cube's features were not recorded; the model used {n_used}." if not n_cube else
+                 "All features of the cube were used; the run selected none out." if n_cube == n_used else
+                 f"{n_used} of the cube's {n_cube} features were used.")
+    text = (f"The classifier is {label}{cite}, fitted on all training samples with seed "
+            f"{params.get('random_state', run.manifest.get('seed', '?'))}. {weighting}The hyperparameters were "
+            f"set in the project file; the run did not tune them. {selection} The training data's SHA-256 is "
+            f"`{b.get('training_data_sha256', '?')}`.")
+    table = pd.DataFrame({"parameter": list(params), "value": [str(v) for v in params.values()]})
+    return Section("Model", [Paragraph(text), Table(table, "Model hyperparameters")])
+
+
+def section_cv_accuracy(run: RunFolder) -> Section:
+    m = run.metrics
+    if m is None:
+        return Section(SECTIONS[8], [Paragraph("The validation step wrote no metrics.")])
+    per = pd.DataFrame(m["per_class"])
+    text = (f"Out-of-fold predictions of the {m['n']:,} training pixels give an overall accuracy of "
+            f"{acc(m['overall_accuracy'])} (plus or minus {acc(m['overall_accuracy_ci95_half_width'])}, 95 %), "
+            f"quantity disagreement {acc(m['quantity_disagreement'])} and allocation disagreement "
+            f"{acc(m['allocation_disagreement'])} ({run.cite('disagreement', 'cross-validated accuracy')}). "
+            "These figures serve to choose models and predictors. They are not the accuracy of the inventory: "
+            "the training plots were placed by people, not drawn as a probability sample of the map, so their "
+            "accuracy does not carry over to the mapped area, and the standard errors treat pixels as "
+            "independent although pixels of one plot are not.")
+    table = per[["class", "users", "producers", "f1", "n_reference", "n_map"]].rename(columns={
+        "users": "user's", "producers": "producer's", "n_reference": "reference pixels", "n_map": "mapped pixels"})
+    blocks: list = [Paragraph(text), Table(_round(table), "Cross-validated accuracy per class")]
+    matrix = run.csv("validation/error_matrix.csv")
+    if matrix is not None:
+        blocks.append(Table(matrix, "Cross-validated error matrix (pixel counts; rows map, columns reference)"))
+    return Section(SECTIONS[8], blocks)
+
+
+def _round(df: pd.DataFrame) -> pd.DataFrame:
+    return df.assign(**{c: [acc(v) for v in df[c]] for c in df.columns if df[c].dtype.kind == "f"})
+
+
+def section_inventory_accuracy(run: RunFolder) -> Section:
+    s, design = run.accuracy_summary, run.sample_design
+    title = SECTIONS[9]
+    if s is None:
+        text = (f"{NO_SAMPLE}. The accuracy and the class areas of the inventory are therefore not estimated; "
+                "the cross-validated accuracy above does not stand in for them. To estimate them, design a "
+                "stratified random sample of the final map, label each point from imagery or field visits "
+                "without looking at the map class, and assess it:")
+        if design:
+            text = (f"{NO_SAMPLE}: a sample of {design['n_total']:,} points was designed but no labelled sample "
+                    "has been assessed. " + text.split(". ", 1)[1])
+        return Section(title, [Paragraph(text), Code("wetlandflow sample PROJECT.toml\n"
+                                                     "wetlandflow assess PROJECT.toml FILE")])
+    cite = run.cite("stratified_area_estimation", "accuracy and error-adjusted areas")
+    blocks: list = [Paragraph(_sample_text(run, s, design, cite))]
+    blocks += _area_accuracy_tables(run, s)
+    _figure(blocks, "areas.png", run.png("accuracy/areas.png"), "Mapped and error-adjusted areas with intervals.")
+    _figure(blocks, "error_matrix.png", run.png("accuracy/error_matrix.png"),
+            "Error matrix of the probability sample (estimated area proportions).")
+    return Section(title, blocks)
+
+
+def _sample_text(run: RunFolder, s: dict[str, Any], design: dict[str, Any] | None, cite: str) -> str:
+    lo, hi = s["overall_accuracy"] - s["overall_ci_half_width"], s["overall_accuracy"] + s["overall_ci_half_width"]
+    text = ""
+    if design:
+        text = (f"A {s.get('design', 'stratified')} random sample of {design['n_total']:,} points was drawn from "
+                f"the final map ({design.get('allocation', '?')} allocation over the map classes, at least "
+                f"{design.get('exclude_buffer_m', 0):g} m from any training plot, sized for a standard error of "
+                f"{design.get('target_se', 0):g} in overall accuracy after {run.cite('sample_size', 'sample size')}). ")
+    text += (f"With the reference labels of the sample, the {s.get('design', '')} estimator ({cite}) gives an "
+             f"overall accuracy of {acc(s['overall_accuracy'])} (standard error {acc(s['overall_se'])}, "
+             f"{_conf(s)} interval {acc(lo)} to {acc(hi)}). These are the estimates of the inventory's accuracy and "
+             "class areas; the error-adjusted areas correct the map's pixel counts for its errors of "
+             "omission and commission.")
+    return text
+
+
+def _area_accuracy_tables(run: RunFolder, s: dict[str, Any]) -> list:
+    areas, accs = run.csv("accuracy/area_table.csv"), run.csv("accuracy/accuracy_table.csv")
+    out: list = []
+    if areas is not None:
+        t = pd.DataFrame({"class": areas["class"], "mapped ha": [ha(v) for v in areas["mapped_area_ha"]],
+                          "error-adjusted ha": [ha(v) for v in areas["estimated_area_ha"]],
+                          f"{_conf(s)} interval ha": [f"{ha(a)} to {ha(b)}" for a, b in
+                                                      zip(areas["ci_low_ha"], areas["ci_high_ha"], strict=True)]})
+        out.append(Table(t, "Mapped and error-adjusted class areas"))
+    if accs is not None:
+        t = pd.DataFrame({"class": accs["class"],
+                          "user's": [f"{acc(u)} +/- {acc(c)}" for u, c in zip(accs["users"], accs["users_ci"],
+                                                                            strict=True)],
+                          "producer's": [f"{acc(u)} +/- {acc(c)}" for u, c in
+                                         zip(accs["producers"], accs["producers_ci"], strict=True)]})
+        out.append(Table(t, "User's and producer's accuracy from the probability sample"))
+    return out
+
+
+def section_maps(run: RunFolder) -> Section:
+    from .report import applicability_png, class_map_png, confidence_png
+
+    blocks: list = []
+    a = run.areas
+    if a is not None:
+        share = a["mapped_area_ha"] / a["mapped_area_ha"].sum()
+        blocks += [Paragraph("Mapped areas are pixel counts of the final map (after the minimum mapping unit). "
+                             "They are not error-adjusted: each class's count carries its errors of commission "
+                             "and omission."),
+                   Table(pd.DataFrame({"class": a["class"], "mapped ha": [ha(v) for v in a["mapped_area_ha"]],
+                                       "share": [pct(v) for v in share]}), "Mapped class areas")]
+    inv = run.step("inventory")
+    if inv.get("n_polygons") is not None:
+        blocks.append(Paragraph(
+            f"The polygon inventory (inventory.gpkg) holds {inv['n_polygons']:,} polygons after a minimum mapping "
+            f"unit of {inv['mmu_pixels']} pixels ({ha_small(inv['mmu_pixels'] * run.pixel_area_ha)} ha, "
+            f"{inv['connectivity']}-connected), which changed {inv.get('pixels_changed_by_mmu', 0):,} pixels of the "
+            f"per-pixel class map; polygon and raster areas per class agree to within "
+            f"{inv.get('polygon_vs_raster_area_max_diff_ha', 0):g} ha."))
+    _figure(blocks, "class_map.png", class_map_png(run), "Final class map, from the COG's overview.")
+    _figure(blocks, "confidence.png", confidence_png(run),
+            "Maximum class probability: low values mark pixels where the model hesitates between classes.")
+    return Section("Maps and mapped areas", blocks or [Paragraph("The run wrote no maps.")])
+
+
+def section_drivers(run: RunFolder) -> Section:
+    d = run.drivers
+    if d is None:
+        return Section("Drivers per class", [Paragraph("Explanations were not computed for this run.")])
+    cite = run.cite("tree_shap", "drivers per class")
+    blocks: list = [Paragraph(
+        f"SHAP values ({cite}) of a spatially stratified subsample of {d.get('n_rows', '?'):,} training pixels "
+        "rank the features by their mean absolute contribution to each class's score. They describe how the "
+        "model uses the features, not what causes a wetland class on the ground."),
+        Table(pd.DataFrame([{"class": c, "top features": ", ".join(f),
+                             "top domains": ", ".join(f"{x['domain']} {pct(x['share'])}"
+                                                      for x in d.get("top_domains", {}).get(c, []))}
+                            for c, f in d.get("top_drivers", {}).items()]), "Top drivers per class")]
+    if d.get("cluster_note"):
+        blocks.append(Paragraph(d["cluster_note"]))
+    _figure(blocks, "importance.png", run.png("explain/importance.png"), "Mean absolute SHAP value per feature.")
+    _figure(blocks, "domains.png", run.png("explain/domains.png"), "Share of SHAP importance by data domain.")
+    return Section("Drivers per class", blocks)
+
+
+def section_applicability(run: RunFolder) -> Section:
+    rec = run.step("mapping")
+    if "share_outside_applicability" not in rec:
+        return Section("Area of applicability", [Paragraph("The area of applicability was not computed.")])
+    from .report import applicability_png
+
+    share = rec["share_outside_applicability"]
+    blocks: list = [Paragraph(
+        f"The area of applicability ({run.cite('area_of_applicability', 'area of applicability')}) flags pixels "
+        "whose features, weighted by their importance to the model, are more dissimilar to the training data "
+        "than cross-validation explored (dissimilarity index above the threshold "
+        f"{rec.get('applicability_threshold', float('nan')):g}). {pct(share)} of the mapped pixels lie outside it; "
+        "predictions there extrapolate beyond the training data and the cross-validated accuracy says nothing "
+        "about them.")]
+    _figure(blocks, "applicability.png", applicability_png(run), "Inside and outside the area of applicability.")
+    return Section("Area of applicability", blocks)
+
+
+def section_limitations(run: RunFolder) -> Section:
+    items = [t for t in (_hard_classes_text(run), _sample_weak_text(run), _resolution_text(run),
+                         _aoa_limit_text(run)) if t]
+    items.append("Labels are taken as correct: errors in the training plots bias the model, and errors in the "
+                 "reference labels of a validation sample bias the accuracy and area estimates. Classes that "
+                 "grade into each other on the ground (for example fen and bog, or marsh and swamp) are the "
+                 "hardest to label consistently.")
+    items.append(CAUTION)
+    return Section("Limitations", [Bullets(tuple(items))])
+
+
+def _confused_pairs(matrix: pd.DataFrame, n: int = 2) -> list[tuple[str, str, int]]:
+    m = matrix.set_index(matrix.columns[0])
+    names = list(m.columns)
+    values = m.loc[names, names].to_numpy()
+    pairs = [(names[i], names[j], int(values[i, j] + values[j, i]))
+             for i in range(len(names)) for j in range(i + 1, len(names))]
+    return sorted((p for p in pairs if p[2] > 0), key=lambda p: -p[2])[:n]
+
+
+def _hard_classes_text(run: RunFolder) -> str:
+    matrix, m = run.csv("validation/error_matrix.csv"), run.metrics
+    if matrix is None or m is None:
+        return ""
+    pairs = _confused_pairs(matrix)
+    per = pd.DataFrame(m["per_class"]).sort_values("f1")
+    text = (f"Hard to separate with these data: in cross-validation the lowest F1 scores are {per.iloc[0]['class']} "
+            f"({acc(per.iloc[0]['f1'])})")
+    if len(per) > 1:
+        text += f" and {per.iloc[1]['class']} ({acc(per.iloc[1]['f1'])})"
+    if pairs:
+        text += ", and the most frequent confusions are " + ", ".join(
+            f"{a} with {b} ({c:,} out-of-fold pixels)" for a, b, c in pairs)
+    return text + "."
+
+
+def _sample_weak_text(run: RunFolder) -> str:
+    t = run.csv("accuracy/accuracy_table.csv")
+    if t is None or run.accuracy_summary is None:
+        return ""
+    low = t.sort_values("users").head(2)
+    return ("In the probability sample the lowest user's accuracies are " + " and ".join(
+        f"{r['class']} ({acc(r['users'])})" for _, r in low.iterrows()) +
+        ": much of the area mapped as these classes is another class on the ground.")
+
+
+def _resolution_text(run: RunFolder) -> str:
+    mmu = run.project.get("output", {}).get("mmu_pixels", 1)
+    px = run.pixel_size_m
+    text = (f"Resolution: pixels are {px:g} m wide, so a feature narrower than a pixel (a narrow channel or "
+            "riparian strip) is mixed with its surroundings")
+    if mmu and mmu > 1:
+        text += (f", and patches smaller than the minimum mapping unit of {mmu} pixels "
+                 f"({ha_small(mmu * run.pixel_area_ha)} ha) were merged into their neighbours, so smaller wetlands are "
+                 "absent from the inventory")
+    return text + "."
+
+
+def _aoa_limit_text(run: RunFolder) -> str:
+    share = run.step("mapping").get("share_outside_applicability")
+    if share is None:
+        return ("The area of applicability was not computed, so pixels whose features lie outside the training "
+                "data's range are not flagged.")
+    return f"{pct(share)} of the mapped pixels lie outside the area of applicability; treat them with most care."
+
+
+def section_versions(run: RunFolder) -> Section:
+    v = dict(run.manifest.get("versions", {}))
+    rows = [{"library": "wetlandflow", "version": run.manifest.get("wetlandflow", "?")}]
+    rows += [{"library": k, "version": str(x)} for k, x in sorted(v.items())]
+    blocks: list = [Paragraph("Versions recorded by the run (GDAL and PROJ as loaded by rasterio and pyproj)."),
+                    Table(pd.DataFrame(rows), "Software versions of the run")]
+    c = run.manifest.get("compute")
+    if c:
+        blocks.append(Paragraph(f"Computation: {c.get('scheduler', '?')}, {c.get('cpu_count', '?')} CPUs, "
+                                f"{c.get('model_threads', '?')} model threads."))
+    blocks.append(Paragraph(f"This report was generated by wetlandflow {__version__}; "
+                            "`wetlandflow doctor` lists the geospatial stack of the current environment."))
+    return Section("Software versions", blocks)
+
+
+def section_reproduce(run: RunFolder) -> Section:
+    project_file = run.manifest.get("project_file", "PROJECT.toml")
+    command = run.manifest.get("command") or f"wetlandflow run {project_file}"
+    blocks: list = [Paragraph(
+        f"The run is reproduced by this command, run beside the project file with inputs whose SHA-256 match "
+        f"those listed under Inputs, the same seed ({run.manifest.get('seed', '?')}) and the library versions "
+        "above:"), Code(command)]
+    if run.accuracy_summary is not None:
+        blocks += [Paragraph("The accuracy assessment is reproduced from the labelled sample file:"),
+                   Code(f"wetlandflow assess {project_file} FILE")]
+    blocks += [Paragraph("This report is regenerated from the run folder with:"),
+               Code(f"wetlandflow report {run.project.get('project', {}).get('output_dir') or run.path.name}")]
+    steps = run.manifest.get("steps", {})
+    if steps:
+        blocks.append(Table(pd.DataFrame([{"step": k, "status": s.get("status", "?"),
+                                           "seconds": s.get("seconds", ""), "cache key": s.get("key", ""),
+                                           "reused": "yes" if s.get("reused") else ""} for k, s in steps.items()]),
+                            "Steps of the run"))
+    return Section("Reproducing this run", blocks)
+
+
+def section_references(run: RunFolder) -> Section:
+    entries = run.citations.entries()
+    if not entries:
+        return Section("References", [Paragraph("The run used no method with a published source.")])
+    items = []
+    for c in entries:
+        mark = " [citation details from memory]" if c.reference is not None and c.reference.checked == \
+            "from memory" else ""
+        recorded = "" if c.reference is not None else " [as recorded with the feature]"
+        items.append(f"{c.text}{mark}{recorded} Used for: {_uses(c.used_for)}.")
+    return Section("References", [Paragraph("Sources of the methods this run used, as cited above."),
+                                  Bullets(tuple(items))])
+
+
+def _uses(used_for: list[str]) -> str:
+    """'feature a', 'feature b', 'classifier' -> 'features a, b; classifier'."""
+    feats = [u.removeprefix("feature ") for u in used_for if u.startswith("feature ")]
+    other = [u for u in used_for if not u.startswith("feature ")]
+    parts = ([f"feature{'s' if len(feats) > 1 else ''} {', '.join(feats)}"] if feats else []) + other
+    return "; ".join(parts)
+
+
+BUILDERS = (section_caution, section_summary, section_study_area, section_inputs, section_features,
+            section_training, section_validation_design, section_model, section_cv_accuracy,
+            section_inventory_accuracy, section_maps, section_drivers, section_applicability, section_limitations,
+            section_versions, section_reproduce, section_references)
+
+
+def build_sections(run: RunFolder) -> list[Section]:
+    """All sections in :data:`SECTIONS` order; the references come last so they hold every citation made."""
+    return [build(run) for build in BUILDERS]
