@@ -303,7 +303,7 @@ def applicability_map(model: ApplicabilityModel, cube: xr.Dataset, features: lis
         valid = valid.chunk(dict(zip(("y", "x"), data.chunks[:2], strict=True)))
     di = xr.apply_ufunc(_di_block, data, valid, kwargs={"model": model}, input_core_dims=[["feature"], []],
                         dask="parallelized", output_dtypes=[np.float32])
-    inside = xr.where(np.isnan(di), AOA_NODATA, (di <= model.threshold).astype(np.uint8)).astype(np.uint8)
+    inside = inside_flag(di, model.threshold).astype(np.uint8)
     params = {"threshold": model.threshold, "mean_distance": model.mean_distance,
               "nan_policy": model.nan_policy,
               "n_train": int(model.train_di.size), "features": list(features)}
@@ -315,6 +315,12 @@ def applicability_map(model: ApplicabilityModel, cube: xr.Dataset, features: lis
                         reference=REFERENCE, parameters=params)
     inside.attrs["_FillValue"] = AOA_NODATA
     return xr.Dataset({"di": di, "inside_aoa": inside})
+
+
+def inside_flag(di, threshold: float):
+    """The applicability flag of DI values: 1 inside (DI <= threshold), 0 outside, 255 where DI is NaN."""
+    return xr.where(np.isnan(di), AOA_NODATA, di <= threshold) if isinstance(di, xr.DataArray) \
+        else np.where(np.isnan(di), AOA_NODATA, di <= threshold)
 
 
 def share_outside(aoa_ds: xr.Dataset) -> float:

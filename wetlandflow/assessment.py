@@ -156,7 +156,7 @@ def assess(project: Project | str | Path, labelled: str | Path, *, design: str =
         plt.close(fig)
     write_table(result.area_table, p.run_dir / "areas.csv")
     return {"n": int(len(gdf)), "overall_accuracy": result.overall.value, "overall_se": result.overall.se,
-            "folder": str(out)}
+            "folder": str(out), "area_table": result.area_table, "accuracy_table": result.accuracy_table}
 
 
 def _write_result(result, out: Path, prefix: str) -> None:
@@ -229,14 +229,6 @@ def coverage_study(class_map: xr.DataArray, reference: xr.DataArray, codes: Mapp
                          "mapped_bias_ha": mapped_ha - true_ha, "mean_estimated_area_ha": estimates.mean(axis=0),
                          "estimator_bias_ha": estimates.mean(axis=0) - true_ha,
                          "coverage": covered / n_reps, "n_reps": n_reps})
-
-
-def coverage_note(table: pd.DataFrame) -> str:
-    """One plain sentence per class for a report."""
-    lines = [f"{r['class']}: interval covered the true area in {100 * r['coverage']:.0f} % of {r['n_reps']} "
-             f"samples; map pixel count off by {r['mapped_bias_ha']:+.1f} ha, estimator by "
-             f"{r['estimator_bias_ha']:+.1f} ha" for _, r in table.iterrows()]
-    return "\n".join(lines)
 
 
 def sample_design_record(run_dir: Path) -> dict[str, Any]:

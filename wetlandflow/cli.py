@@ -94,13 +94,10 @@ def _cmd_assess(args: argparse.Namespace) -> int:
 
 def format_assessment(project, labelled, *, design: str = "stratified") -> str:
     """Assess a labelled sample and format the error-adjusted areas and accuracy as text."""
-    import pandas as pd
-
     from .assessment import assess
 
     res = assess(project, labelled, design=design)
-    table = pd.read_csv(project.run_dir / "areas.csv")
-    acc = pd.read_csv(project.run_dir / "accuracy" / "accuracy_table.csv").set_index("class")
+    table, acc = res["area_table"], res["accuracy_table"].set_index("class")
     lines = [f"Accuracy from {res['n']} labelled sample points ({design} estimator, Olofsson et al. 2014):",
              f"  overall accuracy {res['overall_accuracy']:.3f} (SE {res['overall_se']:.3f})", "",
              f"  {'class':<12s} {'mapped ha':>10s} {'adjusted ha':>12s} {'95% CI ha':>21s} {'user':>6s} "

@@ -69,6 +69,7 @@ def window_memory_bytes(n_features: int, n_classes: int, window_size: int, *, n_
 
 
 def _stage_profiles(grid: Grid, k: int, with_aoa: bool) -> dict[str, dict]:
+    # one entry per layer of LAYERS (+ AOA_LAYERS)
     profiles = {"probability": _profile(grid, k, "float32", np.nan),
                 "class": _profile(grid, 1, "uint8", CLASS_NODATA),
                 "confidence": _profile(grid, 3, "float32", np.nan)}
@@ -133,11 +134,11 @@ def _predict_window(model, X: np.ndarray, ok: np.ndarray, k: int, aoa_model) -> 
         res["class"][ok, 0] = np.argmax(p, axis=1) + 1
         res["confidence"][ok] = confidence_layers(p).T
         if aoa_model is not None:
-            from .applicability import dissimilarity_index
+            from .applicability import dissimilarity_index, inside_flag
 
             di = dissimilarity_index(aoa_model, X)
             res["dissimilarity"][ok, 0] = di
-            res["applicability"][ok, 0] = np.where(np.isnan(di), 255, di <= aoa_model.threshold)
+            res["applicability"][ok, 0] = inside_flag(di, aoa_model.threshold)
     return res
 
 
@@ -224,15 +225,20 @@ def build_cog(src_path: str | Path, dst_path: str | Path, *, overview_resampling
     return Path(dst_path)
 
 
+def code_counts(path: str | Path, n_codes: int) -> np.ndarray:
+    """Pixel count of each integer code 0..n_codes-1 in band 1 of a raster, read block by block."""
+    counts = np.zeros(n_codes, np.int64)
+    with rasterio.open(path) as src:
+        for _, w in src.block_windows(1):
+            counts += np.bincount(src.read(1, window=w).ravel(), minlength=n_codes)[:n_codes]
+    return counts
+
+
 def class_areas(class_tif: str | Path, class_names: tuple[str, ...], pixel_area_m2: float):
     """Mapped pixel counts and areas (ha) per class, read window by window."""
     import pandas as pd
 
-    counts = np.zeros(len(class_names) + 1, np.int64)
-    with rasterio.open(class_tif) as src:
-        for _, w in src.block_windows(1):
-            counts += np.bincount(src.read(1, window=w).ravel(), minlength=len(class_names) + 1)
-    px = counts[1:]
+    px = code_counts(class_tif, len(class_names) + 1)[1:]
     return pd.DataFrame({"class": list(class_names), "pixels": px, "mapped_area_ha": px * pixel_area_m2 / 1e4,
                          "mapped_share": px / max(px.sum(), 1)})
 

@@ -439,9 +439,12 @@ def to_dict(obj: Any) -> Any:
     return obj
 
 
+def portable_dict(project: Project) -> dict[str, Any]:
+    """The resolved project as plain data, its folder replaced by ``<project>`` (survives moving the folder)."""
+    text = json.dumps(to_dict(project), sort_keys=True, default=str).replace(str(project.root), "<project>")
+    return json.loads(text)
+
+
 def config_hash(project: Project) -> str:
     """SHA-256 of the resolved project, independent of where the folder lies."""
-    d = to_dict(project)
-    root = str(project.root)
-    text = json.dumps(d, sort_keys=True).replace(root, "<project>")
-    return hashlib.sha256(text.encode()).hexdigest()
+    return hashlib.sha256(json.dumps(portable_dict(project), sort_keys=True).encode()).hexdigest()

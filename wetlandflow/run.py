@@ -22,9 +22,9 @@ from . import CAUTION, __version__
 from .features.cube import build_cube, open_cube, save_cube
 from .inputs import load_inputs, project_grid, read_aoi
 from .io import check_writable, sha256_file, write_figure, write_json, write_table
-from .mapping import class_areas, predict_map
+from .mapping import AOA_LAYERS, LAYERS, class_areas, code_counts, predict_map
 from .models import ClassScheme, WetlandClassifier, data_hash, load_bundle, save_bundle
-from .project import Project, config_hash, load_project, to_dict
+from .project import Project, config_hash, load_project, portable_dict, to_dict
 from .steps import applicability_model, write_explanations, write_inventory_outputs
 from .samples import class_balance, drop_incomplete, extract_samples, missing_report, plot_pixels, read_plots
 
@@ -109,13 +109,6 @@ def step_key(*parts: Any) -> str:
 
     text = json.dumps([__version__, *parts], sort_keys=True, default=str)
     return hashlib.sha256(text.encode()).hexdigest()[:20]
-
-
-def _portable_config(project: Project) -> dict[str, Any]:
-    """The resolved project with its folder replaced by a placeholder, so keys survive moving the folder."""
-    import json
-
-    return json.loads(json.dumps(to_dict(project), default=str).replace(str(project.root), "<project>"))
 
 
 def library_versions() -> dict[str, str]:
@@ -252,7 +245,7 @@ def _run(project: Project, *, progress: bool = True) -> RunResult:
     """The steps of a run; each is skipped when an earlier run in the folder finished it with the same key."""
     run_dir = check_writable(project.run_dir)
     manifest = Manifest(run_dir, project)
-    cfg = _portable_config(project)
+    cfg = portable_dict(project)
     seed = project.project.seed
 
     with manifest.step("inputs") as rec:
@@ -313,7 +306,7 @@ def _run(project: Project, *, progress: bool = True) -> RunResult:
 
     applicability = project.output.applicability
     k_map = step_key(k_model, k_val if applicability else None, applicability, cfg["output"]["chunk_size"])
-    layers = ("probability", "class", "confidence") + (("dissimilarity", "applicability") if applicability else ())
+    layers = LAYERS + (AOA_LAYERS if applicability else ())
     map_paths = {n: run_dir / "maps" / f"{n}.tif" for n in layers}
     if not manifest.reusable("mapping", k_map, list(map_paths.values())):
         with manifest.step("mapping", k_map) as rec:
@@ -338,11 +331,13 @@ def _run(project: Project, *, progress: bool = True) -> RunResult:
                                                mmu_pixels=project.output.mmu_pixels,
                                                connectivity=project.output.connectivity))
             rec["data_sha256"] = {"class_final": raster_data_sha256(final_path)}
-            write_table(class_areas(final_path, project.classes.names, grid.pixel_area_m2), run_dir / "areas.csv")
+            areas = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
+            write_table(areas, run_dir / "areas.csv")
             stale = _set_aside_stale_assessment(run_dir)
             if stale:
                 rec["stale_assessment_moved_to"] = stale
-    areas = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
+    else:  # areas.csv may hold an assessment's adjusted areas by now: read the mapped areas off the map
+        areas = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
 
     if project.output.explain:
         k_exp = step_key(k_model, cfg["output"]["explain_rows"], cfg["validation"]["block_size_m"], seed)
@@ -426,12 +421,7 @@ def raster_data_sha256(path: Path) -> str:
 
 def share_outside_applicability(path: Path) -> float:
     """Share of the mapped pixels (applicability flag 0 or 1) outside the area of applicability."""
-    import rasterio
-
-    counts = np.zeros(256, np.int64)
-    with rasterio.open(path) as src:
-        for _, w in src.block_windows(1):
-            counts += np.bincount(src.read(1, window=w).ravel(), minlength=256)
+    counts = code_counts(path, 256)
     mapped = counts[0] + counts[1]
     return round(float(counts[0] / mapped), 4) if mapped else float("nan")
 
