@@ -10,11 +10,14 @@ from sklearn.metrics import brier_score_loss
 
 from wetlandflow.calibration import (
     CalibratedWetlandClassifier,
+    ProbabilityCalibrator,
     brier_score,
     expected_calibration_error,
     plot_reliability,
+    plot_reliability_comparison,
     reliability_table,
 )
+from wetlandflow.errors import ModelError, ParameterError
 from wetlandflow.models import WetlandClassifier
 from wetlandflow.validation import SpatialBlockKFold
 
@@ -143,3 +146,91 @@ def test_binary_scheme_in_unsorted_order():
     p = CalibratedWetlandClassifier(base(classes), cv=cv).fit(X, y, groups).predict_proba(X)
     assert p[y == "marsh", 1].mean() > p[y == "upland", 1].mean() + 0.3
     np.testing.assert_allclose(p.sum(axis=1), 1.0, atol=1e-9)
+
+
+# --------------------------------------------------------------------------- calibrating probabilities
+
+
+def _inner_oof(make, X, y, folds):
+    """Out-of-fold probabilities, one model per fold (what CalibratedClassifierCV(ensemble=False) fits on)."""
+    out = np.zeros((len(y), len(make().classes)))
+    for k in np.unique(folds):
+        test = folds == k
+        out[test] = make().fit(X[~test], y[~test]).predict_proba(X[test])
+    return out
+
+
+@pytest.mark.reference
+@pytest.mark.parametrize("method", ["isotonic", "sigmoid"])
+@pytest.mark.parametrize("classes", [("upland", "marsh", "fen", "bog"), ("upland", "marsh")])
+def test_probability_calibrator_matches_scikit_learn(method, classes):
+    """scikit-learn's CalibratedClassifierCV(ensemble=False) on the same folds: out-of-fold predictions,
+    one-vs-rest isotonic (Zadrozny & Elkan 2002) or Platt (1999) sigmoid maps, rows normalised; binary
+    problems calibrate one column.  Ours is fitted on probabilities and works in scheme order."""
+    from sklearn.model_selection import PredefinedSplit
+
+    X, y, groups, _ = landscape(classes=classes)
+    folds = groups % 4
+    present = tuple(sorted(set(y)))
+    make = lambda: base(present)  # noqa: E731  sklearn's calibrator needs sorted classes
+    test = folds == 3
+    Xtr, ytr, ftr = X[~test], y[~test], folds[~test]
+    # cross_val_predict (inside ensemble=False) integer-encodes labels in sorted order: give the
+    # reference model those codes as its class names.
+    codes = tuple(str(i) for i in range(len(present)))
+    ref = CalibratedClassifierCV(base(codes), method=method, cv=PredefinedSplit(ftr), ensemble=False)
+    expected = ref.fit(Xtr, np.searchsorted(present, ytr).astype(str)).predict_proba(X[test])
+    raw = make().fit(Xtr, ytr).predict_proba(X[test])
+    cal = ProbabilityCalibrator(present, method).fit(_inner_oof(make, Xtr, ytr, ftr), ytr)
+    np.testing.assert_allclose(cal.transform(raw), expected, atol=1e-6 if method == "isotonic" else 2e-4)
+    # scheme order in, scheme order out (the scheme is not alphabetical)
+    cols = [present.index(c) for c in classes]
+    scheme_cal = ProbabilityCalibrator(classes, method).fit(_inner_oof(make, Xtr, ytr, ftr)[:, cols], ytr)
+    np.testing.assert_allclose(scheme_cal.transform(raw[:, cols]), expected[:, cols], atol=2e-4)
+
+
+@pytest.mark.reference
+def test_platt_fit_recovers_a_known_sigmoid():
+    """Platt (1999): labels drawn from P = 1 / (1 + exp(A f + B)) give back A, B as n grows
+    (maximum likelihood; the smoothed targets shift the estimate by O(1/n))."""
+    rng = np.random.default_rng(2)
+    f = rng.uniform(0, 1, 40000)
+    p_true = 1.0 / (1.0 + np.exp(-6.0 * f + 3.0))  # A = -6, B = 3
+    hit = rng.random(f.size) < p_true
+    y = np.where(hit, "b", "a")
+    cal = ProbabilityCalibrator(("a", "b"), "sigmoid").fit(np.c_[1 - f, f], y)
+    sig = cal.maps_["b"]
+    assert sig.a == pytest.approx(-6.0, abs=0.25) and sig.b == pytest.approx(3.0, abs=0.15)
+
+
+def test_recalibration_lowers_ece_of_an_overconfident_model():
+    """Sharpened probabilities (over-confident, see calibrated_sample) recalibrated on independent
+    draws from the same generator: the ECE falls."""
+    y_fit, q_fit, classes = calibrated_sample(n=8000, seed=5, sharpen=2.5)
+    y_new, q_new, _ = calibrated_sample(n=8000, seed=6, sharpen=2.5)
+    before = expected_calibration_error(y_new, q_new, classes)
+    for method in ("isotonic", "sigmoid"):
+        fixed = ProbabilityCalibrator(classes, method).fit(q_fit, y_fit).transform(q_new)
+        np.testing.assert_allclose(fixed.sum(axis=1), 1.0, atol=1e-9)
+        assert expected_calibration_error(y_new, fixed, classes) < before / 2
+
+
+def test_probability_calibrator_refuses_bad_input():
+    y, p, classes = calibrated_sample(n=50)
+    with pytest.raises(ParameterError, match="method"):
+        ProbabilityCalibrator(classes, "beta").fit(p, y)
+    with pytest.raises(ModelError, match="not fitted"):
+        ProbabilityCalibrator(classes).transform(p)
+    with pytest.raises(ModelError, match="two classes"):
+        ProbabilityCalibrator(classes).fit(p, np.full(50, "c0"))
+    with pytest.raises(ParameterError, match="4 columns"):
+        ProbabilityCalibrator(classes).fit(p, y).transform(p[:, :3])
+
+
+def test_reliability_comparison_figure():
+    y, p, classes = calibrated_sample(n=500)
+    tables = {"a": reliability_table(y, p, classes), "b": reliability_table(y, p**2, classes)}
+    fig = plot_reliability_comparison(tables, calibrated={"a": reliability_table(y, p, classes)})
+    assert isinstance(fig, Figure) and len(fig.axes) == 2
+    assert [len(ax.lines) for ax in fig.axes] == [3, 2]  # the diagonal plus one curve per model
+    assert fig.axes[0].lines[1].get_color() == fig.axes[1].lines[1].get_color()  # same model, same colour

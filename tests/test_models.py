@@ -9,7 +9,17 @@ from sklearn.base import clone
 from sklearn.model_selection import GroupKFold, cross_val_score
 
 from wetlandflow.errors import ModelError
-from wetlandflow.models import ClassScheme, WetlandClassifier, check_no_sentinels, load_bundle, save_bundle
+from wetlandflow.models import (
+    ClassScheme,
+    FeatureAlignmentWarning,
+    WetlandClassifier,
+    align_features,
+    canonical_order,
+    check_features,
+    check_no_sentinels,
+    load_bundle,
+    save_bundle,
+)
 
 CLASSES = ("upland", "open_water", "fen", "bog")
 
@@ -62,7 +72,8 @@ def test_nan_handled_the_same_at_fit_and_predict(kind):
 def test_bundle_round_trip(tmp_path):
     X, y = data()
     m = WetlandClassifier(classes=CLASSES, n_estimators=25).fit(X, y)
-    save_bundle(m, tmp_path / "model", features=["a", "b"], scheme=ClassScheme(CLASSES, {}), training_hash="x")
+    save_bundle(m, tmp_path / "model", features=["a", "b"], scheme=ClassScheme(CLASSES, {}),
+                training_hash="x")
     m2, side = load_bundle(tmp_path / "model")
     assert side["features"] == ["a", "b"] and side["scheme"]["names"] == list(CLASSES)
     np.testing.assert_allclose(m2.predict_proba(X), m.predict_proba(X), atol=1e-6)
@@ -95,3 +106,112 @@ def test_scheme_table_has_codes_colours_and_parents():
     assert t["code"].tolist() == [1, 2, 3]
     assert t.set_index("name").loc["fen", "parent"] == "wetland"
     assert t["colour"].str.match(r"^#[0-9a-f]{6}$").all()
+
+
+# --------------------------------------------------------------------------- deterministic mode
+
+
+def _model_bytes(model, folder):
+    save_bundle(model, folder, features=["a", "b"], scheme=ClassScheme(CLASSES, {}), training_hash="x")
+    side = (folder / "bundle.json").read_text()
+    return (folder / ("model.ubj" if model.kind == "xgboost" else "model.joblib")).read_bytes(), side
+
+
+@pytest.mark.parametrize("kind", ["xgboost", "random_forest"])
+def test_deterministic_mode_gives_the_same_model_file(kind, tmp_path):
+    """Fixed threads and seed, same inputs: byte-identical model files (not only equal predictions)."""
+    X, y = data()
+    make = lambda: WetlandClassifier(classes=CLASSES, kind=kind, n_estimators=15, max_depth=4,  # noqa: E731
+                                     n_threads=2, random_state=7)
+    a, side_a = _model_bytes(make().fit(X, y), tmp_path / "a")
+    b, side_b = _model_bytes(make().fit(X, y), tmp_path / "b")
+    assert a == b and side_a == side_b
+    other = WetlandClassifier(classes=CLASSES, kind=kind, n_estimators=15, max_depth=4, n_threads=2,
+                              random_state=8).fit(X, y)
+    if kind == "random_forest":  # the seed matters to the forest (bootstrap), so the check can fail
+        assert _model_bytes(other, tmp_path / "c")[0] != a
+
+
+def test_canonical_order_makes_the_model_independent_of_row_order(tmp_path):
+    X, y = data()
+    rng = np.random.default_rng(1)
+    samples = pd.DataFrame({"plot_id": np.arange(len(y)) // 10, "class": y, "x": rng.uniform(0, 1e4, len(y)),
+                            "y": rng.uniform(0, 1e4, len(y)), "a": X[:, 0], "b": X[:, 1]})
+    shuffled = samples.sample(frac=1.0, random_state=3)
+    fits = []
+    for i, s in enumerate((samples, shuffled)):
+        s = canonical_order(s)
+        m = WetlandClassifier(classes=CLASSES, n_estimators=15, n_threads=2).fit(s[["a", "b"]], s["class"])
+        fits.append(_model_bytes(m, tmp_path / str(i))[0])
+    assert fits[0] == fits[1]
+    assert canonical_order(shuffled).equals(canonical_order(samples))
+
+
+def test_sentinel_at_predict_time_is_an_error():
+    X, y = data()
+    m = WetlandClassifier(classes=CLASSES, n_estimators=5).fit(pd.DataFrame(X, columns=["a", "b"]), y)
+    X[3, 0] = -32768
+    with pytest.raises(ModelError, match=r"\['a'\].*-32768"):
+        m.predict_proba(X)
+
+
+# --------------------------------------------------------------------------- feature alignment
+
+
+@pytest.fixture(scope="module")
+def bundle(tmp_path_factory):
+    X, y = data()
+    folder = tmp_path_factory.mktemp("bundle") / "model"
+    m = WetlandClassifier(classes=CLASSES, n_estimators=25, max_depth=3).fit(X, y)
+    save_bundle(m, folder, features=["a", "b"], scheme=ClassScheme(CLASSES, {}), training_hash="x")
+    model, side = load_bundle(folder)
+    return model, side, pd.DataFrame(X, columns=["a", "b"]), m.predict_proba(X)
+
+
+def test_reordered_features_are_put_back_in_model_order(bundle):
+    model, side, frame, expected = bundle
+    swapped = frame[["b", "a"]]
+    chk = check_features(swapped, side)
+    assert chk.reordered and not chk.missing and not chk.ignored and "reordered" in chk.note
+    assert list(align_features(swapped, side).columns) == ["a", "b"]
+    np.testing.assert_allclose(model.predict_proba(swapped), expected, atol=1e-6)
+    # a plain array in the wrong order cannot be detected, so the names matter: the result differs
+    assert not np.allclose(model.predict_proba(swapped.to_numpy()), expected, atol=1e-3)
+
+
+def test_missing_feature_is_refused_with_names_and_the_fix(bundle):
+    model, side, frame, _ = bundle
+    with pytest.raises(ModelError, match=r"lack 1 feature.*\['b'\].*Rebuild the feature cube.*retrain"):
+        align_features(frame[["a"]], side)
+    with pytest.raises(ModelError, match=r"\['b'\]"):
+        model.predict_proba(frame[["a"]].assign(c=1.0))
+
+
+def test_extra_features_are_ignored_with_a_note(bundle):
+    model, side, frame, expected = bundle
+    wider = frame.assign(extra=0.5)[["extra", "b", "a"]]
+    with pytest.warns(FeatureAlignmentWarning, match="extra"):
+        out = align_features(wider, side)
+    assert list(out.columns) == ["a", "b"]
+    assert check_features(wider, side).ignored == ("extra",)
+    with pytest.warns(FeatureAlignmentWarning):
+        np.testing.assert_allclose(model.predict_proba(wider), expected, atol=1e-6)
+    with pytest.raises(ModelError, match="does not use"):
+        align_features(wider, side, on_extra="raise")
+
+
+def test_cube_alignment_stays_lazy_and_keeps_the_order(bundle):
+    import dask.array as da
+    import xarray as xr
+
+    _, side, _, _ = bundle
+    grid = {"y": np.arange(4.0), "x": np.arange(5.0)}
+    cube = xr.Dataset({n: (("y", "x"), da.ones((4, 5), chunks=2) * i) for i, n in enumerate(["c", "b", "a"])},
+                      coords=grid)
+    with pytest.warns(FeatureAlignmentWarning):
+        out = align_features(cube, side)
+    assert list(out.data_vars) == ["a", "b"] and out["a"].chunks is not None
+    with pytest.raises(ModelError, match=r"\['a'\]"):
+        align_features(cube[["b", "c"]], side)
+    with pytest.raises(ModelError, match="DataFrame"):
+        align_features(np.ones((3, 2)), side)

@@ -26,7 +26,10 @@ def test_run_folder_is_complete(demo_run):
     assert set(manifest["steps"]) == {"inputs", "features", "samples", "validation", "model", "mapping",
                                        "inventory", "explain"}
     assert all(len(v["sha256"]) == 64 for v in manifest["inputs"].values())
-    assert manifest["versions"]["gdal"] and manifest["versions"]["proj"]
+    versions = manifest["versions"]
+    assert versions["gdal"] and versions["proj (rasterio)"] and versions["proj (pyproj)"] and versions["geos"]
+    assert manifest["command"] == "wetlandflow run project.toml"
+    assert set(manifest["steps"]["features"]["season_coverage"]) == set(manifest["project"]["seasons"])
     assert not list(d.rglob("*.partial"))
 
 

@@ -10,9 +10,16 @@ import pytest
 from matplotlib.figure import Figure
 from sklearn.model_selection import GroupKFold, cross_val_score
 
-from wetlandflow.errors import ParameterError
+from wetlandflow.errors import ModelError, ParameterError
 from wetlandflow.models import WetlandClassifier
-from wetlandflow.selection import forward_feature_selection, recursive_elimination, write_selection
+from wetlandflow.selection import (
+    forward_feature_selection,
+    forward_selection_within_folds,
+    importance_ranking,
+    read_selected_features,
+    recursive_elimination,
+    write_selection,
+)
 from wetlandflow.validation import SpatialBlockKFold
 
 INFORMATIVE = ["f1", "f2"]
@@ -106,3 +113,49 @@ def test_bad_arguments_are_named():
         forward_feature_selection(clf(), X, y, groups, GroupKFold(2), scoring="auc")
     with pytest.raises(ParameterError, match="DataFrame"):
         forward_feature_selection(clf(), X.to_numpy(), y, groups, GroupKFold(2))
+
+
+def test_selection_within_folds_never_sees_the_held_out_fold():
+    """Scrambling the features and labels of fold k leaves fold k's selection unchanged
+    (it is made from the other folds only), while the other folds' selections may move."""
+    X, y, groups, _ = data()
+    X = X[["f1", "pixel_noise", "f2"]]
+    folds = groups % 4
+    opts = {"tol": 0.01}
+    base = forward_selection_within_folds(clf(), X, y, folds, **opts)
+    assert sorted(base) == [0, 1, 2, 3]
+    rng = np.random.default_rng(5)
+    held = folds == 0
+    X2, y2 = X.copy(), y.copy()
+    X2.loc[held, :] = rng.normal(size=(held.sum(), X.shape[1]))
+    y2[held] = rng.permutation(y[held])
+    moved = forward_selection_within_folds(clf(), X2, y2, folds, **opts)
+    assert moved[0].selected == base[0].selected
+    pd.testing.assert_frame_equal(moved[0].history, base[0].history)
+    assert any(not moved[k].history.equals(base[k].history) for k in (1, 2, 3))  # the scramble did reach them
+    for r in base.values():
+        assert set(r.selected) == set(INFORMATIVE)
+
+
+def test_importance_pool_screens_before_the_search():
+    X, y, groups, _ = data()
+    rank = importance_ranking(clf(), X, y)
+    assert set(rank.index[:2]) == set(INFORMATIVE) and rank.is_monotonic_decreasing
+    res = forward_feature_selection(clf(), X, y, groups, GroupKFold(4), pool=3, tol=0.01)
+    assert set(res.pool) == set(rank.index[:3]) and len(res.pool) == 3
+    assert set(res.candidates["features"].str.split(";").explode()) <= set(res.pool)
+    with pytest.raises(ParameterError, match="pool"):
+        forward_feature_selection(clf(), X, y, groups, GroupKFold(4), pool=1)
+
+
+def test_selected_features_text_round_trip(forward, tmp_path):
+    res, _ = forward
+    out = write_selection(res, tmp_path)
+    assert out["text"].read_text().splitlines() == res.selected
+    assert read_selected_features(out["text"]) == res.selected
+    (tmp_path / "empty.txt").write_text("# nothing\n\n")
+    with pytest.raises(ModelError, match="no feature names"):
+        read_selected_features(tmp_path / "empty.txt")
+    two_folds = pd.DataFrame({"a": [0.0] * 4, "b": [1.0] * 4})
+    with pytest.raises(ParameterError, match="at least 3 folds"):
+        forward_selection_within_folds(clf(), two_folds, ["fen"] * 4, np.array([0, 0, 1, 1]))

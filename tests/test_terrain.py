@@ -130,6 +130,84 @@ def test_nodata_is_an_outlet_and_float32_flats_drain():
     assert np.all(lower < interior)
 
 
+@pytest.mark.reference
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+@pytest.mark.parametrize("offset", [0.0, -60.0])
+def test_flat_fill_matches_skimage_for_both_dtypes_ties_and_negative_elevations(dtype, offset):
+    """Flat fill equals morphological reconstruction by erosion (scikit-image; van der Walt et al. 2014,
+    'scikit-image: image processing in Python', PeerJ 2:e453) on float32 and float64 DEMs, with
+    elevations below zero, exactly zero and with many ties (the fill sorts elevations by their bits)."""
+    from skimage.morphology import reconstruction
+
+    z = (np.round(random_dem((50, 57), seed=4) * 2) / 2 + offset).astype(dtype)  # half-metre steps: ties
+    z[10, 10] = 0.0
+    seed = z.astype(np.float64)
+    seed[1:-1, 1:-1] = z.max()
+    expected = reconstruction(seed, z.astype(np.float64), method="erosion", footprint=np.ones((3, 3)))
+    filled = T.fill_depressions(make_dem(z), epsilon=False).values
+    assert filled.dtype == dtype
+    np.testing.assert_array_equal(filled, expected.astype(dtype))
+    assert (filled > z).sum() > 20 and len(np.unique(z)) < z.size / 5
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_epsilon_fill_drains_flats_with_ties_nodata_and_negative_zero(dtype):
+    """Priority-Flood+epsilon invariants (Barnes, Lehman & Mulla 2014) where ties, nodata holes and
+    -0.0 meet: never below the DEM, never below the flat fill, every cell away from outlets has a
+    strictly lower neighbour, and unraised -0.0 cells keep their sign."""
+    z = np.round(random_dem((40, 44), seed=9)).astype(dtype)  # whole metres: large flats
+    z[z == 0] = -0.0
+    z[5:8, 30:33] = np.nan
+    flat = T.fill_depressions(make_dem(z), epsilon=False).values
+    filled = T.fill_depressions(make_dem(z)).values
+    valid = ~np.isnan(z)
+    assert np.all(filled[valid] >= flat[valid]) and np.all(flat[valid] >= z[valid])
+    assert np.all(filled[valid] - flat[valid] <= 1e-3 * np.maximum(1.0, np.abs(flat[valid])))
+    padded = np.pad(filled, 1, constant_values=np.nan)
+    neighbours = np.stack(
+        [padded[1 + di : 1 + di + z.shape[0], 1 + dj : 1 + dj + z.shape[1]]
+         for di in (-1, 0, 1) for dj in (-1, 0, 1) if (di, dj) != (0, 0)]
+    )
+    inner = valid & ~np.isnan(neighbours).any(axis=0)
+    assert np.all((neighbours < filled).any(axis=0)[inner])
+    kept = valid & (filled == z) & (z == 0)
+    assert kept.any() and np.all(np.signbit(filled[kept]) == np.signbit(z[kept]))
+
+
+def _d8_receivers_numpy(z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Steepest-descent neighbour by the definition (O'Callaghan & Mark 1984), written with numpy."""
+    ny, nx = z.shape
+    padded = np.pad(z, 1, constant_values=np.nan)
+    steps = [(0, 1), (1, 1), (1, 0), (1, -1), (0, -1), (-1, -1), (-1, 0), (-1, 1)]  # E, SE, S, ... NE
+    length = [CS if di == 0 or dj == 0 else math.sqrt(2 * CS * CS) for di, dj in steps]
+    drops = np.stack([(z - padded[1 + di : 1 + di + ny, 1 + dj : 1 + dj + nx]) / d
+                      for (di, dj), d in zip(steps, length)])
+    drops = np.where(np.isnan(drops), -np.inf, drops)
+    best = drops.argmax(axis=0)
+    has = drops.max(axis=0) > 0
+    i, j = np.indices(z.shape)
+    di = np.array([s[0] for s in steps])[best]
+    dj = np.array([s[1] for s in steps])[best]
+    return np.where(has, (i + di) * nx + (j + dj), -1), has
+
+
+@pytest.mark.reference
+def test_d8_accumulation_satisfies_its_recurrence():
+    """DERIVED from the D8 definition (O'Callaghan & Mark 1984): each cell's area is its own plus the
+    areas of the cells whose steepest-descent neighbour it is, and all area leaves through outlets."""
+    z = random_dem((45, 52), seed=13)
+    z[20:23, 10:14] = np.nan
+    dem = make_dem(z)
+    filled = T.fill_depressions(dem).values
+    acc = T.flow_accumulation(dem, method="d8").values
+    receiver, has = _d8_receivers_numpy(filled)
+    valid = ~np.isnan(z)
+    inflow = np.bincount(receiver[has & valid], weights=acc[has & valid], minlength=z.size).reshape(z.shape)
+    np.testing.assert_allclose(acc[valid], CS * CS + inflow[valid], rtol=1e-12)
+    outlets = valid & ~has
+    assert acc[outlets].sum() == pytest.approx(valid.sum() * CS * CS, rel=1e-12)
+
+
 # ----------------------------------------------------------- slope, aspect
 
 
@@ -402,6 +480,27 @@ def test_depth_to_water_on_plane():
 # depositional areas. Water Resources Research 39(12), 1347.  Step details are from memory (see
 # wetlandflow.features.mrvbf); the checks below are DERIVED from those stated equations or qualitative
 # properties the abstract states (flat + low = valley bottom; larger = broader and flatter).
+
+
+def test_elevation_percentile_kernel_matches_its_definition():
+    """The MRVBF percentile (Gallant & Dowling 2003: share of cells within the radius lower than the
+    centre) equals a brute-force count, at borders and next to nodata; the fused kernel returns N(PCTL)."""
+    from wetlandflow.features import _terrain_kernels as K
+
+    z = random_dem((23, 26), seed=2)
+    z[8:10, 5:9] = np.nan
+    radius = 3.0
+    out = K.position(z, radius, 0.4, False, np.zeros((0, 0)))
+    for ci, cj in ((11, 0), (10, 6), (0, 25), (15, 15)):  # border, beside the hole, corner, interior
+        di, dj = np.mgrid[-3:4, -3:4]
+        ii, jj = ci + di, cj + dj
+        inside = (ii >= 0) & (ii < z.shape[0]) & (jj >= 0) & (jj < z.shape[1]) & (di**2 + dj**2 <= radius**2)
+        inside &= (di != 0) | (dj != 0)
+        values = z[ii[inside], jj[inside]]
+        values = values[~np.isnan(values)]
+        pctl = np.mean(values < z[ci, cj])
+        assert out[ci, cj] == pytest.approx(1 / (1 + (pctl / 0.4) ** 3), rel=1e-12)
+    assert np.isnan(out[8, 5]) and np.isfinite(out[~np.isnan(z)]).all()
 
 
 @pytest.mark.reference

@@ -3,7 +3,10 @@
 A probability map is only as useful as its probabilities are calibrated: of the
 pixels given 0.8 marsh, about 80 % should be marsh.  This module measures that
 on held-out (ideally spatially held-out) predictions and refits a monotone map
-from raw to calibrated probabilities within spatial folds.
+from raw to calibrated probabilities within spatial folds: either as a wrapped
+estimator (:class:`CalibratedWetlandClassifier`) or, on probabilities already
+predicted out of fold, as :class:`ProbabilityCalibrator` (used by
+:mod:`wetlandflow.compare` inside each training fold).
 
 Binning convention (all functions): ``n_bins`` equal-width bins on [0, 1],
 closed on the right, ``B_m = ((m-1)/M, m/M]``, with 0 in the first bin, as in
@@ -35,9 +38,11 @@ from .errors import ModelError, ParameterError
 
 __all__ = [
     "CalibratedWetlandClassifier",
+    "ProbabilityCalibrator",
     "brier_score",
     "expected_calibration_error",
     "plot_reliability",
+    "plot_reliability_comparison",
     "reliability_table",
 ]
 
@@ -186,7 +191,171 @@ def plot_reliability(table: pd.DataFrame, targets: Any = None) -> Any:
     return fig
 
 
+def plot_reliability_comparison(
+    tables: dict[str, pd.DataFrame],
+    calibrated: dict[str, pd.DataFrame] | None = None,
+    target: str = TOP_LABEL,
+) -> Any:
+    """One reliability curve per model on shared axes (e.g. every configuration of a comparison).
+
+    Parameters
+    ----------
+    tables : dict of str to pandas.DataFrame
+        Model name to its :func:`reliability_table`.
+    calibrated : dict of str to pandas.DataFrame, optional
+        The same models after recalibration: drawn in a second panel, one
+        colour per model in both panels.
+    target : str, default "top_label"
+        The target drawn for every model (a class name or ``"top_label"``).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Built without pyplot; nothing is shown.
+    """
+    from matplotlib import colormaps
+    from matplotlib.figure import Figure
+
+    panels = {"raw": tables, **({"recalibrated": calibrated} if calibrated else {})}
+    fig = Figure(figsize=(4.2 * len(panels) + 2.8, 4.6), layout="constrained")
+    axes = fig.subplots(1, len(panels), squeeze=False)[0]
+    names = list(dict.fromkeys([*tables, *(calibrated or {})]))
+    cmap = colormaps["tab10" if len(names) <= 10 else "tab20"]
+    colour = {n: cmap(i % cmap.N) for i, n in enumerate(names)}
+    label = "confidence (highest probability)" if target == TOP_LABEL else f"predicted P({target})"
+    for ax, (title, group) in zip(axes, panels.items(), strict=True):
+        ax.plot([0, 1], [0, 1], color="0.6", linestyle="--", label="perfect calibration")
+        for name, table in group.items():
+            t = table[(table["target"] == target) & (table["n"] > 0)]
+            ax.plot(t["mean_predicted"], t["observed_frequency"], marker="o", markersize=3,
+                    color=colour[name], label=name)
+        ax.set(xlim=(0, 1), ylim=(0, 1), xlabel=label, ylabel="observed frequency", aspect="equal",
+               title=f"{title}, {target.replace('_', ' ')}")
+    handles, labels = axes[0].get_legend_handles_labels()
+    fig.legend(handles, labels, loc="outside right center", fontsize="x-small")
+    return fig
+
+
 # --------------------------------------------------------------------------- recalibration
+
+
+def _platt(f: np.ndarray, hit: np.ndarray) -> tuple[float, float]:
+    """Platt's (1999) sigmoid fit: P = 1 / (1 + exp(A f + B)), with his smoothed targets.
+
+    Targets ``(N+ + 1) / (N+ + 2)`` for positives and ``1 / (N- + 2)`` for
+    negatives (Platt 1999, section 2.2) keep the fit finite on separable data;
+    the cross-entropy is convex in (A, B) and minimised by L-BFGS-B.
+    """
+    from scipy.optimize import minimize
+    from scipy.special import expit
+
+    n_pos = float(hit.sum())
+    n_neg = hit.size - n_pos
+    t = np.where(hit, (n_pos + 1.0) / (n_pos + 2.0), 1.0 / (n_neg + 2.0))
+
+    def loss(ab: np.ndarray) -> tuple[float, np.ndarray]:
+        z = -(ab[0] * f + ab[1])  # logit of P
+        g = expit(z) - t  # d loss / d z
+        return float(np.sum(np.logaddexp(0.0, z) - t * z)), np.array([-(g * f).sum(), -g.sum()])
+
+    start = np.array([0.0, np.log((n_neg + 1.0) / (n_pos + 1.0))])
+    res = minimize(loss, start, jac=True, method="L-BFGS-B",
+                   options={"gtol": 1e-8, "ftol": 64 * np.finfo(float).eps})
+    return float(res.x[0]), float(res.x[1])
+
+
+class _Sigmoid:
+    def __init__(self, f: np.ndarray, hit: np.ndarray):
+        self.a, self.b = _platt(f, hit)
+
+    def predict(self, f: np.ndarray) -> np.ndarray:
+        from scipy.special import expit
+
+        return expit(-(self.a * f + self.b))
+
+
+class _Isotonic:
+    def __init__(self, f: np.ndarray, hit: np.ndarray):
+        from sklearn.isotonic import IsotonicRegression
+
+        self.model = IsotonicRegression(out_of_bounds="clip").fit(f, hit.astype(float))
+
+    def predict(self, f: np.ndarray) -> np.ndarray:
+        return self.model.predict(f)
+
+
+class ProbabilityCalibrator:
+    """A monotone map from raw to calibrated class probabilities, fitted on held-out predictions.
+
+    One-vs-rest: for each class seen in the labels, an isotonic regression
+    (Zadrozny & Elkan 2002) or Platt's (1999) sigmoid maps that class's raw
+    probability to the frequency of the class; rows are then rescaled to sum
+    to 1 (uniform where every map gives 0).  With exactly two classes seen,
+    one map is fitted on the probability of the second class in sorted order
+    and the first gets the complement.  This is the rule of scikit-learn's
+    ``CalibratedClassifierCV`` (``ensemble=False``), applied to probabilities
+    instead of to a model, so it can be fitted on out-of-fold predictions.
+
+    Parameters
+    ----------
+    classes : sequence of str
+        Scheme order of the probability columns (input and output).
+    method : {"isotonic", "sigmoid"}, default "isotonic"
+
+    Notes
+    -----
+    Fit it on predictions the model made for samples it was not trained on,
+    from folds other than the ones it will be applied to; classes absent from
+    the fitting labels keep probability 0.
+
+    Examples
+    --------
+    >>> p = np.array([[0.9, 0.1], [0.8, 0.2], [0.3, 0.7], [0.6, 0.4]])
+    >>> cal = ProbabilityCalibrator(["a", "b"]).fit(p, ["a", "a", "b", "b"])
+    >>> cal.transform(p).sum(axis=1).round(6).tolist()
+    [1.0, 1.0, 1.0, 1.0]
+    """
+
+    def __init__(self, classes: Any, method: str = "isotonic"):
+        self.classes = classes
+        self.method = method
+
+    def fit(self, proba: Any, y: Any) -> ProbabilityCalibrator:
+        """Fit the per-class maps on held-out probabilities ``proba`` and labels ``y``."""
+        if self.method not in ("isotonic", "sigmoid"):
+            raise ParameterError(
+                f"The 'method' parameter of ProbabilityCalibrator must be 'isotonic' or 'sigmoid'; "
+                f"got {self.method!r}."
+            )
+        y, p, cls = _check(y, proba, self.classes)
+        seen = sorted(set(y))
+        if len(seen) < 2:
+            raise ModelError(f"calibration needs labels of at least two classes; got only {seen}.")
+        kind = _Isotonic if self.method == "isotonic" else _Sigmoid
+        targets = seen[1:] if len(seen) == 2 else seen
+        self.maps_ = {c: kind(p[:, cls.index(c)], y == c) for c in targets}
+        self.seen_ = seen
+        return self
+
+    def transform(self, proba: Any) -> np.ndarray:
+        """Calibrated probabilities, columns in ``classes`` order, rows summing to 1."""
+        if not hasattr(self, "maps_"):
+            raise ModelError("this ProbabilityCalibrator is not fitted yet; call fit(proba, y) first.")
+        cls = [str(c) for c in self.classes]
+        p = np.asarray(proba, dtype=np.float64)
+        if p.ndim != 2 or p.shape[1] != len(cls):
+            raise ParameterError(f"proba must have {len(cls)} columns (one per class of {cls}); "
+                                 f"got {p.shape}.")
+        out = np.zeros_like(p)
+        for c, m in self.maps_.items():
+            out[:, cls.index(c)] = m.predict(p[:, cls.index(c)])
+        if len(self.seen_) == 2:
+            out[:, cls.index(self.seen_[0])] = 1.0 - out[:, cls.index(self.seen_[1])]
+            return out
+        total = out.sum(axis=1, keepdims=True)
+        uniform = np.zeros_like(out)
+        uniform[:, [cls.index(c) for c in self.seen_]] = 1.0 / len(self.seen_)
+        return np.divide(out, total, out=uniform, where=total > 0)
 
 
 class CalibratedWetlandClassifier(ClassifierMixin, BaseEstimator):

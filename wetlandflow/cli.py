@@ -1,4 +1,4 @@
-"""Command-line entry point: ``wetlandflow demo|run|check|sample|assess``.
+"""Command-line entry point: ``wetlandflow demo|run|check|sample|assess|compare|report|doctor``.
 
 Exit code 0 on success; on failure one clear message and a non-zero code
 (``--debug`` shows the traceback).
@@ -118,6 +118,12 @@ def _cmd_report(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_compare(args: argparse.Namespace) -> int:
+    from .compare import main as compare_main  # imported here: it loads scikit-learn and XGBoost
+
+    return compare_main(args.rest, prog="wetlandflow compare")
+
+
 def _cmd_doctor(args: argparse.Namespace) -> int:
     from .doctor import doctor_report
 
@@ -182,13 +188,21 @@ def build_parser() -> argparse.ArgumentParser:
     rp.add_argument("run_dir", help="the run folder")
     rp.set_defaults(func=_cmd_report)
 
+    cm = sub.add_parser("compare", add_help=False,  # its own options: wetlandflow compare --help
+                        help="compare models, structures and feature selection under a run's spatial folds")
+    cm.set_defaults(func=_cmd_compare)
+
     dr = sub.add_parser("doctor", help="print the geospatial stack actually loaded and flag known conflicts")
     dr.set_defaults(func=_cmd_doctor)
     return p
 
 
 def main(argv: list[str] | None = None) -> int:
-    args = build_parser().parse_args(argv)
+    parser = build_parser()
+    args, rest = parser.parse_known_args(argv)
+    if rest and args.command != "compare":  # only compare passes its options on (to wetlandflow.compare)
+        parser.error(f"unrecognized arguments: {' '.join(rest)}")
+    args.rest = rest
     try:
         return args.func(args)
     except WetlandflowError as exc:

@@ -40,6 +40,7 @@ from .demo_spectra import make_rng as _rng
 from .demo_spectra import smooth_noise as _noise
 from .demo_spectra import smoothstep as _smoothstep
 from .errors import AlignmentError, InputFileError, ProjectFileError
+from .features._terrain_kernels import fill_array
 from .grid import Grid, attach, require_projected
 
 CLASS_NAMES = ("upland", "open_water", "marsh", "swamp", "fen", "bog")
@@ -61,13 +62,16 @@ _NEIGHBOUR_LABEL = {"fen": "bog", "bog": "fen", "marsh": "swamp", "swamp": "mars
 
 @numba.njit(cache=True)
 def _priority_flood(z):
-    """Depression filling and flow receivers by Priority-Flood (Barnes et al. 2014).
+    """Depression filling and the flood's drainage tree by Priority-Flood (Barnes et al. 2014).
 
     Inside a depression the cells are taken in the order of their own
     elevation (key = filled + 1e-7 * original) rather than first-in first-out,
     so flow paths follow the depression floor instead of running straight.
     Returns the filled surface, the receiver of every cell (-1 at the edge
     outlets) and the order in which cells were reached (downstream first).
+    The library's fill (``features._terrain_kernels.fill_array``) gives the
+    same filled surface but not this tree, which shapes the demo's streams,
+    so the tree is built here and plain filling uses the library.
     """
     h, w = z.shape
     z0 = z.ravel()
@@ -337,7 +341,7 @@ def _terrain(lay: _Layout, seed: int) -> _Terrain:
     a_min = 0.3e6 * lay.k**2
     z1, dist, z_stream, a_stream, floor = _carve_valleys(lay, z0, zf0, area, a_min)
     del zf0, area
-    zf1 = _priority_flood(z1)[0]
+    zf1 = fill_array(z1, epsilon=False)
     dep1 = zf1 - z1
     hollow = 0.6 * _smoothstep(_noise(rng, z1.shape, lay.dpx(500)), 0.3, 1.5)
     dep = np.minimum(dep1, bowl + hollow)

@@ -74,3 +74,12 @@ class BudgetError(WetlandflowError, MemoryError):
 
 class ParameterError(WetlandflowError, ValueError):
     """A function argument outside its allowed values (names the parameter, the value and the choices)."""
+
+
+class Cancelled(WetlandflowError):
+    """Work was stopped on request (a notebook's cancel button) at a cancel point; finished work is kept.
+
+    ``partial`` holds what a job finished before the cancel, when it has something to hand back.
+    """
+
+    partial = None

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import json
 import shutil
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import numpy as np
@@ -144,7 +144,8 @@ def _predict_window(model, X: np.ndarray, ok: np.ndarray, k: int, aoa_model) -> 
 
 def predict_map(model, cube: xr.Dataset, features: list[str], grid: Grid, out_dir: str | Path, *,
                 valid: xr.DataArray, class_names: tuple[str, ...], window_size: int = 512,
-                aoa_model=None, memory_budget_gb: float | None = None, progress: bool = True) -> dict[str, Path]:
+                aoa_model=None, memory_budget_gb: float | None = None, progress: bool = True,
+                check: Callable[[], None] | None = None) -> dict[str, Path]:
     """Predict the whole grid window by window; return the paths of the COGs written.
 
     Writes ``probability.tif`` (one band per class, band descriptions = class
@@ -159,6 +160,8 @@ def predict_map(model, cube: xr.Dataset, features: list[str], grid: Grid, out_di
     interruption (same model, features and grid) resumes at the first window
     not yet written.  ``memory_budget_gb`` refuses to start when one window's
     working memory (:func:`window_memory_bytes`) would exceed the budget.
+    ``check`` is called before every window (a cancel point: it may raise
+    :class:`~wetlandflow.errors.Cancelled`; the windows written stay staged).
     """
     from .errors import BudgetError
 
@@ -183,6 +186,8 @@ def predict_map(model, cube: xr.Dataset, features: list[str], grid: Grid, out_di
     _create_stage(stage, profiles, class_names, resume=bool(done.done))
     todo = [(i, w) for i, w in enumerate(wins) if i not in done.done]
     for i, w in progress_bar(todo, desc="predicting", unit="window", disable=not progress):
+        if check is not None:
+            check()
         sl = {"y": slice(w.row_off, w.row_off + w.height), "x": slice(w.col_off, w.col_off + w.width)}
         block = np.asarray(data.isel(sl).values, dtype=np.float32)
         ok = np.asarray(valid.isel(sl).values, dtype=bool).ravel()

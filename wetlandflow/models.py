@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import hashlib
 import json
+import warnings
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -63,14 +65,53 @@ class ClassScheme:
         return cls(tuple(d["names"]), {k: tuple(v) for k, v in d.get("parents", {}).items()})
 
 
-def check_no_sentinels(X: np.ndarray, features: list[str]) -> None:
-    """Missing values must be NaN; a leftover sentinel (-9999, -32768, 65535) is an error."""
-    for s in (-9999.0, -32768.0, 65535.0, -3.4028235e38):
-        hit = np.any(X == s, axis=0)
+SENTINELS = (-9999.0, -32768.0, 65535.0, -3.4028235e38)
+
+
+def check_no_sentinels(X: np.ndarray, features: Sequence[str]) -> None:
+    """Missing values must be NaN; a leftover sentinel (-9999, -32768, 65535, -FLT_MAX) is an error.
+
+    Raises
+    ------
+    ModelError
+        Naming the features that hold a sentinel and the value found.
+    """
+    for s in SENTINELS:
+        hit = np.any(X == np.float32(s), axis=0)
         if hit.any():
             names = [f for f, h in zip(features, hit, strict=True) if h]
-            raise ModelError(f"feature(s) {names} contain the no-data sentinel {s:g}; convert it to NaN on reading "
-                             "(set the layer's nodata in the project file)")
+            raise ModelError(f"feature(s) {names} contain the no-data sentinel {s:g}; convert it to NaN on "
+                             "reading (set the layer's nodata in the project file)")
+
+
+def _column_names(X: Any, n: int) -> list[str]:
+    return [str(c) for c in X.columns] if hasattr(X, "columns") else [f"column {i}" for i in range(n)]
+
+
+def canonical_order(samples: pd.DataFrame) -> pd.DataFrame:
+    """Samples sorted by plot id, then y, then x (stable): the row order of the deterministic mode.
+
+    Histogram-based boosting sums gradients in row order, so the same samples
+    in another order can give a model that differs in the last float bits.
+    Sorting first makes the model a function of the sample *set*.
+
+    Parameters
+    ----------
+    samples : pandas.DataFrame
+        With ``plot_id``, ``x`` and ``y`` columns.
+
+    Returns
+    -------
+    pandas.DataFrame
+        A new frame with a fresh 0..n-1 index.
+    """
+    missing = [c for c in ("plot_id", "x", "y") if c not in samples.columns]
+    if missing:
+        raise ModelError(f"canonical_order needs columns plot_id, x and y; {missing} missing from "
+                         f"{list(samples.columns)[:8]}...")
+    keys = samples[["plot_id", "y", "x"]].astype({"plot_id": str})
+    order = np.lexsort((keys["x"].to_numpy(), keys["y"].to_numpy(), keys["plot_id"].to_numpy()))
+    return samples.iloc[order].reset_index(drop=True)
 
 
 class WetlandClassifier(ClassifierMixin, BaseEstimator):
@@ -116,8 +157,28 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
                                           min_samples_leaf=2)
         raise ModelError(f"model kind must be 'xgboost' or 'random_forest', got {self.kind!r}")
 
-    def fit(self, X, y, sample_weight=None):
+    def fit(self, X: Any, y: Any, sample_weight: Any = None) -> WetlandClassifier:
+        """Fit on samples; NaN is missing (routed natively), a no-data sentinel is an error.
+
+        Parameters
+        ----------
+        X : array-like or pandas.DataFrame of shape (n_samples, n_features)
+            A DataFrame's column names are kept (``feature_names_in_``) and
+            later DataFrames are aligned to them by name.
+        y : array-like of str
+            Labels from ``classes``.
+        sample_weight : array-like, optional
+            Multiplied with the class weights.
+
+        Returns
+        -------
+        WetlandClassifier
+            ``self``.
+        """
+        has_names = hasattr(X, "columns")
+        names = _column_names(X, np.shape(X)[1])
         X = np.asarray(X, dtype=np.float32)
+        check_no_sentinels(X, names)
         y = np.asarray(y).astype(str)
         unknown = sorted(set(y) - set(self.classes))
         if unknown:
@@ -133,6 +194,11 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
         self.model_ = self._make(len(present))
         self.model_.fit(X, yi, sample_weight=w)
         self.n_features_in_ = X.shape[1]
+        # As in scikit-learn: names are learned only from a table that has them.
+        if has_names:
+            self.feature_names_in_ = np.array(names, dtype=object)
+        elif hasattr(self, "feature_names_in_"):
+            del self.feature_names_in_
         return self
 
     def _present_proba(self, X: np.ndarray) -> np.ndarray:
@@ -143,10 +209,26 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
             p = self.model_.predict_proba(X)  # scikit-learn >= 1.4 forests route NaN natively
         return p
 
-    def predict_proba(self, X):
-        X = np.asarray(X, dtype=np.float32)
-        if X.shape[1] != self.n_features_in_:
-            raise ModelError(f"expected {self.n_features_in_} features, got {X.shape[1]}")
+    def _matrix(self, X: Any) -> np.ndarray:
+        """Features as float32, aligned by name when both sides carry names."""
+        names = getattr(self, "feature_names_in_", None)
+        if hasattr(X, "columns") and names is not None:
+            X = align_features(X, list(names))
+        Xa = np.asarray(X, dtype=np.float32)
+        if Xa.ndim != 2 or Xa.shape[1] != self.n_features_in_:
+            raise ModelError(f"expected {self.n_features_in_} features, got array of shape {Xa.shape}; pass "
+                             "the features the model was trained on (see align_features)")
+        check_no_sentinels(Xa, list(names) if names is not None else _column_names(Xa, Xa.shape[1]))
+        return Xa
+
+    def predict_proba(self, X: Any) -> np.ndarray:
+        """Class probabilities, one column per scheme class in scheme order (absent classes get 0).
+
+        Returns
+        -------
+        numpy.ndarray of float32, shape (n_samples, n_classes)
+        """
+        X = self._matrix(X)
         p = self._present_proba(X)
         if len(self.present_) == len(self.classes_):
             return p.astype(np.float32)
@@ -155,7 +237,13 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
         out[:, idx] = p
         return out
 
-    def predict(self, X):
+    def predict_frame(self, X: Any) -> pd.DataFrame:
+        """:meth:`predict_proba` as a DataFrame whose columns are the class names (index follows ``X``)."""
+        index = X.index if isinstance(X, pd.DataFrame) else None
+        return pd.DataFrame(self.predict_proba(X), columns=list(self.classes_), index=index)
+
+    def predict(self, X: Any) -> np.ndarray:
+        """The most probable scheme class per row."""
         return self.classes_[np.argmax(self.predict_proba(X), axis=1)]
 
 
@@ -187,7 +275,8 @@ def save_bundle(model: WetlandClassifier, folder: str | Path, *, features: list[
         model_file = "model.joblib"
     sidecar = {
         "model_file": model_file, "kind": model.kind, "features": list(features), "scheme": scheme.to_dict(),
-        "present_classes": model.present_.tolist(), "params": model.get_params(), "training_data_sha256": training_hash,
+        "present_classes": model.present_.tolist(), "params": model.get_params(),
+        "training_data_sha256": training_hash,
         "versions": {"xgboost": xgboost.__version__, "scikit-learn": sklearn.__version__}, **(extra or {}),
     }
     write_json(sidecar, folder / "bundle.json")
@@ -195,7 +284,13 @@ def save_bundle(model: WetlandClassifier, folder: str | Path, *, features: list[
 
 
 def load_bundle(folder: str | Path) -> tuple[WetlandClassifier, dict]:
-    """Load a bundle written by :func:`save_bundle`; returns the classifier and its sidecar."""
+    """Load a bundle written by :func:`save_bundle`; returns the classifier and its sidecar.
+
+    The classifier knows its feature names (``feature_names_in_``, the
+    sidecar's order), so a DataFrame given to ``predict_proba`` is aligned by
+    name; bring a cube or a bare array into that order with
+    :func:`align_features` first.
+    """
     folder = Path(folder)
     side_path = folder / "bundle.json"
     if not side_path.exists():
@@ -207,6 +302,7 @@ def load_bundle(folder: str | Path) -> tuple[WetlandClassifier, dict]:
     clf.classes_ = np.array(side["scheme"]["names"])
     clf.present_ = np.array(side["present_classes"])
     clf.n_features_in_ = len(side["features"])
+    clf.feature_names_in_ = np.array(side["features"], dtype=object)
     if side["kind"] == "xgboost":
         from xgboost import XGBClassifier
 
@@ -219,3 +315,153 @@ def load_bundle(folder: str | Path) -> tuple[WetlandClassifier, dict]:
     clf.model_ = m
     return clf, side
 
+
+
+# --------------------------------------------------------------------------- feature alignment
+
+
+class FeatureAlignmentWarning(UserWarning):
+    """Features the model does not use were found next to the ones it does, and are ignored."""
+
+
+_ON_EXTRA = ("warn", "ignore", "raise")
+
+
+@dataclass(frozen=True)
+class FeatureCheck:
+    """How a table's or cube's features relate to a model's.
+
+    Attributes
+    ----------
+    expected : tuple of str
+        The model's features, in its order.
+    missing : tuple of str
+        Expected but absent (prediction is impossible).
+    ignored : tuple of str
+        Present but not used by the model.
+    reordered : bool
+        The shared features come in another order than the model's.
+    """
+
+    expected: tuple[str, ...]
+    missing: tuple[str, ...]
+    ignored: tuple[str, ...]
+    reordered: bool
+
+    @property
+    def note(self) -> str:
+        """One line for a log or a manifest ('' when the features match exactly)."""
+        parts = []
+        if self.missing:
+            parts.append(f"missing: {', '.join(self.missing)}")
+        if self.reordered:
+            parts.append("columns reordered by name to the model's order")
+        if self.ignored:
+            parts.append(f"ignored (not used by the model): {', '.join(self.ignored)}")
+        return "; ".join(parts)
+
+
+def _expected_features(bundle_meta: Any) -> list[str]:
+    """The feature list of a sidecar dict, a fitted classifier or a plain list of names."""
+    if isinstance(bundle_meta, Mapping):
+        if "features" not in bundle_meta:
+            raise ModelError(f"bundle metadata has no 'features' entry (keys: {sorted(bundle_meta)}); pass "
+                             "the dict returned by load_bundle or read from model/bundle.json")
+        feats = bundle_meta["features"]
+    elif hasattr(bundle_meta, "feature_names_in_"):
+        feats = bundle_meta.feature_names_in_
+    elif isinstance(bundle_meta, Sequence) and not isinstance(bundle_meta, str):
+        feats = bundle_meta
+    else:
+        raise ModelError("bundle_meta must be the bundle sidecar dict, a fitted classifier with feature "
+                         f"names, or a list of feature names; got {type(bundle_meta).__name__}")
+    return [str(f) for f in feats]
+
+
+def _available(X: Any) -> list[str]:
+    import xarray as xr
+
+    if isinstance(X, xr.Dataset):
+        return [str(v) for v in X.data_vars]
+    if isinstance(X, pd.DataFrame):
+        cols = [str(c) for c in X.columns]
+        dup = sorted({c for c in cols if cols.count(c) > 1})
+        if dup:
+            raise ModelError(f"the table has duplicate feature columns {dup}; drop the copies before "
+                             "predicting")
+        return cols
+    raise ModelError(f"align_features needs a pandas DataFrame (one column per feature) or an xarray Dataset "
+                     f"(one variable per feature); got {type(X).__name__}. A bare array carries no names, so "
+                     "its order cannot be checked: wrap it as pd.DataFrame(X, columns=names).")
+
+
+def check_features(X: Any, bundle_meta: Any) -> FeatureCheck:
+    """Compare the features of a table or cube with a model's, by name (nothing is changed).
+
+    Parameters
+    ----------
+    X : pandas.DataFrame or xarray.Dataset
+    bundle_meta : dict, WetlandClassifier or sequence of str
+        The sidecar returned by :func:`load_bundle`, a classifier fitted on a
+        DataFrame, or the feature names in model order.
+
+    Returns
+    -------
+    FeatureCheck
+    """
+    expected = _expected_features(bundle_meta)
+    have = _available(X)
+    present = set(have)
+    shared = [f for f in have if f in set(expected)]
+    return FeatureCheck(tuple(expected), tuple(f for f in expected if f not in present),
+                        tuple(f for f in have if f not in set(expected)), shared != expected)
+
+
+def align_features(X: Any, bundle_meta: Any, *, on_extra: str = "warn") -> Any:
+    """Bring a table or cube to a model's features: select and order them by name.
+
+    * a feature the model needs is absent: :class:`~wetlandflow.errors.ModelError`
+      naming the missing features and the two ways out;
+    * the features come in another order: reordered to the model's order;
+    * features the model does not use: dropped, with a
+      :class:`FeatureAlignmentWarning` (``on_extra="warn"``), silently
+      (``"ignore"``) or refused (``"raise"``).
+
+    Parameters
+    ----------
+    X : pandas.DataFrame or xarray.Dataset
+        Samples (one column per feature) or a feature cube (one variable per feature).
+    bundle_meta : dict, WetlandClassifier or sequence of str
+        See :func:`check_features`.
+    on_extra : {"warn", "ignore", "raise"}, default "warn"
+
+    Returns
+    -------
+    pandas.DataFrame or xarray.Dataset
+        Same type as ``X``, exactly the model's features in the model's order
+        (a Dataset stays lazy).
+
+    Examples
+    --------
+    >>> X = pd.DataFrame({"b": [1.0], "a": [2.0], "c": [3.0]})
+    >>> list(align_features(X, ["a", "b"], on_extra="ignore").columns)
+    ['a', 'b']
+    """
+    if on_extra not in _ON_EXTRA:
+        raise ModelError(f"on_extra must be one of {_ON_EXTRA}; got {on_extra!r}")
+    chk = check_features(X, bundle_meta)
+    if chk.missing:
+        n_have = len(chk.expected) - len(chk.missing) + len(chk.ignored)
+        raise ModelError(
+            f"the data lack {len(chk.missing)} feature(s) the model was trained on: {list(chk.missing)} "
+            f"(the model uses {len(chk.expected)} features; the data hold {n_have}). "
+            "Rebuild the feature cube with the feature selection the model was trained with (the run's "
+            "project file, [features] select), or retrain the model on the features available."
+        )
+    if chk.ignored and on_extra == "raise":
+        raise ModelError(f"the data hold feature(s) the model does not use: {list(chk.ignored)}; drop them, "
+                         "or call align_features with on_extra='warn' or 'ignore'")
+    if chk.ignored and on_extra == "warn":
+        warnings.warn(f"{len(chk.ignored)} feature(s) not used by the model are ignored: {list(chk.ignored)}",
+                      FeatureAlignmentWarning, stacklevel=2)
+    return X[list(chk.expected)]

@@ -110,7 +110,9 @@ class ModelSection:
     max_depth: int = 6
     learning_rate: float = 0.1
     class_weighting: bool = True
+    max_plot_share: float = 0.1  # largest share of its class's weight one plot may carry; 0 = no cap
     n_threads: int = 2
+    features: tuple[str, ...] = ()  # train on these cube variables only (e.g. a selection's result); () = all
 
 
 @dataclass(frozen=True)
@@ -311,6 +313,19 @@ def _check_seasons(seasons: dict[str, tuple[str, str]]) -> None:
             )
 
 
+def _check_season_scenes(p: Project) -> None:
+    """Every season must hold at least one acquisition date (optical or SAR), or its features are empty."""
+    dates = sorted({s.date for s in p.optical} | {s.date for s in p.sar})
+    for name, (start, end) in p.seasons.items():
+        a, b = _month_day(start, f"seasons.{name}"), _month_day(end, f"seasons.{name}")
+        if not any(a <= (d.month, d.day) <= b for d in dates):
+            raise ProjectFileError(
+                f"season {name!r} ({start} to {end}) contains no scene: the acquisition dates are "
+                f"{[d.isoformat() for d in dates]}. Widen the window, add scenes for it, or remove the season",
+                key=f"seasons.{name}",
+            )
+
+
 def _check_classes(c: ClassesSection) -> None:
     if len(c.names) < 2:
         raise ProjectFileError("a class scheme needs at least two classes", key="classes.names")
@@ -344,7 +359,8 @@ def _validate(p: Project) -> None:
         _require_file(s.path, f"optical[{i}].path")
         _require_file(s.mask, f"optical[{i}].mask")
         if len(set(s.bands)) != len(s.bands):
-            raise ProjectFileError(f"duplicate band names in {list(s.bands)}", key=f"optical[{i}].bands")
+            raise ProjectFileError(f"duplicate band names in {list(s.bands)}; give each band of the file its own "
+                                   "name, in the file's band order", key=f"optical[{i}].bands")
         if s.scale <= 0:
             raise ProjectFileError(f"scale must be > 0, got {s.scale}", key=f"optical[{i}].scale")
     for i, s in enumerate(p.sar):
@@ -352,11 +368,16 @@ def _validate(p: Project) -> None:
         _check_choice(s.units, SAR_UNITS, f"sar[{i}].units")
         _check_choice(s.orbit, ORBITS, f"sar[{i}].orbit")
         if len(set(s.bands)) != len(s.bands):
-            raise ProjectFileError(f"duplicate band names in {list(s.bands)}", key=f"sar[{i}].bands")
+            raise ProjectFileError(f"duplicate band names in {list(s.bands)}; give each band of the file its own "
+                                   "name, in the file's band order", key=f"sar[{i}].bands")
     _check_classes(p.classes)
     _check_seasons(p.seasons)
+    _check_season_scenes(p)
     _check_choice(p.model.kind, MODEL_KINDS, "model.kind")
     _check_choice(p.samples.missing, ("keep", "drop"), "samples.missing")
+    if not 0 <= p.model.max_plot_share <= 1:
+        raise ProjectFileError(f"max_plot_share must be in [0, 1] (0 = no cap), got {p.model.max_plot_share}",
+                               key="model.max_plot_share")
     _check_choice(p.validation.design, CV_DESIGNS, "validation.design")
     if p.validation.n_folds < 2:
         raise ProjectFileError(f"n_folds must be >= 2, got {p.validation.n_folds}", key="validation.n_folds")
@@ -420,7 +441,8 @@ def load_project(path: str | Path) -> Project:
     try:
         data = tomllib.loads(path.read_text(encoding="utf-8"))
     except tomllib.TOMLDecodeError as exc:
-        raise ProjectFileError(f"not valid TOML: {exc}", file=str(path)) from None
+        raise ProjectFileError(f"not valid TOML: {exc}; fix the syntax at the line and column shown "
+                               "(docs/project-file.md describes the format)", file=str(path)) from None
     return parse_project(data, file=path)
 
 

@@ -25,6 +25,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputFileError
+from .features.cube import season_variable
 from .io import atomic_path
 from .references import Citations
 
@@ -194,7 +195,7 @@ class RunFolder:
         return pd.DataFrame(rows)
 
     def _cube_share(self, season: str) -> float | None:
-        var = _season_variable(self.feature_attrs, season)
+        var = season_variable(self.feature_attrs, season)
         if var is None or self.cube is None or not self.aoi_pixels:
             return None
         finite = int(self.cube[var].notnull().sum().compute())
@@ -209,12 +210,6 @@ class RunFolder:
 def _in_window(date: str, start: str, end: str) -> bool:
     md = date[5:10]
     return start <= md <= end if start <= end else (md >= start or md <= end)
-
-
-def _season_variable(attrs: dict[str, dict[str, Any]], season: str) -> str | None:
-    names = [k for k, a in attrs.items() if a.get("season") == season and a.get("domain") == "optical"]
-    preferred = [n for n in names if n.startswith("ndvi_")]
-    return (preferred or sorted(names) or [None])[0]
 
 
 # -- map previews from COG overviews ----------------------------------------------------------------------------
@@ -388,7 +383,6 @@ def write_report(run_dir: str | Path, *, out_dir: str | Path | None = None) -> d
     interrupted report never leaves a half-written file under a final name.
     """
     from .report_templates import render_html, render_markdown
-
     from .report_text import build_sections
 
     run = RunFolder(run_dir)

@@ -10,6 +10,7 @@ from __future__ import annotations
 import datetime as dt
 import platform
 import time
+from collections.abc import Callable
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -19,14 +20,15 @@ import numpy as np
 import pandas as pd
 
 from . import CAUTION, __version__
-from .features.cube import build_cube, open_cube, save_cube
+from .errors import Cancelled, ProjectFileError
+from .features.cube import build_cube, open_cube, save_cube, season_coverage
 from .inputs import load_inputs, project_grid, read_aoi
 from .io import check_writable, sha256_file, write_figure, write_json, write_table
 from .mapping import AOA_LAYERS, LAYERS, class_areas, code_counts, predict_map
 from .models import ClassScheme, WetlandClassifier, data_hash, load_bundle, save_bundle
 from .project import Project, config_hash, load_project, portable_dict, to_dict
-from .steps import applicability_model, write_explanations, write_inventory_outputs
 from .samples import class_balance, drop_incomplete, extract_samples, missing_report, plot_pixels, read_plots
+from .steps import applicability_model, write_explanations, write_inventory_outputs
 
 
 @dataclass
@@ -46,8 +48,9 @@ class RunResult:
 class Manifest:
     """The run's account of itself, rewritten after every step."""
 
-    def __init__(self, run_dir: Path, project: Project):
+    def __init__(self, run_dir: Path, project: Project, check: Callable[[], None] | None = None):
         self.path = run_dir / "manifest.json"
+        self.check = check or (lambda: None)
         self.data: dict[str, Any] = {
             "wetlandflow": __version__,
             "started": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
@@ -58,6 +61,7 @@ class Manifest:
             "versions": library_versions(),
             "inputs": {},
             "steps": {},
+            "command": f"wetlandflow run {project.file.name}",
             "caution": CAUTION,
         }
         self.previous = _previous_manifest(self.path)
@@ -74,6 +78,8 @@ class Manifest:
 
     @contextmanager
     def step(self, name: str, key: str = ""):
+        """Record a step: running, then done, failed or cancelled (with the error), with its seconds."""
+        self.check()  # a cancel point: between steps nothing is half-written
         rec = {"status": "running", "started": time.time(), "key": key}
         self.data["steps"][name] = rec
         self.save()
@@ -81,7 +87,8 @@ class Manifest:
         try:
             yield rec
         except BaseException as exc:
-            rec.update(status="failed", error=f"{type(exc).__name__}: {exc}")
+            rec.update(status="cancelled" if isinstance(exc, Cancelled) else "failed",
+                       error=f"{type(exc).__name__}: {exc}")
             rec["seconds"] = round(time.perf_counter() - t0, 3)
             self.save()
             raise
@@ -114,16 +121,23 @@ def step_key(*parts: Any) -> str:
 def library_versions() -> dict[str, str]:
     """Versions of the libraries actually loaded, including the GDAL and PROJ behind rasterio and pyproj."""
     import dask
+    import geopandas
+    import numba
     import pyproj
     import rasterio
+    import shapely
     import sklearn
     import xarray
     import xgboost
+    import zarr
 
     return {"python": platform.python_version(), "numpy": np.__version__, "pandas": pd.__version__,
-            "xarray": xarray.__version__, "dask": dask.__version__, "rasterio": rasterio.__version__,
-            "gdal": rasterio.__gdal_version__, "pyproj": pyproj.__version__,
-            "proj": pyproj.proj_version_str, "scikit-learn": sklearn.__version__, "xgboost": xgboost.__version__}
+            "xarray": xarray.__version__, "dask": dask.__version__, "zarr": zarr.__version__,
+            "numba": numba.__version__, "rasterio": rasterio.__version__, "gdal": rasterio.__gdal_version__,
+            "proj (rasterio)": getattr(rasterio, "__proj_version__", "unknown"), "pyproj": pyproj.__version__,
+            "proj (pyproj)": pyproj.proj_version_str, "geopandas": geopandas.__version__,
+            "shapely": shapely.__version__, "geos": shapely.geos_version_string,
+            "scikit-learn": sklearn.__version__, "xgboost": xgboost.__version__}
 
 
 def _record_inputs(manifest: Manifest, project: Project) -> None:
@@ -161,16 +175,52 @@ def make_splitter(project: Project, coords: np.ndarray):
 
 
 def make_model(project: Project) -> WetlandClassifier:
+    """The classifier of the project file; class balance comes from :func:`training_weights` when plots are capped."""
     m = project.model
     return WetlandClassifier(classes=project.classes.names, kind=m.kind, n_estimators=m.n_estimators,
                              max_depth=m.max_depth, learning_rate=m.learning_rate,
-                             class_weighting=m.class_weighting, n_threads=m.n_threads,
-                             random_state=project.project.seed)
+                             class_weighting=m.class_weighting and not m.max_plot_share,
+                             n_threads=m.n_threads, random_state=project.project.seed)
+
+
+def training_weights(project: Project, samples: pd.DataFrame) -> np.ndarray | None:
+    """Per-sample weights for a fit: classes balanced (``model.class_weighting``) and no plot above
+    ``model.max_plot_share`` of its class (see :func:`wetlandflow.weights.sample_weights`); ``None``
+    when the cap is off (the classifier then balances classes itself).
+
+    A class with too few plots to meet the cap gets equal plot totals, the most even split possible;
+    the model step's record in the manifest shows the largest share any plot carries.
+    """
+    share = project.model.max_plot_share
+    if not share:
+        return None
+    from .weights import sample_weights
+
+    return sample_weights(samples["class"].to_numpy(), samples["plot_id"].to_numpy(),
+                          balance_classes=project.model.class_weighting, max_plot_share=share,
+                          on_infeasible="ignore")
+
+
+def model_features(project: Project, samples: pd.DataFrame) -> list[str]:
+    """The features a model trains on: ``model.features`` if given (checked against the cube), else all."""
+    available = feature_names(samples)
+    chosen = list(project.model.features)
+    if not chosen:
+        return available
+    missing = [f for f in chosen if f not in available]
+    if missing:
+        raise ProjectFileError(
+            f"model.features names {missing}, which the feature cube does not hold (it has: "
+            f"{', '.join(available)}); correct the names (a selection writes them to "
+            "comparison/selected_features.txt), or add the features to [features] select",
+            key="model.features", file=str(project.file))
+    return chosen
 
 
 def cross_validate(project: Project, samples: pd.DataFrame, features: list[str], *,
-                   progress: bool = True) -> tuple[np.ndarray, np.ndarray]:
-    """Out-of-fold class probabilities for every sample, and each sample's test fold."""
+                   progress: bool = True, check: Callable[[], None] | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Out-of-fold class probabilities for every sample, and each sample's test fold
+    (``check`` is called before every fold: a cancel point)."""
     from .progress import progress_bar
     from .validation import assign_folds
 
@@ -182,7 +232,10 @@ def cross_validate(project: Project, samples: pd.DataFrame, features: list[str],
     oof = np.full((len(samples), len(project.classes.names)), np.nan, np.float32)
     for k in progress_bar(np.unique(folds), desc="cross-validating", unit="fold", disable=not progress):
         test = folds == k
-        model = make_model(project).fit(X[~test], y[~test])
+        if check is not None:
+            check()
+        w = training_weights(project, samples[~test])
+        model = make_model(project).fit(X[~test], y[~test], sample_weight=w)
         oof[test] = model.predict_proba(X[test])
     return oof, folds
 
@@ -218,8 +271,14 @@ def compute_context(project: Project):
         yield client
 
 
-def run_project(project: Project | str | Path, *, progress: bool = True) -> RunResult:
+def run_project(project: Project | str | Path, *, progress: bool = True, control: Any = None) -> RunResult:
     """Run a project end to end and write its run folder (on the cluster of :func:`compute_context`).
+
+    ``control`` is anything with a ``check()`` method that raises
+    :class:`~wetlandflow.errors.Cancelled` on request (a notebook's
+    :class:`~wetlandflow.widgets.TaskControl`); it is called before every
+    step, cross-validation fold and prediction window.  The step stopped is
+    recorded as ``cancelled`` and the next run resumes from the steps done.
 
     Examples
     --------
@@ -229,7 +288,7 @@ def run_project(project: Project | str | Path, *, progress: bool = True) -> RunR
     if not isinstance(project, Project):
         project = load_project(project)
     with compute_context(project) as client:
-        result = _run(project, progress=progress)
+        result = _run(project, progress=progress, check=None if control is None else control.check)
         import os
 
         result.manifest["compute"] = {
@@ -241,10 +300,10 @@ def run_project(project: Project | str | Path, *, progress: bool = True) -> RunR
         return result
 
 
-def _run(project: Project, *, progress: bool = True) -> RunResult:
+def _run(project: Project, *, progress: bool = True, check: Callable[[], None] | None = None) -> RunResult:
     """The steps of a run; each is skipped when an earlier run in the folder finished it with the same key."""
     run_dir = check_writable(project.run_dir)
-    manifest = Manifest(run_dir, project)
+    manifest = Manifest(run_dir, project, check)
     cfg = portable_dict(project)
     seed = project.project.seed
 
@@ -268,6 +327,7 @@ def _run(project: Project, *, progress: bool = True) -> RunResult:
             cube = build_cube(inputs, project.features.select, project.features.params)
             cube = save_cube(cube, zarr_path, chunk=project.output.chunk_size)
             rec["features"] = {k: dict(v.attrs) for k, v in cube.data_vars.items()}
+            rec["season_coverage"] = season_coverage(cube, inputs.aoi, project.seasons)
 
     k_samples = step_key(k_feat, cfg["plots"], cfg["classes"], cfg["samples"], seed, hashes["plots"])
     samples_path = run_dir / "samples.parquet"
@@ -277,7 +337,7 @@ def _run(project: Project, *, progress: bool = True) -> RunResult:
         with manifest.step("samples", k_samples) as rec:
             samples = _samples_step(project, grid, cube, rec)
             write_table(samples, samples_path)
-    features = feature_names(samples)
+    features = model_features(project, samples)
     balance = class_balance(samples)
 
     k_val = step_key(k_samples, cfg["validation"], cfg["model"], seed)
@@ -289,19 +349,23 @@ def _run(project: Project, *, progress: bool = True) -> RunResult:
         folds = pd.read_parquet(vdir / "oof_predictions.parquet", columns=["fold"])["fold"].to_numpy()
     else:
         with manifest.step("validation", k_val) as rec:
-            metrics, folds = _validation_step(project, samples, features, inputs.aoi, grid, vdir, rec, progress)
+            metrics, folds = _validation_step(project, samples, features, inputs.aoi, grid, vdir, rec, progress,
+                                              check)
 
     k_model = step_key(k_samples, cfg["model"], seed)
     if manifest.reusable("model", k_model, [run_dir / "model" / "bundle.json"]):
         model, _ = load_bundle(run_dir / "model")
     else:
         with manifest.step("model", k_model) as rec:
-            model = make_model(project).fit(samples[features].to_numpy(np.float32), samples["class"].to_numpy())
+            w = training_weights(project, samples)
+            model = make_model(project).fit(samples[features].to_numpy(np.float32), samples["class"].to_numpy(),
+                                            sample_weight=w)
             save_bundle(model, run_dir / "model", features=features,
                         scheme=ClassScheme(project.classes.names, project.classes.parents),
                         training_hash=data_hash(samples, features),
                         extra={"config_sha256": manifest.data["config_sha256"]})
             rec["n_features"] = len(features)
+            rec["weights"] = _weights_record(project, samples, w)
             rec["hyperparameters"] = {k: v for k, v in model.get_params().items() if k != "classes"}
 
     applicability = project.output.applicability
@@ -317,7 +381,7 @@ def _run(project: Project, *, progress: bool = True) -> RunResult:
             map_paths = predict_map(model, cube, features, grid, run_dir / "maps", valid=inputs.aoi,
                                     class_names=project.classes.names, window_size=project.output.chunk_size,
                                     aoa_model=aoa_model, memory_budget_gb=project.output.memory_budget_gb,
-                                    progress=progress)
+                                    progress=progress, check=check)
             rec["outputs"] = {k: str(v.relative_to(run_dir)) for k, v in map_paths.items()}
             rec["data_sha256"] = {k: raster_data_sha256(v) for k, v in map_paths.items()}
             if applicability:
@@ -368,10 +432,11 @@ def _samples_step(project: Project, grid, cube, rec: dict[str, Any]) -> pd.DataF
 
 
 def _validation_step(project: Project, samples: pd.DataFrame, features: list[str], aoi, grid, vdir: Path,
-                     rec: dict[str, Any], progress: bool) -> tuple[dict[str, Any], np.ndarray]:
+                     rec: dict[str, Any], progress: bool,
+                     check: Callable[[], None] | None) -> tuple[dict[str, Any], np.ndarray]:
     from .accuracy import accuracy_measures, error_matrix
 
-    oof, folds = cross_validate(project, samples, features, progress=progress)
+    oof, folds = cross_validate(project, samples, features, progress=progress, check=check)
     names = list(project.classes.names)
     pred = np.array(names)[np.argmax(oof, axis=1)]
     write_table(pd.DataFrame({"plot_id": samples["plot_id"], "class": samples["class"], "fold": folds,
@@ -382,7 +447,7 @@ def _validation_step(project: Project, samples: pd.DataFrame, features: list[str
     metrics = _metrics_dict(accuracy_measures(matrix))
     metrics["design"] = project.validation.design
     metrics["n_folds"] = int(len(np.unique(folds)))
-    rec["splitter"] = repr(make_splitter(project, samples[["x", "y"]].to_numpy()))
+    rec["splitter"] = splitter_record(make_splitter(project, samples[["x", "y"]].to_numpy()))
     rec["folds_file"] = "validation/folds.parquet"
     rec["diagnostics"] = write_fold_diagnostics(vdir, samples, folds, aoi, grid,
                                                 block_size_m=project.validation.block_size_m,
@@ -392,6 +457,24 @@ def _validation_step(project: Project, samples: pd.DataFrame, features: list[str
     write_json(metrics, vdir / "metrics.json")
     rec["overall_accuracy"] = metrics["overall_accuracy"]
     return metrics, folds
+
+
+def splitter_record(splitter: Any) -> dict[str, Any]:
+    """The splitter's class and scalar settings (arrays such as sample coordinates are in samples.parquet)."""
+    params = {k: v for k, v in vars(splitter).items() if not k.startswith("_") and np.ndim(v) == 0}
+    return {"class": type(splitter).__name__,
+            **{k: v if isinstance(v, (bool, int, float, str, type(None))) else str(v) for k, v in params.items()}}
+
+
+def _weights_record(project: Project, samples: pd.DataFrame, w: np.ndarray | None) -> dict[str, Any]:
+    """How the final fit weighted its samples: the cap and the largest share any plot carries in its class."""
+    if w is None:
+        return {"max_plot_share": 0, "class_weighting": project.model.class_weighting}
+    per_plot = pd.DataFrame({"c": samples["class"].to_numpy(), "p": samples["plot_id"].to_numpy(), "w": w})
+    totals = per_plot.groupby(["c", "p"])["w"].sum()
+    share = totals / totals.groupby(level="c").transform("sum")
+    return {"max_plot_share": project.model.max_plot_share, "class_weighting": project.model.class_weighting,
+            "largest_plot_share": {str(c): round(float(v), 4) for c, v in share.groupby(level="c").max().items()}}
 
 
 def _set_aside_stale_assessment(run_dir: Path) -> str | None:

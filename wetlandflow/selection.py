@@ -13,8 +13,10 @@ with the groups, and the resulting ``(train, test)`` list is handed to
 ``cross_val_score``, so differences between candidates are not fold noise.
 
 The score of the chosen set is optimistic, because the same folds chose it
-(Ambroise & McLachlan 2002); report an independent or nested estimate as the
-map accuracy.
+(Ambroise & McLachlan 2002).  :func:`forward_selection_within_folds` runs the
+whole selection inside each training fold (the held-out fold never takes part),
+so that a model refitted on each fold's own selection gives an honest
+after-selection score; :mod:`wetlandflow.compare` uses it.
 
 References
 ----------
@@ -41,12 +43,21 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from sklearn.base import clone
-from sklearn.model_selection import cross_val_score
+from sklearn.metrics import f1_score, make_scorer
+from sklearn.model_selection import PredefinedSplit, cross_val_score
 
 from .errors import ModelError, ParameterError
-from .io import write_json, write_table
+from .io import atomic_path, write_json, write_table
 
-__all__ = ["SelectionResult", "forward_feature_selection", "recursive_elimination", "write_selection"]
+__all__ = [
+    "SelectionResult",
+    "forward_feature_selection",
+    "forward_selection_within_folds",
+    "importance_ranking",
+    "read_selected_features",
+    "recursive_elimination",
+    "write_selection",
+]
 
 _SCORINGS = ("accuracy", "f1_macro")
 _HISTORY_COLUMNS = ["step", "n_features", "added", "removed", "score", "score_sd", "features"]
@@ -70,6 +81,9 @@ class SelectionResult:
     method : str
         ``"forward"`` or ``"recursive_elimination"``.
     scoring : str
+    pool : tuple of str
+        The features the search could choose from (all columns unless a
+        ``pool`` size screened them by importance first).
     """
 
     selected: list[str]
@@ -77,6 +91,13 @@ class SelectionResult:
     candidates: pd.DataFrame = field(repr=False)
     method: str
     scoring: str
+    pool: tuple[str, ...] = ()
+
+    @property
+    def score(self) -> float:
+        """Mean CV score of the selected set (on the folds that chose it: optimistic)."""
+        h = self.history
+        return float(h.loc[h["features"] == ";".join(self.selected), "score"].max())
 
     def plot(self, ax: Any = None) -> Any:
         """Spatial-CV score against the number of features.
@@ -131,11 +152,18 @@ def _check_inputs(X: Any, scoring: str, min_features: int, max_features: int | N
         )
 
 
+def _scoring(scoring: str) -> Any:
+    """A scorer; macro F1 counts a class never predicted in a fold as F1 = 0, without a warning."""
+    if scoring == "f1_macro":
+        return make_scorer(f1_score, average="macro", zero_division=0)
+    return scoring
+
+
 class _Scorer:
     """CV score of a feature subset on fixed folds."""
 
     def __init__(self, estimator: Any, X: pd.DataFrame, y: Any, groups: Any, cv: Any, scoring: str):
-        self.estimator, self.X, self.scoring = estimator, X, scoring
+        self.estimator, self.X, self.scoring = estimator, X, _scoring(scoring)
         self.y = np.asarray(y)
         self.groups = None if groups is None else np.asarray(groups)
         # The splitter runs once, with the groups: every candidate sees the same folds.
@@ -205,6 +233,7 @@ def forward_feature_selection(
     max_features: int | None = None,
     tol: float = 0.0,
     max_pairs: int = 190,
+    pool: int | None = None,
 ) -> SelectionResult:
     """Forward feature selection under spatial CV (Meyer et al. 2018).
 
@@ -238,6 +267,12 @@ def forward_feature_selection(
         features at the default), step 1 is run only among the features with
         the best single-feature CV scores, as many as keep the pair count
         within budget (a screen; common practice, no source).
+    pool : int, optional
+        Search only among the ``pool`` features ranked highest by
+        :func:`importance_ranking` (one fit on ``X``, ``y``): a cheap screen
+        for many features, where every step would otherwise fit one model per
+        remaining feature and fold (common practice, no source).  ``None``:
+        all columns.
 
     Returns
     -------
@@ -249,6 +284,12 @@ def forward_feature_selection(
             f"forward selection starts from a pair: X needs >= 2 columns and min_features >= 2; "
             f"got {X.shape[1]} column(s), min_features={min_features}."
         )
+    if pool is not None:
+        if not (isinstance(pool, (int, np.integer)) and pool >= 2):
+            raise ParameterError(f"pool must be None or an int >= 2; got {pool!r}.")
+        if pool < X.shape[1]:
+            top = set(importance_ranking(estimator, X, y).index[:pool])
+            X = X[[c for c in X.columns if c in top]]
     score = _Scorer(estimator, X, y, groups, cv, scoring)
     features, cand = list(X.columns), []
     pool = _screen(features, score, max_pairs, cand)
@@ -263,7 +304,72 @@ def forward_feature_selection(
         chosen, best = trial, s
         history.append(_row(len(history), chosen, best, added=trial[-1]))
     return SelectionResult(chosen, pd.DataFrame(history, columns=_HISTORY_COLUMNS), _candidates_frame(cand),
-                           "forward", scoring)
+                           "forward", scoring, tuple(features))
+
+
+def forward_selection_within_folds(
+    estimator: Any, X: pd.DataFrame, y: Any, folds: Any, *, n_jobs: int = 1, **options: Any
+) -> dict[int, SelectionResult]:
+    """Forward selection run inside each training fold, for an honest after-selection score.
+
+    For every fold ``k`` of ``folds`` the selection sees only the samples
+    outside ``k`` and scores its candidates by leave-one-fold-out over the
+    *other* folds (``PredefinedSplit`` on their fold ids), so neither the
+    features nor the labels of fold ``k`` take part in choosing fold ``k``'s
+    features.  A model fitted on fold ``k``'s training samples with its
+    selected set and tested on fold ``k`` then scores the whole procedure
+    (selection included), as nested CV does (Ambroise & McLachlan 2002).
+
+    Parameters
+    ----------
+    estimator, X, y
+        As in :func:`forward_feature_selection`.
+    folds : array-like of int, shape (n_samples,)
+        Test-fold id per sample (e.g. from
+        :func:`~wetlandflow.validation.assign_folds`); at least 3 folds, so
+        that each training set still has 2 folds to score candidates on.
+    n_jobs : int, default 1
+        Folds selected in parallel worker processes (joblib).  The result does
+        not depend on it as long as the estimator's own thread count is fixed.
+    **options
+        Passed to :func:`forward_feature_selection` (``scoring``, ``tol``,
+        ``max_features``, ``pool``, ...).
+
+    Returns
+    -------
+    dict of int to SelectionResult
+        One selection per fold id.
+    """
+    folds = np.asarray(folds)
+    ids = np.unique(folds[folds >= 0])
+    if ids.size < 3 or folds.shape[0] != len(X):
+        raise ParameterError(
+            f"folds must hold one fold id per row of X ({len(X)} rows) and at least 3 folds; got "
+            f"{folds.shape[0]} ids and {ids.size} fold(s). Use more folds or forward_feature_selection."
+        )
+    from joblib import Parallel, delayed
+
+    y = np.asarray(y)
+    trains = [np.flatnonzero((folds != k) & (folds >= 0)) for k in ids]
+    results = Parallel(n_jobs=n_jobs)(
+        delayed(forward_feature_selection)(estimator, X.iloc[t], y[t], None, PredefinedSplit(folds[t]),
+                                           **options)
+        for t in trains
+    )
+    return {int(k): r for k, r in zip(ids, results, strict=True)}
+
+
+def importance_ranking(estimator: Any, X: pd.DataFrame, y: Any) -> pd.Series:
+    """Features ranked by the importances of one fit of ``estimator`` on ``X``, ``y`` (highest first).
+
+    Returns
+    -------
+    pandas.Series
+        Importance per feature name, sorted descending (ties keep column order).
+    """
+    fitted = clone(estimator).fit(X.to_numpy(np.float32), np.asarray(y))
+    imp = pd.Series(_importances(fitted), index=list(X.columns), name="importance")
+    return imp.sort_values(ascending=False, kind="stable")
 
 
 # --------------------------------------------------------------------------- backward
@@ -334,24 +440,54 @@ def recursive_elimination(
     pick = good.loc[good["n_features"].idxmin(), "features"].split(";")
     selected = [f for f in X.columns if f in set(pick)]
     cand = hist[["step", "n_features", "features", "score", "score_sd"]].copy()
-    return SelectionResult(selected, hist, cand, "recursive_elimination", scoring)
+    return SelectionResult(selected, hist, cand, "recursive_elimination", scoring, tuple(X.columns))
 
 
 # --------------------------------------------------------------------------- output
 
 
 def write_selection(result: SelectionResult, folder: str | Path) -> dict[str, Path]:
-    """Write ``selected_features.json`` and ``selection_history.csv`` into ``folder``.
+    """Write the selected set and the selection path into ``folder``.
+
+    Files: ``selected_features.json`` (method, scoring, set, score),
+    ``selected_features.txt`` (one feature name per line, in selection order;
+    read it back with :func:`read_selected_features`) and
+    ``selection_history.csv``.
 
     Returns
     -------
     dict of str to pathlib.Path
-        ``{"selected": ..., "history": ...}``.
+        ``{"selected": ..., "text": ..., "history": ...}``.
     """
     folder = Path(folder)
     doc = {"method": result.method, "scoring": result.scoring, "selected": list(result.selected),
-           "n_selected": len(result.selected),
-           "score": float(result.history.loc[result.history["features"] == ";".join(result.selected),
-                                             "score"].max())}
+           "n_selected": len(result.selected), "score": result.score, "pool": list(result.pool),
+           "note": "score on the folds that chose the set (optimistic)"}
     return {"selected": write_json(doc, folder / "selected_features.json"),
+            "text": write_selected_features(result.selected, folder / "selected_features.txt"),
             "history": write_table(result.history, folder / "selection_history.csv")}
+
+
+def write_selected_features(features: list[str], path: str | Path) -> Path:
+    """Feature names, one per line, nothing else (so any tool can read the file)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with atomic_path(path) as tmp:
+        tmp.write_text("".join(f"{f}\n" for f in features))
+    return path
+
+
+def read_selected_features(path: str | Path) -> list[str]:
+    """Feature names from a ``selected_features.txt`` (blank lines and ``#`` comments skipped).
+
+    Raises
+    ------
+    ModelError
+        If the file lists no feature.
+    """
+    path = Path(path)
+    names = [ln.strip() for ln in path.read_text().splitlines()]
+    names = [n for n in names if n and not n.startswith("#")]
+    if not names:
+        raise ModelError(f"{path}: no feature names found; expected one feature name per line.")
+    return names

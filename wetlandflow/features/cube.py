@@ -110,3 +110,29 @@ def cube_summary(cube: xr.Dataset) -> pd.DataFrame:
             "max": float(vals.max()) if vals.size else np.nan,
         })
     return pd.DataFrame(rows)
+
+
+def season_variable(attrs: dict[str, dict], season: str) -> str | None:
+    """The cube variable that stands for a season's optical coverage (its NDVI when present), or None."""
+    names = [k for k, a in attrs.items() if a.get("season") == season and a.get("domain") == "optical"]
+    preferred = [n for n in names if n.startswith("ndvi_")]
+    return (preferred or sorted(names) or [None])[0]
+
+
+def season_coverage(cube: xr.Dataset, aoi: xr.DataArray, seasons) -> dict[str, dict]:
+    """Per season, the share of the area's pixels with a cloud-free composite value.
+
+    The share counts pixels inside ``aoi`` (boolean, on the grid) where the
+    season's optical variable (:func:`season_variable`) is finite; ``None``
+    when the cube holds no optical variable of that season.
+    """
+    attrs = {k: dict(v.attrs) for k, v in cube.data_vars.items()}
+    n_area = int(aoi.sum())
+    out = {}
+    for name in seasons:
+        var = season_variable(attrs, name)
+        share = None
+        if var is not None and n_area:
+            share = round(float((cube[var].notnull() & aoi).sum().compute()) / n_area, 4)
+        out[name] = {"variable": var, "share_valid": share}
+    return out

@@ -76,51 +76,38 @@ def mrvbf_slope_threshold(resolution_m: float) -> float:
     return 16.0 * (25.0 / resolution_m) ** (math.log(2) / math.log(3))
 
 
-def _n(x: np.ndarray, t: float, p: float) -> np.ndarray:
-    return 1.0 / (1.0 + (x / t) ** p)
+def _gaussian(a: np.ndarray, sigma: float, take: slice) -> np.ndarray:
+    """``gaussian_filter(a, sigma, mode="nearest")[take, take]``, one axis at a time.
 
-
-def _smooth(z: np.ndarray, sigma: float) -> np.ndarray:
-    """Gaussian smoothing that ignores nodata (normalised convolution)."""
+    The column pass only runs on the rows that are kept, which gives the same
+    values as filtering everything and subsampling afterwards.
+    """
     from scipy import ndimage
 
+    rows = ndimage.gaussian_filter1d(a, sigma, axis=0, mode="nearest")[take]
+    return ndimage.gaussian_filter1d(rows, sigma, axis=1, mode="nearest")[:, take]
+
+
+def _smooth(z: np.ndarray, sigma: float, take: slice = slice(None)) -> np.ndarray:
+    """Gaussian smoothing that ignores nodata (normalised convolution), kept at ``[take, take]``."""
     valid = ~np.isnan(z)
-    num = ndimage.gaussian_filter(np.where(valid, z, 0.0), sigma, mode="nearest")
-    den = ndimage.gaussian_filter(valid.astype(np.float64), sigma, mode="nearest")
+    if valid.all():  # the weights of the normalising pass would sum to 1: skip it
+        return np.ascontiguousarray(_gaussian(z, sigma, take))
+    num = _gaussian(np.where(valid, z, 0.0), sigma, take)
+    den = _gaussian(valid.astype(np.float64), sigma, take)
     with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(valid, num / den, np.nan)
+        return np.ascontiguousarray(np.where(valid[take, take], num / den, np.nan))
 
 
-def _slope_percent(z: np.ndarray, cs: float) -> np.ndarray:
-    p, q = K.horn_gradient(z, cs, cs)
-    return 100.0 * np.hypot(p, q)
-
-
-def _linear_axis(a: np.ndarray, pos: np.ndarray, axis: int) -> np.ndarray:
-    """Linear interpolation of ``a`` at fractional indices ``pos`` along ``axis`` (clamped at the ends)."""
-    size = a.shape[axis]
-    if size == 1:
-        return np.repeat(a, pos.size, axis=axis)
-    pos = np.clip(pos, 0, size - 1)
-    i0 = np.minimum(np.floor(pos).astype(np.int64), size - 2)
-    w = pos - i0
-    shape = [1, 1]
-    shape[axis] = -1
-    w = w.reshape(shape)
-    return np.take(a, i0, axis=axis) * (1 - w) + np.take(a, i0 + 1, axis=axis) * w
-
-
-def _to_base(coarse: np.ndarray, offset: float, factor: int, shape: tuple[int, int]) -> np.ndarray:
-    """Bilinear interpolation from a coarse grid whose cell k sits at base index offset + k * factor."""
+def _fill_nodata(coarse: np.ndarray) -> np.ndarray:
+    """Give nodata cells of a coarse grid their nearest valid value, so interpolation does not spread NaN."""
     from scipy import ndimage
 
-    if np.isnan(coarse).all():
-        return np.full(shape, np.nan)
-    if np.isnan(coarse).any():  # give nodata cells their nearest valid value so they do not spread NaN
-        idx = ndimage.distance_transform_edt(np.isnan(coarse), return_distances=False, return_indices=True)
-        coarse = coarse[tuple(idx)]
-    rows = _linear_axis(coarse, (np.arange(shape[0]) - offset) / factor, 0)
-    return _linear_axis(rows, (np.arange(shape[1]) - offset) / factor, 1)
+    missing = np.isnan(coarse)
+    if not missing.any() or missing.all():
+        return coarse
+    idx = ndimage.distance_transform_edt(missing, return_distances=False, return_indices=True)
+    return coarse[tuple(idx)]
 
 
 def _auto_steps(shape: tuple[int, int]) -> int:
@@ -131,44 +118,62 @@ def _auto_steps(shape: tuple[int, int]) -> int:
     return steps
 
 
-def _flat_and_position(z: np.ndarray, cs: float, t: float, radius: float, ridge: bool, t_pctl: float):
-    flat = _n(_slope_percent(z, cs), t, 4)
-    pctl = K.fraction_lower_in_circle(z, radius)
-    return flat, _n(1.0 - pctl if ridge else pctl, t_pctl, 3)
-
-
-def _combine(index: np.ndarray, vf: np.ndarray, s: int) -> np.ndarray:
-    w = 1.0 - _n(vf, 0.4, 6)
-    return w * (s - 1 + vf) + (1.0 - w) * index
-
-
-def _multiresolution(z, cs, *, ridge, t1, t_pctl, steps, sigma):
-    flat1, pos1 = _flat_and_position(z, cs, t1, 3, ridge, t_pctl)
-    index = 1.0 - _n(flat1 * pos1, 0.3, 4)
-    level = _smooth(z, sigma)
-    flat_s, pos_s = _flat_and_position(level, cs, t1 / 2, 6, ridge, t_pctl)
-    combined = flat1 * flat_s
-    index = _combine(index, 1.0 - _n(combined * pos_s, 0.3, 4), 2)
+def _coarse_levels(level, cs, shape, *, ridge, t1, t_pctl, steps, sigma):
+    """Flatness and lowness of steps 3..steps on their coarse grids, packed for ``K.merge_steps``."""
+    flats, positions, shapes, weights = [], [], [], []
     offset, factor = 0.0, 1
     for s in range(3, steps + 1):
-        level = _smooth(level, sigma)[1::3, 1::3]
+        level = _smooth(level, sigma, slice(1, None, 3))
         offset, factor = offset + factor, factor * 3
-        flat_c, pos_c = _flat_and_position(level, cs * factor, t1 / 2 ** (s - 1), 6, ridge, t_pctl)
-        combined = combined * _to_base(flat_c, offset, factor, z.shape)
-        vf = 1.0 - _n(combined * _to_base(pos_c, offset, factor, z.shape), 0.3, 4)
-        index = _combine(index, vf, s)
-    return np.where(np.isnan(z), np.nan, index)
+        flats.append(_fill_nodata(K.flatness(level, cs * factor, t1 / 2 ** (s - 1))).ravel())
+        positions.append(_fill_nodata(K.position(level, 6.0, t_pctl, ridge, _NONE)).ravel())
+        shapes.append(level.shape)
+        weights.append(K.axis_weights(level.shape[0], shape[0], offset, factor)
+                       + K.axis_weights(level.shape[1], shape[1], offset, factor))
+    starts = np.cumsum([0] + [f.size for f in flats])[:-1].astype(np.int64)
+    pack = lambda parts: np.concatenate(parts) if parts else np.zeros(0)  # noqa: E731
+    stack = lambda k, n, dtype: np.array([w[k] for w in weights], dtype=dtype).reshape(-1, n)  # noqa: E731
+    return (pack(flats), pack(positions), starts, np.array(shapes, dtype=np.int64).reshape(-1, 2),
+            stack(0, shape[0], np.int64), stack(1, shape[0], np.float64),
+            stack(2, shape[1], np.int64), stack(3, shape[1], np.float64))
+
+
+_NONE = np.zeros((0, 0))  # "no combined flatness": K.position returns the lowness itself
+
+
+def _multiresolution(values, cs, *, ridge, t1, t_pctl, steps, sigma):
+    """MRVBF (or MRRTF when ``ridge``) of the DEM ``values``; see the module docstring.
+
+    At most four base-size float64 grids are alive at once: the smoothed DEM,
+    the combined flatness CF, VF of step 1 (which becomes the result) and one
+    more (the DEM, F2 or VF2); steps 1 and 2 fuse flatness with lowness per
+    pixel, and every coarser step is merged in one pass at the end.
+    """
+    z = np.ascontiguousarray(values, dtype=np.float64)
+    combined = K.flatness(z, cs, t1)
+    vf1 = K.position(z, 3.0, t_pctl, ridge, combined)
+    level = _smooth(z, sigma)
+    del z
+    flat2 = K.flatness(level, cs, t1 / 2)
+    np.multiply(combined, flat2, out=combined)  # CF2 = F1 F2
+    del flat2
+    vf2 = K.position(level, 6.0, t_pctl, ridge, combined)
+    coarse = _coarse_levels(level, cs, values.shape, ridge=ridge, t1=t1, t_pctl=t_pctl, steps=steps, sigma=sigma)
+    del level
+    index = K.merge_steps(vf1, vf2, combined, *coarse)
+    index[np.isnan(values)] = np.nan
+    return index
 
 
 def _run(dem, *, ridge, t_slope, t_pctl, steps, smoothing_sigma, cellsize):
     _check_dem(dem)
     cs = _square_cellsize(dem, cellsize)
-    z = np.ascontiguousarray(_as_float_array(dem), dtype=np.float64)
-    n_steps = _auto_steps(z.shape) if steps is None else int(steps)
+    values = _as_float_array(dem)
+    n_steps = _auto_steps(values.shape) if steps is None else int(steps)
     if n_steps < 2:
         raise ValueError(f"steps must be at least 2, got {steps!r}.")
     t1 = mrvbf_slope_threshold(cs) if t_slope is None else float(t_slope)
-    out = _multiresolution(z, cs, ridge=ridge, t1=t1, t_pctl=t_pctl, steps=n_steps, sigma=smoothing_sigma)
+    out = _multiresolution(values, cs, ridge=ridge, t1=t1, t_pctl=t_pctl, steps=n_steps, sigma=smoothing_sigma)
     params = {
         "steps": n_steps,
         "t_slope_initial_percent": t1,

@@ -102,9 +102,13 @@ __all__ = [
 # ------------------------------------------------------------------ filling
 
 
+def _filled_padded(values: np.ndarray, epsilon: bool) -> np.ndarray:
+    """Filled DEM with the one-cell NaN ring the routing kernels work on."""
+    return K.fill_padded(values, epsilon)
+
+
 def _filled(values: np.ndarray, epsilon: bool) -> np.ndarray:
-    hi = np.array([np.inf], dtype=values.dtype)
-    return K.priority_flood(values.copy(), bool(epsilon), hi, _index_dummy(values.size))
+    return K.fill_array(values, epsilon)
 
 
 def fill_depressions(
@@ -120,8 +124,10 @@ def fill_depressions(
     dem : xarray.DataArray
         DEM (m), dims ``("y", "x")``, NaN = nodata.
     method : {"priority_flood"}
-        Barnes, Lehman & Mulla (2014), "improved" variant: a binary min-heap
-        plus a FIFO queue for cells raised inside depressions.
+        Barnes, Lehman & Mulla (2014), "improved" variant: a priority queue
+        for cells above the flood level plus a FIFO queue for cells raised
+        inside depressions.  The priority queue is a bitset over the cells'
+        ranks in a radix sort of the elevations (exact order, no heap).
     epsilon : bool
         If True, each cell reached from a lower-or-equal level is raised to the
         next representable float above that level (``numpy.nextafter`` in the
@@ -155,7 +161,7 @@ def fill_depressions(
         long_name="depression-filled elevation",
         units="m",
         domain="terrain",
-        method="priority-flood depression filling (binary heap + FIFO pit queue)"
+        method="priority-flood depression filling (rank-ordered priority queue + FIFO pit queue)"
         + (", epsilon (nextafter) gradient on flats" if epsilon else ", flat fill"),
         reference=BARNES,
         parameters={"conditioning": method, "epsilon": bool(epsilon), "connectivity": 8},
@@ -398,21 +404,21 @@ _MFD_WEIGHTS = {"mfd": (1.0, 1.0), "mfd_quinn": (0.5, 0.354)}
 
 
 def _routing_surface(dem: xr.DataArray, conditioned: bool) -> np.ndarray:
+    """The routing surface padded with one ring of NaN (see ``K.pad_nan``), in the DEM's float dtype."""
     values = _as_float_array(dem)
-    return _filled(values, True) if conditioned else values
+    return _filled_padded(values, True) if conditioned else K.pad_nan(values)
 
 
-def _route(z: np.ndarray, method: str, cs: float, exponent: float) -> tuple[np.ndarray, np.ndarray | None]:
-    """Contributing area (m^2) and, for D8, the receiver codes."""
-    z64 = np.ascontiguousarray(z, dtype=np.float64)
-    dummy = _index_dummy(z.size)
+def _route(zp: np.ndarray, method: str, cs: float, exponent: float) -> tuple[np.ndarray, np.ndarray | None]:
+    """Contributing area (m^2) and, for D8, the receiver codes, from a NaN-padded surface."""
+    dummy = _index_dummy(zp.size)
     if method == "d8":
-        rec = K.d8_receivers(z64, cs, cs)
-        acc, _ = K.d8_accumulate(rec, cs * cs, dummy)
+        rec = K.d8_receivers(zp, cs, cs)
+        acc, _ = K.d8_accumulate(rec, cs * cs, dummy, False)
         return acc, rec
     w_card, w_diag = _MFD_WEIGHTS[method]
     p = float(exponent) if method == "mfd" else 1.0  # Quinn et al. (1991) weight by tan(beta) itself
-    return K.mfd_accumulate(z64, cs, cs, p, w_card, w_diag, cs * cs, dummy), None
+    return K.mfd_accumulate(zp, cs, cs, p, w_card, w_diag, cs * cs, dummy)[1:-1, 1:-1], None
 
 
 def _routing_params(method: str, conditioned: bool, exponent: float, cs: float) -> dict[str, Any]:
@@ -442,7 +448,10 @@ def flow_accumulation(
     """Upslope contributing area of every cell, including the cell itself (m^2).
 
     Computed in memory (a global operation).  Cells are visited in
-    topological order with an O(n) queue (Kahn's algorithm) inside numba.
+    topological order in O(n) inside numba (Kahn's algorithm; for D8 as
+    walks down the flow paths).  The routing kernels work on float32 DEMs
+    directly (differences are taken in float64), so a float32 DEM costs no
+    float64 copy.
 
     Parameters
     ----------
@@ -485,8 +494,8 @@ def flow_accumulation(
     )
 
 
-def _sca_array(z: np.ndarray, method: str, cs: float, exponent: float) -> np.ndarray:
-    acc, rec = _route(z, method, cs, exponent)
+def _sca_array(zp: np.ndarray, method: str, cs: float, exponent: float) -> np.ndarray:
+    acc, rec = _route(zp, method, cs, exponent)
     if rec is None:
         return acc / cs
     return acc / np.where((rec >= 0) & (rec % 2 == 1), cs / np.sqrt(2.0), cs)
@@ -591,9 +600,9 @@ def topographic_wetness_index(
     if not min_slope > 0:
         raise ValueError(f"min_slope must be a positive tan(beta), got {min_slope!r}; 0.001 is usual.")
     cs = _square_cellsize(dem, cellsize)
-    z = _routing_surface(dem, True)
-    sca = _sca_array(z, method, cs, exponent)
-    tan_b = np.maximum(K.horn_block(z, dx=cs, dy=cs, what="slope"), min_slope)
+    zp = _routing_surface(dem, True)
+    sca = _sca_array(zp, method, cs, exponent)
+    tan_b = np.maximum(K.horn_block(zp[1:-1, 1:-1], dx=cs, dy=cs, what="slope"), min_slope)
     params = _routing_params(method, True, exponent, cs)
     params.update(min_slope=min_slope, slope="Horn 3x3 on the conditioned DEM")
     return with_attrs(
@@ -611,9 +620,10 @@ def topographic_wetness_index(
 # ------------------------------------------------------------------ HAND, DTW
 
 
-def _channels(z: np.ndarray, cs: float, threshold_m2: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    rec = K.d8_receivers(np.ascontiguousarray(z, dtype=np.float64), cs, cs)
-    acc, order = K.d8_accumulate(rec, cs * cs, _index_dummy(z.size))
+def _channels(zp: np.ndarray, cs: float, threshold_m2: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """D8 receivers, channel mask and upstream-first order from a NaN-padded surface."""
+    rec = K.d8_receivers(zp, cs, cs)
+    acc, order = K.d8_accumulate(rec, cs * cs, _index_dummy(zp.size), True)
     return rec, acc >= threshold_m2, order
 
 
@@ -651,9 +661,9 @@ def height_above_nearest_drainage(
     """
     _check_dem(dem)
     cs = _square_cellsize(dem, cellsize)
-    z = np.ascontiguousarray(_routing_surface(dem, True), dtype=np.float64)
-    rec, channel, order = _channels(z, cs, channel_threshold_m2)
-    hand = K.hand_from_order(z, rec, channel, order)
+    zp = _routing_surface(dem, True)
+    rec, channel, order = _channels(zp, cs, channel_threshold_m2)
+    hand = K.hand_from_order(zp[1:-1, 1:-1], rec, channel, order)
     return with_attrs(
         _wrap(dem, hand),
         "hand",
@@ -679,8 +689,7 @@ def _water_sources(
         if water_mask.shape != dem.shape:
             raise GridMismatchError(f"water_mask has shape {water_mask.shape}, the DEM {dem.shape}.")
         return np.asarray(water_mask.data, dtype=bool), {"sources": "water_mask"}
-    z = np.ascontiguousarray(_routing_surface(dem, True), dtype=np.float64)
-    _, channel, _ = _channels(z, cs, threshold)
+    _, channel, _ = _channels(_routing_surface(dem, True), cs, threshold)
     return channel, {"sources": "d8 channels", "channel_threshold_m2": threshold}
 
 
