@@ -500,6 +500,45 @@ def test_spatial_grid_search_passes_groups_and_subset_coords():
     sub = subset_splitter(BufferedSplitter(inner, 100.0, coords=xy), np.arange(10))
     assert sub.coords.shape == (10, 2) and sub.base_splitter.coords.shape == (10, 2)
     assert inner.coords.shape == xy.shape  # the original is untouched
+    # every candidate's inner score is kept; the chosen one has rank 1 in its outer fold
+    assert len(res.candidates) == 3 * 2
+    for f, best in enumerate(res.best_params):
+        chosen = res.candidates[(res.candidates["outer_fold"] == f) & (res.candidates["rank"] == 1)]
+        assert str(best) in set(chosen["params"])
+
+
+@pytest.mark.reference
+def test_spatial_early_stopping_scores_the_given_folds_like_scikit_learn_log_loss():
+    """The stopping curve is the fold-mean of scikit-learn's ``log_loss`` of models fitted on the other folds.
+
+    Checked against scikit-learn's ``log_loss`` (a general-purpose reference library) and XGBoost's own
+    training API; the stopping rule is xgboost.cv's (the last history row is the best round).
+    """
+    import xgboost as xgb
+    from sklearn.metrics import log_loss
+
+    from wetlandflow.nested import spatial_early_stopping
+
+    s = make_samples(60)
+    X, y, g, xy = arrays(s)
+    folds = SpatialBlockKFold(3, 2500, random_state=0, coords=xy, on_class_missing="ignore").split(X, y, g)
+    fold_of = np.empty(len(y), int)
+    for k, (_, test) in enumerate(folds):
+        fold_of[test] = k
+    params = {"max_depth": 2, "learning_rate": 0.3, "nthread": 1}
+    best, hist = spatial_early_stopping(X, y, fold_of, params=params, max_rounds=40, patience=5)
+    assert best == len(hist) and 1 <= best <= 40
+    assert hist["test-mlogloss-mean"].iloc[-1] == hist["test-mlogloss-mean"].min()
+    labels, yi = np.unique(y, return_inverse=True)
+    losses = []
+    for k in np.unique(fold_of):
+        tr, te = fold_of != k, fold_of == k
+        booster = xgb.train({"tree_method": "hist", **params, "objective": "multi:softprob",
+                             "num_class": labels.size, "seed": 0},
+                            xgb.DMatrix(X[tr], label=yi[tr]), num_boost_round=best)
+        p = booster.predict(xgb.DMatrix(X[te]))
+        losses.append(log_loss(yi[te], p, labels=np.arange(labels.size)))
+    assert np.mean(losses) == pytest.approx(hist["test-mlogloss-mean"].iloc[-1], rel=1e-3)
 
 
 def test_moved_functions_are_re_exported_by_validation():
