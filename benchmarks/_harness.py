@@ -11,14 +11,15 @@ from collections.abc import Callable
 CASES: dict[str, dict] = {}
 
 
-def case(name: str, *, unit: str, description: str, baseline: str):
+def case(name: str, *, unit: str, description: str, baseline: str, per: float = 1e6):
     """Register a benchmark case.  Variants are added with the returned object's ``variant`` decorator.
 
     Every variant returns ``(work, seconds)``: the amount of work done (pixels, rows) and the median time.
-    ``baseline`` names the variant the others are compared with.
+    ``baseline`` names the variant the others are compared with.  Throughput is work / seconds / ``per``
+    (1e6 for Mpx/s; 1 for rows/s).
     """
     entry = CASES.setdefault(name, {"unit": unit, "description": description, "baseline": baseline,
-                                    "variants": {}})
+                                    "per": per, "variants": {}})
 
     class _Adder:
         @staticmethod

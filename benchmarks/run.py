@@ -56,13 +56,13 @@ def figures_for(name: str, entry: dict, results: dict[str, dict]) -> list[dict]:
         if "error" in res:
             out.append({"case": name, "variant": label, "error": res["error"]})
             continue
-        rate = res["work"] / res["seconds"] / 1e6
+        rate = res["work"] / res["seconds"] / entry.get("per", 1e6)
         fig = {"case": name, "name": f"{name} [{label}] throughput", "value": rate, "unit": entry["unit"],
                "seconds": res["seconds"], "baseline": f"{name} [{base_label}]"}
         mem = {"case": name, "name": f"{name} [{label}] peak memory", "value": res["peak_rss_mb"], "unit": "MB",
                "baseline": f"{name} [{base_label}]"}
         if base and "error" not in base:
-            fig["baseline_value"] = base["work"] / base["seconds"] / 1e6
+            fig["baseline_value"] = base["work"] / base["seconds"] / entry.get("per", 1e6)
             fig["ratio"] = rate / fig["baseline_value"]
             mem["baseline_value"] = base["peak_rss_mb"]
             mem["ratio"] = res["peak_rss_mb"] / base["peak_rss_mb"]

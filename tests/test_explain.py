@@ -325,3 +325,34 @@ def test_shap_map_equals_flattened_window(xgb_model, data, tmp_path):
     with rasterio.open(path) as src:
         np.testing.assert_allclose(src.read(1), m.values, atol=1e-6)
         assert src.crs.to_epsg() == 32633
+
+
+@pytest.mark.reference
+def test_window_contributions_add_up_to_the_margin_of_every_pixel_and_class(xgb_model, xgb_sv, data):
+    """Local accuracy on a map window: base value + contributions = XGBoost's margin, per pixel and class.
+
+    Property (local accuracy) from Lundberg, Erion, Chen et al. (2020) From local explanations to global
+    understanding with explainable AI for trees, Nature Machine Intelligence 2, 56-67; the margin comes
+    from XGBoost itself (``output_margin=True``).
+    """
+    from wetlandflow.explain import contribution_map, window_contributions
+
+    cube = _cube(data)
+    win = (slice(2, 10), slice(0, 10))
+    contrib = window_contributions(xgb_model, cube, FEATURES, window=win)
+    assert contrib.dims == ("feature", "class", "y", "x") and contrib.shape[2:] == (8, 10)
+    X = cube[FEATURES].isel(y=win[0], x=win[1]).to_dataarray("feature").transpose("y", "x", "feature")
+    X = X.values.reshape(-1, len(FEATURES)).astype(np.float32)
+    margin = xgb_model.model_.predict(X, output_margin=True)
+    present = list(xgb_model.present_)
+    total = (xgb_sv["base_value"] + contrib.sum("feature")).sel({"class": present})
+    total = total.transpose("y", "x", "class").values.reshape(-1, len(present))
+    ok = np.isfinite(X).any(axis=1)
+    np.testing.assert_allclose(total[ok], margin[ok], atol=1e-4)
+    # a domain map is the sum of its features' maps
+    domains = {"signal_a": "optical", "signal_b": "optical"}
+    d = contribution_map(contrib, cube, "bog", domain="optical", domains=domains)
+    parts = [contribution_map(contrib, cube, "bog", feature=f) for f in ("signal_a", "signal_b")]
+    np.testing.assert_allclose(d.values, (parts[0] + parts[1]).values, atol=1e-6)
+    with pytest.raises(ParameterError, match="class_name"):
+        contribution_map(contrib, cube, "no_such_class", feature="signal_a")

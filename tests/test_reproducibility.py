@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import shutil
 
 import pandas as pd
 import pytest
@@ -43,7 +44,12 @@ def test_same_seed_gives_identical_tables_and_pixels(two_runs):
 
 @pytest.mark.slow
 def test_changed_seed_changes_results(light_demo, two_runs):
+    # Started from a copy of the first run's folder: the cube does not depend on the seed and is reused,
+    # everything the seed touches (pixel subsample, folds, model) is recomputed.
+    shutil.copytree(two_runs[0].run_dir, light_demo.parent / "runs" / "rep_c")
     c = run_project(_variant(light_demo, "rep_c", **{"project.seed": 99}), progress=False)
+    assert c.manifest["steps"]["features"].get("reused")
+    assert not any(c.manifest["steps"][s].get("reused") for s in ("samples", "validation", "model", "mapping"))
     fa, fc = _fingerprint(two_runs[0]), _fingerprint(c)
     assert fa["rasters"]["probability"] != fc["rasters"]["probability"]
     assert not fa["tables"]["samples.parquet"].equals(fc["tables"]["samples.parquet"])

@@ -19,7 +19,8 @@ def test_run_folder_is_complete(demo_run):
                 "validation/metrics.json", "validation/oof_predictions.parquet", "model/bundle.json",
                 "maps/probability.tif", "maps/class.tif", "maps/confidence.tif", "maps/class_final.tif",
                 "maps/dissimilarity.tif", "maps/applicability.tif", "inventory.gpkg", "inventory_areas.csv",
-                "explain/importance.csv", "explain/domain_importance.csv", "explain/drivers.json", "areas.csv"):
+                "explain/importance.csv", "explain/domain_importance.csv", "explain/drivers.json", "areas.csv",
+                "explain/shap_maps.png", "explain/waterfall_centre.png", "explain/ranking_stability.csv"):
         assert (d / rel).exists(), rel
     manifest = json.loads((d / "manifest.json").read_text())
     assert all(s["status"] == "done" for s in manifest["steps"].values())
@@ -31,6 +32,9 @@ def test_run_folder_is_complete(demo_run):
     assert manifest["command"] == "wetlandflow run project.toml"
     assert set(manifest["steps"]["features"]["season_coverage"]) == set(manifest["project"]["seasons"])
     assert not list(d.rglob("*.partial"))
+    drivers = json.loads((d / "explain" / "drivers.json").read_text())
+    assert drivers["maps"] and all((d / "explain" / m["file"]).exists() for m in drivers["maps"].values())
+    assert -1 <= drivers["ranking_stability"]["min_spearman_rho"] <= drivers["ranking_stability"]["mean_spearman_rho"] <= 1
 
 
 def test_maps_are_on_the_grid(demo_run):

@@ -44,8 +44,8 @@ _DEFAULT_CHUNK_ROWS = 50_000
 
 __all__ = [
     "CLUSTER_NOTE", "cluster_importance", "domain_importance", "explain_budget", "global_importance",
-    "ranking_stability", "shap_interactions", "shap_map", "shap_values", "stratified_subsample",
-    "write_shap_map",
+    "contribution_map", "ranking_stability", "shap_interactions", "shap_map", "shap_values", "stratified_subsample",
+    "window_contributions", "write_shap_map",
 ]
 
 
@@ -536,10 +536,9 @@ def _map_domain(cube: xr.Dataset, feature: str | None, domain: str | None) -> st
     return d if d in DOMAINS else "user"
 
 
-def shap_map(model: WetlandClassifier, cube: xr.Dataset, features: list[str], class_name: str, *,
-             window: tuple[slice, slice], feature: str | None = None, domain: str | None = None,
-             domains: Mapping[str, str] | None = None) -> xr.DataArray:
-    """Per-pixel SHAP contribution of one feature (or a domain's features summed) to one class.
+def window_contributions(model: WetlandClassifier, cube: xr.Dataset, features: list[str], *,
+                         window: tuple[slice, slice]) -> xr.DataArray:
+    """SHAP contributions of every feature to every class for each pixel of a grid window.
 
     Parameters
     ----------
@@ -548,10 +547,77 @@ def shap_map(model: WetlandClassifier, cube: xr.Dataset, features: list[str], cl
         Feature cube, one (y, x) variable per feature.
     features : list of str
         The model's features in training order.
-    class_name : str
-        Class of the scheme to explain.
     window : (slice, slice)
         Row and column index slices of the grid (like a raster window).
+
+    Returns
+    -------
+    xarray.DataArray
+        (feature, class, y, x), float32, NaN where every feature is missing;
+        same scale as :func:`shap_values` (``attrs["output_scale"]``).  Maps of
+        several features, domains or classes are slices of this one
+        computation (:func:`contribution_map`).
+
+    Notes
+    -----
+    Computed in memory for the window (the model needs whole pixels); choose
+    the window size with :func:`explain_budget`.
+    """
+    block, X, ok = _window_matrix(cube, features, window)
+    k = len(model.classes_)
+    contrib = np.full((X.shape[0], len(features), k), np.nan, np.float32)
+    if ok.any():
+        contrib[ok] = shap_values(model, X[ok], features=features)["values"].values
+    ny, nx = block.sizes["y"], block.sizes["x"]
+    out = xr.DataArray(contrib.transpose(1, 2, 0).reshape(len(features), k, ny, nx),
+                       dims=("feature", "class", "y", "x"),
+                       coords={"feature": list(features), "class": [str(c) for c in model.classes_],
+                               "y": block["y"].values, "x": block["x"].values})
+    out.attrs["output_scale"] = _output_scale(model)
+    return out
+
+
+def contribution_map(contrib: xr.DataArray, cube: xr.Dataset, class_name: str, *, feature: str | None = None,
+                     domain: str | None = None, domains: Mapping[str, str] | None = None) -> xr.DataArray:
+    """One feature's (or one domain's summed) contribution to one class, from :func:`window_contributions`."""
+    if (feature is None) == (domain is None):
+        raise ParameterError("give exactly one of feature= or domain= (with domains=)")
+    classes = [str(c) for c in contrib["class"].values]
+    if class_name not in classes:
+        raise ParameterError(f"class_name {class_name!r} is not in the scheme {classes}")
+    features = [str(f) for f in contrib["feature"].values]
+    if domain is not None:
+        chosen = [f for f in features if (domains or {}).get(f) == domain]
+        if not chosen:
+            raise ParameterError(f"no feature maps to domain {domain!r}; domains= must map features to domains")
+    else:
+        if feature not in features:
+            raise ParameterError(f"feature {feature!r} is not one of the model's features {features[:8]}...")
+        chosen = [feature]
+    part = contrib.sel(feature=chosen, **{"class": class_name})
+    out = part.sum("feature", min_count=1).drop_vars("class")
+    scale = contrib.attrs.get("output_scale", "margin")
+    what = feature if feature is not None else f"{domain} domain"
+    out = with_attrs(out, f"shap_{feature or domain}_{class_name}",
+                     long_name=f"SHAP contribution of {what} to {class_name}",
+                     units="log-odds" if scale == "margin" else "probability",
+                     domain=_map_domain(cube, feature, domain), method="exact TreeSHAP (tree-path-dependent)",
+                     reference=REFERENCE, parameters={"class": class_name, "features": chosen,
+                                                      "output_scale": scale})
+    return _copy_crs(cube, out)
+
+
+def shap_map(model: WetlandClassifier, cube: xr.Dataset, features: list[str], class_name: str, *,
+             window: tuple[slice, slice], feature: str | None = None, domain: str | None = None,
+             domains: Mapping[str, str] | None = None) -> xr.DataArray:
+    """Per-pixel SHAP contribution of one feature (or a domain's features summed) to one class.
+
+    Parameters
+    ----------
+    model, cube, features, window
+        See :func:`window_contributions`.
+    class_name : str
+        Class of the scheme to explain.
     feature : str, optional
         The feature to map; or give ``domain`` and ``domains`` to sum a domain.
     domain : str, optional
@@ -564,41 +630,18 @@ def shap_map(model: WetlandClassifier, cube: xr.Dataset, features: list[str], cl
     xarray.DataArray
         (y, x) on the window's coordinates, NaN where every feature is missing;
         the cube's CRS is written when it has one.  Same scale as
-        :func:`shap_values` (see ``attrs["units"]``).
-
-    Notes
-    -----
-    Computed in memory for the window (the model needs whole pixels); choose
-    the window size with :func:`explain_budget`.
+        :func:`shap_values` (see ``attrs["units"]``).  For several maps of one
+        window, compute :func:`window_contributions` once and slice it with
+        :func:`contribution_map`.
     """
     if (feature is None) == (domain is None):
         raise ParameterError("give exactly one of feature= or domain= (with domains=) to shap_map")
     if class_name not in list(model.classes_):
         raise ParameterError(f"class_name {class_name!r} is not in the scheme {list(model.classes_)}")
-    if domain is not None:
-        chosen = [f for f in features if (domains or {}).get(f) == domain]
-        if not chosen:
-            raise ParameterError(f"no feature maps to domain {domain!r}; domains= must map features to domains")
-    else:
-        if feature not in features:
-            raise ParameterError(f"feature {feature!r} is not one of the model's features {features[:8]}...")
-        chosen = [feature]
-    block, X, ok = _window_matrix(cube, features, window)
-    contrib = np.full(X.shape[0], np.nan, np.float32)
-    if ok.any():
-        sv = shap_values(model, X[ok], features=features)["values"]
-        contrib[ok] = sv.sel(feature=chosen, **{"class": class_name}).sum("feature").values
-    out = xr.DataArray(contrib.reshape(block.sizes["y"], block.sizes["x"]), dims=("y", "x"),
-                       coords={"y": block["y"].values, "x": block["x"].values})
-    scale = _output_scale(model)
-    what = feature if feature is not None else f"{domain} domain"
-    out = with_attrs(out, f"shap_{feature or domain}_{class_name}",
-                     long_name=f"SHAP contribution of {what} to {class_name}",
-                     units="log-odds" if scale == "margin" else "probability",
-                     domain=_map_domain(cube, feature, domain), method="exact TreeSHAP (tree-path-dependent)",
-                     reference=REFERENCE, parameters={"class": class_name, "features": chosen,
-                                                      "output_scale": scale})
-    return _copy_crs(cube, out)
+    if feature is not None and feature not in features:
+        raise ParameterError(f"feature {feature!r} is not one of the model's features {features[:8]}...")
+    contrib = window_contributions(model, cube, features, window=window)
+    return contribution_map(contrib, cube, class_name, feature=feature, domain=domain, domains=domains)
 
 
 def _copy_crs(cube: xr.Dataset, out: xr.DataArray) -> xr.DataArray:

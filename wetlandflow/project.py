@@ -139,6 +139,8 @@ class OutputSection:
     connectivity: int = 8
     explain: bool = True
     explain_rows: int = 1200
+    explain_window: int = 64  # pixels per side of the window mapped with SHAP (explain/maps/)
+    explain_seeds: int = 3  # models refitted with this many seeds for the ranking stability (< 2 = off)
 
 
 @dataclass(frozen=True)

@@ -531,8 +531,20 @@ def section_drivers(run: RunFolder) -> Section:
                             for c, f in d.get("top_drivers", {}).items()]), "Top drivers per class")]
     if d.get("cluster_note"):
         blocks.append(Paragraph(d["cluster_note"]))
+    stab = d.get("ranking_stability")
+    if stab:
+        blocks.append(Paragraph(
+            f"Stability of the ranking: refitted on {len(stab['seeds']) - 1} bootstrap samples of the plots, the "
+            f"models' importance rankings agree with the final model's with a mean Spearman rank correlation of "
+            f"{stab['mean_spearman_rho']:.2f} (lowest {stab['min_spearman_rho']:.2f}). "
+            + ("Rankings this stable can be read as the model's." if stab["min_spearman_rho"] >= 0.8 else
+               "The ranking depends on which plots were sampled: read the top features as candidates, not as "
+               "a fixed order.")))
     _figure(blocks, "importance.png", run.png("explain/importance.png"), "Mean absolute SHAP value per feature.")
     _figure(blocks, "domains.png", run.png("explain/domains.png"), "Share of SHAP importance by data domain.")
+    _figure(blocks, "shap_maps.png", run.png("explain/shap_maps.png"),
+            "SHAP contribution of each class's leading data domain over a window at the centre of the grid "
+            "(red raises the class's score, blue lowers it).")
     return Section("Drivers per class", blocks)
 
 

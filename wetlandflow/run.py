@@ -201,6 +201,24 @@ def training_weights(project: Project, samples: pd.DataFrame) -> np.ndarray | No
                           on_infeasible="ignore")
 
 
+def refit_with_seed(project: Project, samples: pd.DataFrame, features: list[str], seed: int) -> WetlandClassifier:
+    """The final model refitted on a bootstrap of the plots drawn with ``seed`` (and that model seed).
+
+    Plots, not pixels, are drawn with replacement within each class, so a refit sees another plausible
+    set of field plots; the stability of the importance ranking over such refits says how much of it
+    rests on particular plots.  (A seed alone changes nothing in XGBoost without row subsampling.)
+    """
+    rng = np.random.default_rng(seed)
+    plots = samples.groupby("class")["plot_id"].unique()
+    drawn = np.concatenate([rng.choice(p, size=len(p), replace=True) for p in plots])
+    counts = pd.Series(drawn).value_counts()
+    boot = samples.loc[samples["plot_id"].isin(counts.index)]
+    boot = boot.loc[boot.index.repeat(boot["plot_id"].map(counts).to_numpy())]
+    model = make_model(project).set_params(random_state=seed)
+    return model.fit(boot[features].to_numpy(np.float32), boot["class"].to_numpy(),
+                     sample_weight=training_weights(project, boot))
+
+
 def model_features(project: Project, samples: pd.DataFrame) -> list[str]:
     """The features a model trains on: ``model.features`` if given (checked against the cube), else all."""
     available = feature_names(samples)
@@ -404,13 +422,16 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
         areas = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
 
     if project.output.explain:
-        k_exp = step_key(k_model, cfg["output"]["explain_rows"], cfg["validation"]["block_size_m"], seed)
+        explain_cfg = [cfg["output"][k] for k in ("explain_rows", "explain_window", "explain_seeds")]
+        k_exp = step_key(k_model, k_feat, explain_cfg, cfg["validation"]["block_size_m"], seed)
         if not manifest.reusable("explain", k_exp, [run_dir / "explain" / "drivers.json"]):
             with manifest.step("explain", k_exp) as rec:
-                rec.update(write_explanations(model, samples, features,
-                                              {k: dict(v.attrs) for k, v in cube.data_vars.items()},
-                                              run_dir / "explain", n_rows=project.output.explain_rows, seed=seed,
-                                              block_size_m=project.validation.block_size_m))
+                rec.update(write_explanations(model, samples, features, cube, run_dir / "explain",
+                                              n_rows=project.output.explain_rows, seed=seed,
+                                              block_size_m=project.validation.block_size_m,
+                                              window_px=project.output.explain_window,
+                                              refit=lambda s: refit_with_seed(project, samples, features, s),
+                                              stability_seeds=project.output.explain_seeds))
 
     manifest.data["finished"] = dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")
     manifest.save()

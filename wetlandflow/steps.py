@@ -9,6 +9,7 @@ keeps; the tables and figures go into the run folder.
 from __future__ import annotations
 
 import json
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -106,24 +107,34 @@ def top_drivers(importance: pd.DataFrame, classes: list[str], n: int = 3) -> dic
     return {c: [str(f) for f in importance[c].sort_values(ascending=False).head(n).index] for c in classes}
 
 
-def write_explanations(model, samples: pd.DataFrame, features: list[str], cube_attrs: dict[str, dict],
-                       out_dir: Path, *, n_rows: int, seed: int, block_size_m: float) -> dict[str, Any]:
-    """SHAP values of a spatially stratified subsample and their summaries, into ``explain/``.
+def write_explanations(model, samples: pd.DataFrame, features: list[str], cube, out_dir: Path, *, n_rows: int,
+                       seed: int, block_size_m: float, window_px: int = 64,
+                       refit: Callable[[int], Any] | None = None, stability_seeds: int = 3) -> dict[str, Any]:
+    """SHAP values of a spatially stratified subsample, their summaries, SHAP maps and ranking stability.
 
-    Writes ``shap_values.parquet`` (long table), ``importance.csv`` (mean |SHAP| per feature and
-    class), ``domain_importance.csv``, ``cluster_importance.csv`` (correlation clusters, |r| >= 0.8),
-    and figures ``importance.png``, ``domains.png`` and ``beeswarm_<class>.png``.
+    Writes into ``out_dir`` (``explain/``): ``shap_values.parquet`` (long table), ``importance.csv``
+    (mean |SHAP| per feature and class), ``domain_importance.csv``, ``cluster_importance.csv``
+    (correlation clusters, |r| >= 0.8), figures ``importance.png``, ``domains.png``,
+    ``beeswarm_<class>.png`` and ``dependence_<class>.png`` (each class's top feature against its SHAP
+    value, coloured by the second); ``maps/shap_<domain>_<class>.tif`` for each class's leading domain
+    over a ``window_px`` window at the centre of the grid, drawn in ``shap_maps.png``, with the
+    ``waterfall_centre.png`` breakdown of the window's centre pixel; and, when ``refit(seed)`` is given,
+    ``ranking_stability.csv``: Spearman's rho between the importance rankings of the model and of
+    ``stability_seeds - 1`` refits (``refit(seed)`` returns a model refitted, e.g. on a bootstrap of the
+    plots, for that seed).
     """
     import matplotlib.pyplot as plt
 
     from .explain import cluster_importance, domain_importance, global_importance, shap_values, stratified_subsample
-    from .explain_plots import plot_beeswarm, plot_domain_importance, plot_importance
+    from .explain_plots import plot_beeswarm, plot_dependence, plot_domain_importance, plot_importance
     from .explore import predictor_correlation, redundant_predictors
 
+    cube_attrs = {k: dict(v.attrs) for k, v in cube.data_vars.items()}
     sub = stratified_subsample(samples, n=n_rows, seed=seed, block_size_m=block_size_m)
     sv = shap_values(model, sub[features], features=features)
     imp = global_importance(sv)
-    domains = domain_importance(sv, _domains(cube_attrs, features))
+    feature_domains = _domains(cube_attrs, features)
+    domains = domain_importance(sv, feature_domains)
     corr = predictor_correlation(samples, features)
     red = redundant_predictors(corr, threshold=0.8)
     clusters = cluster_importance(sv, {f: f"cluster {int(c)} ({red.table['kept_member'][f]})"
@@ -134,16 +145,87 @@ def write_explanations(model, samples: pd.DataFrame, features: list[str], cube_a
     write_table(imp.reset_index(), out_dir / "importance.csv")
     write_table(domains, out_dir / "domain_importance.csv")
     write_table(clusters, out_dir / "cluster_importance.csv")
-    classes = [str(c) for c in values["class"].values]
+    classes = [str(c) for c in values["class"].values if bool(values["present"].sel({"class": c}))]
+    drivers = top_drivers(imp, classes)
     figures = {"importance.png": plot_importance(imp), "domains.png": plot_domain_importance(domains)}
     figures |= {f"beeswarm_{c}.png": plot_beeswarm(sv, sub[features], c, seed=seed) for c in classes}
+    figures |= {f"dependence_{c}.png": plot_dependence(sv, sub[features], drivers[c][0], c,
+                                                       color_by=drivers[c][1] if len(drivers[c]) > 1 else None)
+                for c in classes}
+    by_domain = {c: [{"domain": str(r.domain), "share": round(float(r.share), 3)}
+                     for r in domains[domains["class"] == c].nlargest(2, "share").itertuples()] for c in classes}
+    maps, map_figures = _explanation_maps(model, cube, features, feature_domains, by_domain, out_dir, window_px)
+    figures |= map_figures
     for name, fig in figures.items():
         write_figure(fig, out_dir / name)
         plt.close(fig)
-    drivers = top_drivers(imp, classes)
-    by_domain = {c: domains[domains["class"] == c].sort_values("share", ascending=False)
-                 .head(2)[["domain", "share"]].round(3).to_dict(orient="records") for c in classes}
     record = {"n_rows": int(len(sub)), "top_drivers": drivers, "top_domains": by_domain,
-              "cluster_note": clusters.attrs.get("note", "")}
+              "cluster_note": clusters.attrs.get("note", ""), "maps": maps}
+    if refit is not None and stability_seeds >= 2:
+        record["ranking_stability"] = _ranking_stability(refit, model, sub, features, seed, stability_seeds,
+                                                         out_dir)
     (out_dir / "drivers.json").write_text(json.dumps(record, indent=2))
     return record
+
+
+def _ranking_stability(refit: Callable[[int], Any], model, sub: pd.DataFrame, features: list[str], seed: int,
+                       n_seeds: int, out_dir: Path) -> dict[str, Any]:
+    """Spearman's rho between importance rankings of the model and refits with other seeds."""
+    from .explain import ranking_stability
+
+    seeds = [seed + i for i in range(n_seeds)]
+    table = ranking_stability(lambda X, y, s: model if s == seed else refit(s), sub[features],
+                              sub["class"].to_numpy(), seeds)
+    write_table(table.reset_index(), out_dir / "ranking_stability.csv")
+    off = table.to_numpy()[~np.eye(n_seeds, dtype=bool)]
+    return {"seeds": seeds, "mean_spearman_rho": round(table.attrs["mean_rho"], 4),
+            "min_spearman_rho": round(float(np.nanmin(off)), 4)}
+
+
+def _explanation_maps(model, cube, features: list[str], feature_domains: dict[str, str],
+                      by_domain: dict[str, list[dict]], out_dir: Path, window_px: int) -> tuple[dict, dict]:
+    """SHAP maps of each class's leading domain over a window at the grid's centre, and its centre pixel."""
+    import matplotlib.pyplot as plt
+
+    from .explain import contribution_map, window_contributions, write_shap_map
+    from .explain_plots import plot_waterfall
+
+    ny, nx = cube.sizes["y"], cube.sizes["x"]
+    h, w = min(window_px, ny), min(window_px, nx)
+    r0, c0 = (ny - h) // 2, (nx - w) // 2
+    window = (slice(r0, r0 + h), slice(c0, c0 + w))
+    contrib = window_contributions(model, cube, features, window=window)
+    written, panels = {}, []
+    for c, top in by_domain.items():
+        if not top:
+            continue
+        da = contribution_map(contrib, cube, c, domain=top[0]["domain"], domains=feature_domains)
+        name = f"maps/shap_{top[0]['domain']}_{c}.tif"
+        write_shap_map(da, out_dir / name)
+        written[c] = {"domain": top[0]["domain"], "file": name}
+        panels.append((c, top[0]["domain"], da))
+    figures = {}
+    if panels:
+        cols = min(3, len(panels))
+        rows = -(-len(panels) // cols)
+        fig, axes = plt.subplots(rows, cols, figsize=(3.6 * cols, 3.2 * rows), squeeze=False)
+        for ax, (c, d, da) in zip(axes.ravel(), panels, strict=False):
+            lim = float(np.nanmax(np.abs(da.values))) if np.isfinite(da.values).any() else 1.0
+            im = ax.imshow(da.values, cmap="RdBu_r", vmin=-lim, vmax=lim)
+            ax.set_title(f"{d} -> {c}", fontsize=9)
+            ax.set_axis_off()
+            fig.colorbar(im, ax=ax, shrink=0.75, label=da.attrs.get("units", ""))
+        for ax in axes.ravel()[len(panels):]:
+            ax.set_visible(False)
+        fig.suptitle(f"SHAP contribution of each class's leading domain, rows {r0}-{r0 + h}, "
+                     f"columns {c0}-{c0 + w}", fontsize=9)
+        figures["shap_maps.png"] = fig
+    centre = contrib.isel(y=h // 2, x=w // 2)
+    if np.isfinite(centre.values).any():
+        from .explain import shap_values
+
+        pixel = cube[features].isel(y=r0 + h // 2, x=c0 + w // 2).to_dataarray("feature").values[None]
+        predicted = str(model.predict(np.asarray(pixel, np.float32))[0])
+        base = shap_values(model, np.asarray(pixel, np.float32), features=features)["base_value"]
+        figures["waterfall_centre.png"] = plot_waterfall(centre.sel({"class": predicted}), base, predicted)
+    return written, figures
