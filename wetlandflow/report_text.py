@@ -491,7 +491,7 @@ def _area_accuracy_tables(run: RunFolder, s: dict[str, Any]) -> list:
 
 
 def section_maps(run: RunFolder) -> Section:
-    from .report import applicability_png, class_map_png, confidence_png
+    from .report import class_map_png, confidence_png
 
     blocks: list = []
     a = run.areas

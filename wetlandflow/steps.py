@@ -125,7 +125,13 @@ def write_explanations(model, samples: pd.DataFrame, features: list[str], cube, 
     """
     import matplotlib.pyplot as plt
 
-    from .explain import cluster_importance, domain_importance, global_importance, shap_values, stratified_subsample
+    from .explain import (
+        cluster_importance,
+        domain_importance,
+        global_importance,
+        shap_values,
+        stratified_subsample,
+    )
     from .explain_plots import plot_beeswarm, plot_dependence, plot_domain_importance, plot_importance
     from .explore import predictor_correlation, redundant_predictors
 
