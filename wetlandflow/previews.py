@@ -216,6 +216,14 @@ def _extent(da: xr.DataArray) -> tuple[float, float, float, float]:
     return (x[0] - dx / 2, x[-1] + dx / 2, y[-1] - dy / 2, y[0] + dy / 2)
 
 
+def _class_legend(ax: Any, names: Sequence[str], colours: dict[str, str]) -> None:
+    """One patch per class, outside the map on the right."""
+    from matplotlib.patches import Patch
+
+    ax.legend(handles=[Patch(facecolor=colours[n], edgecolor="0.3", label=n) for n in names],
+              loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
+
+
 def _finish_map(ax: Any, title: str, decorations: bool) -> None:
     ax.set_title(title, fontsize=10)
     ax.set_xlabel("x (m)", fontsize=8)
@@ -245,7 +253,6 @@ def plot_class_codes(
     decorations: bool = True,
 ) -> Any:
     """A class-code layer (0 = no data, 1..K in scheme order) in the scheme's palette, with a legend."""
-    from matplotlib.patches import Patch
 
     fig, ax = _map_axes(ax)
     k = len(class_names)
@@ -257,14 +264,7 @@ def plot_class_codes(
         extent=_extent(codes),
         interpolation="nearest",
     )
-    colours = ClassScheme(tuple(class_names), {}).colours
-    ax.legend(
-        handles=[Patch(facecolor=colours[n], edgecolor="0.3", label=n) for n in class_names],
-        loc="upper left",
-        bbox_to_anchor=(1.01, 1.0),
-        fontsize=8,
-        frameon=False,
-    )
+    _class_legend(ax, class_names, ClassScheme(tuple(class_names), {}).colours)
     _finish_map(ax, title, decorations)
     return fig
 
@@ -406,20 +406,13 @@ def plot_inventory(
     class_column: str = "class",
 ) -> Any:
     """Polygons of the inventory (``inventory.gpkg``) filled with the scheme's colours."""
-    from matplotlib.patches import Patch
 
     fig, ax = _map_axes(ax)
     colours = ClassScheme(tuple(class_names), {}).colours
     for name, part in gdf.groupby(class_column):
         part.plot(ax=ax, color=colours.get(str(name), "#999999"), edgecolor="0.25", linewidth=0.2)
     present = [n for n in class_names if n in set(gdf[class_column].astype(str))]
-    ax.legend(
-        handles=[Patch(facecolor=colours[n], edgecolor="0.3", label=n) for n in present],
-        loc="upper left",
-        bbox_to_anchor=(1.01, 1.0),
-        fontsize=8,
-        frameon=False,
-    )
+    _class_legend(ax, present, colours)
     ax.set_aspect("equal")
     _finish_map(ax, title, True)
     return fig

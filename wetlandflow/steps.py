@@ -160,7 +160,8 @@ def write_explanations(model, samples: pd.DataFrame, features: list[str], cube, 
                 for c in classes}
     by_domain = {c: [{"domain": str(r.domain), "share": round(float(r.share), 3)}
                      for r in domains[domains["class"] == c].nlargest(2, "share").itertuples()] for c in classes}
-    maps, map_figures = _explanation_maps(model, cube, features, feature_domains, by_domain, out_dir, window_px)
+    maps, map_figures = _explanation_maps(model, cube, features, feature_domains, by_domain, out_dir, window_px,
+                                          sv["base_value"])
     figures |= map_figures
     for name, fig in figures.items():
         write_figure(fig, out_dir / name)
@@ -189,7 +190,8 @@ def _ranking_stability(refit: Callable[[int], Any], model, sub: pd.DataFrame, fe
 
 
 def _explanation_maps(model, cube, features: list[str], feature_domains: dict[str, str],
-                      by_domain: dict[str, list[dict]], out_dir: Path, window_px: int) -> tuple[dict, dict]:
+                      by_domain: dict[str, list[dict]], out_dir: Path, window_px: int,
+                      base_value) -> tuple[dict, dict]:
     """SHAP maps of each class's leading domain over a window at the grid's centre, and its centre pixel."""
     import matplotlib.pyplot as plt
 
@@ -227,11 +229,8 @@ def _explanation_maps(model, cube, features: list[str], feature_domains: dict[st
                      f"columns {c0}-{c0 + w}", fontsize=9)
         figures["shap_maps.png"] = fig
     centre = contrib.isel(y=h // 2, x=w // 2)
-    if np.isfinite(centre.values).any():
-        from .explain import shap_values
-
+    if np.isfinite(centre.values).any():  # the base value is the model's, the same for every pixel
         pixel = cube[features].isel(y=r0 + h // 2, x=c0 + w // 2).to_dataarray("feature").values[None]
         predicted = str(model.predict(np.asarray(pixel, np.float32))[0])
-        base = shap_values(model, np.asarray(pixel, np.float32), features=features)["base_value"]
-        figures["waterfall_centre.png"] = plot_waterfall(centre.sel({"class": predicted}), base, predicted)
+        figures["waterfall_centre.png"] = plot_waterfall(centre.sel({"class": predicted}), base_value, predicted)
     return written, figures
