@@ -50,7 +50,7 @@ from scipy.spatial import cKDTree
 from sklearn.model_selection import BaseCrossValidator, GroupKFold, KFold, StratifiedGroupKFold
 
 from .errors import ValidationDesignError
-from .nested import NestedCVResult, spatial_grid_search, subset_splitter
+from .nested import NestedCVResult, spatial_early_stopping, spatial_grid_search, subset_splitter
 from .nndm import (
     KNNDM,
     NNDM,
@@ -89,6 +89,7 @@ __all__ = [
     "plot_distance_ecdf",
     "plot_folds",
     "random_pixel_kfold",
+    "spatial_early_stopping",
     "spatial_grid_search",
     "subset_splitter",
     "suggest_block_size",
