@@ -66,6 +66,20 @@ def project_variant(project_file: Path, name: str, **changes) -> Path:
     return out
 
 
+def tiny_project_doc(folder: Path, *, chunk_size: int) -> dict:
+    """The project document of a 128 x 128 px demo with optical and terrain features only, a 30-tree model
+    and 3 plot folds: the smallest project that runs end to end, for tests that corrupt or kill a run."""
+    from wetlandflow.demo import make_demo
+
+    doc = read_toml(make_demo(folder, size=128, seed=3, n_optical=3, n_sar=2))
+    doc["features"] = {"select": ["optical", "terrain"]}
+    doc["model"].update(n_estimators=30)
+    doc["validation"].update(design="group", n_folds=3)
+    doc["samples"] = {"max_pixels_per_plot": 20}
+    doc["output"] = {"chunk_size": chunk_size, "explain": False}
+    return doc
+
+
 def light_project(folder: Path) -> Path:
     """A 300 x 300 px demo with a light model and 3 folds, so that several full runs stay short."""
     from wetlandflow.demo import make_demo

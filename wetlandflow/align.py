@@ -28,6 +28,7 @@ import dask.array as dsa
 import numpy as np
 import rasterio
 import xarray as xr
+from affine import Affine
 from rasterio.enums import Resampling
 from rasterio.vrt import WarpedVRT
 from rasterio.warp import transform_bounds
@@ -80,7 +81,11 @@ def inspect_raster(path: str | Path) -> RasterInfo:
     except AlignmentError:
         raise
     except rasterio.errors.RasterioIOError as exc:
-        raise InputFileError(f"cannot read the raster ({exc}); is it a complete GeoTIFF?", path=str(path)) from None
+        raise InputFileError(
+            f"cannot read the raster ({exc}). The file looks truncated (an interrupted copy or download) "
+            "or is not a raster GDAL can open; copy or export it again and rerun",
+            path=str(path),
+        ) from None
 
 
 def _source_resolution_on_grid(info: RasterInfo, grid: Grid) -> float:
@@ -243,3 +248,78 @@ def aoi_mask(aoi, grid: Grid, *, chunks: int = 512) -> xr.DataArray:
     da = xr.DataArray(data, dims=("y", "x"), coords=grid.coords(), name="aoi")
     da.attrs = {"long_name": "inside the area of interest", "method": "rasterize, pixel-centre rule"}
     return attach(da, grid)
+
+
+# -- cheap looks at a raster's content (checks before a run computes anything) -----------------------
+
+
+def values_on_coarse_grid(path: str | Path, grid: Grid, *, band: int = 1,
+                          nodata: float | None = None) -> np.ndarray:
+    """One band of a raster on ``grid`` (meant to be a coarse grid), by nearest neighbour, no data as NaN.
+
+    The file is first read decimated (GDAL's nearest-neighbour overview-style read, so a large file is
+    not read at full resolution when the grid is much coarser) and then warped onto ``grid``.  In
+    memory, but the result has the coarse grid's size.
+
+    Parameters
+    ----------
+    path
+        Raster file.
+    grid
+        Target grid, usually ``project_grid.coarsen(k)``.
+    band
+        Band number (1-based).
+    nodata
+        No-data value (overrides the header's).
+
+    Returns
+    -------
+    numpy.ndarray
+        float64 array of ``grid.shape``; NaN for no data and outside the file.
+    """
+    from rasterio.warp import reproject
+
+    info = inspect_raster(path)
+    step = max(1, int(grid.resolution // max(_source_resolution_on_grid(info, grid), 1e-9)))
+    with rasterio.open(path) as src:
+        nd = nodata if nodata is not None else src.nodata
+        shape = (max(1, src.height // step), max(1, src.width // step))
+        data = src.read(band, out_shape=shape, resampling=Resampling.nearest).astype(np.float64)
+        transform = src.transform @ Affine.scale(src.width / shape[1], src.height / shape[0])
+        crs = src.crs
+    if nd is not None and not np.isnan(nd):
+        data[data == nd] = np.nan
+    out = np.full(grid.shape, np.nan)
+    reproject(data, out, src_transform=transform, src_crs=crs, dst_transform=grid.transform, dst_crs=grid.crs,
+              resampling=Resampling.nearest, src_nodata=np.nan, dst_nodata=np.nan)
+    return out
+
+
+def aoi_on_grid(aoi, grid: Grid) -> np.ndarray:
+    """Boolean array of ``grid.shape``: pixel centres inside the AOI polygons (in memory)."""
+    from rasterio.features import rasterize
+
+    geoms = list(aoi.to_crs(grid.crs).geometry)
+    return rasterize(geoms, out_shape=grid.shape, transform=grid.transform, fill=0, default_value=1,
+                     dtype="uint8").astype(bool)
+
+
+def sample_windows(path: str | Path, *, nodata: float | None = None, size: int = 64,
+                   per_side: int = 3) -> np.ndarray:
+    """Values of every band in ``per_side`` x ``per_side`` windows spread over the file, no data as NaN.
+
+    A cheap, resolution-independent look at a file's values (reads at most
+    ``per_side**2`` windows of ``size`` x ``size`` pixels), e.g. to check units
+    before anything is computed.  Returns an array of shape ``(bands, n)``.
+    """
+    with rasterio.open(path) as src:
+        nd = nodata if nodata is not None else src.nodata
+        h, w = min(size, src.height), min(size, src.width)
+        rows = np.unique(np.linspace(0, src.height - h, per_side).astype(int))
+        cols = np.unique(np.linspace(0, src.width - w, per_side).astype(int))
+        blocks = [src.read(window=Window(int(c), int(r), w, h)).reshape(src.count, -1)
+                  for r in rows for c in cols]
+    values = np.concatenate(blocks, axis=1).astype(np.float64)
+    if nd is not None and not np.isnan(nd):
+        values[values == nd] = np.nan
+    return values

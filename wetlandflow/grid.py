@@ -39,7 +39,7 @@ def require_projected(crs: object, *, what: str = "grid") -> CRS:
     if unit not in ("metre", "meter", "m"):
         raise AlignmentError(
             f"the {what} CRS {c.to_string()} has axis unit {unit!r}; wetlandflow needs metres. "
-            "Choose a metric projected CRS (UTM or a national metric grid)."
+            "Set grid.crs in the project file to a metric projected CRS (UTM or a national metric grid)."
         )
     return c
 
@@ -147,6 +147,20 @@ class Grid:
         """Sub-grid starting at pixel ``(row, col)``."""
         t = self.transform @ Affine.translation(col, row)
         return Grid(self.crs, t, width, height)
+
+    def coarsen(self, factor: int) -> Grid:
+        """Grid with the same origin and ``factor`` times larger pixels, covering at least this extent.
+
+        Examples
+        --------
+        >>> Grid.from_bbox((0, 0, 1000, 990), crs="EPSG:32633", resolution=10).coarsen(4).shape
+        (25, 25)
+        """
+        if not isinstance(factor, int | np.integer) or factor < 1:
+            raise AlignmentError(f"a coarsening factor is a whole number >= 1, got {factor!r}")
+        f = int(factor)
+        width, height = math.ceil(self.width / f), math.ceil(self.height / f)
+        return Grid(self.crs, self.transform @ Affine.scale(f), width, height)
 
     def rowcol(self, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Row and column indices of map coordinates (floor; may fall outside the grid)."""

@@ -8,18 +8,38 @@ is the table that ``wetlandflow check`` prints.
 
 from __future__ import annotations
 
+import math
+import warnings
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .align import aoi_mask, check_overlap, inspect_raster, read_aligned
-from .errors import AlignmentError, InputFileError
+from .align import (
+    aoi_mask,
+    aoi_on_grid,
+    check_overlap,
+    inspect_raster,
+    read_aligned,
+    sample_windows,
+    values_on_coarse_grid,
+)
+from .errors import AlignmentError, DataQualityError, InputFileError, ProjectFileError
 from .features.registry import FeatureInputs
 from .grid import Grid, attach, require_projected
 from .io import read_vector
-from .project import Project
+from .project import OPTICAL_BANDS, Project
 
 FEET_TO_M = 0.3048  # international foot, exact by definition
+SAR_POLARISATIONS = ("VV", "VH", "HH", "HV")
+_METRE_NAMES = {"m", "metre", "meter", "metres", "meters"}
+_FOOT_NAMES = {"ft", "foot", "feet", "us survey foot", "us_survey_foot", "ftus", "foot_us", "us-ft",
+               "international foot"}
+
+
+class InputCoverageWarning(UserWarning):
+    """An input holds no usable pixel inside the area of interest and contributes nothing."""
 
 
 def read_aoi(project: Project):
@@ -28,7 +48,10 @@ def read_aoi(project: Project):
     if aoi.empty:
         raise InputFileError("the AOI file holds no polygon; draw the project area and save it", path=str(project.area.aoi))
     if not set(aoi.geom_type) <= {"Polygon", "MultiPolygon"}:
-        raise InputFileError(f"the AOI must be polygons, found {sorted(set(aoi.geom_type))}", path=str(project.area.aoi))
+        kinds = sorted(set(aoi.geom_type))
+        raise InputFileError(f"the AOI must be polygons, found {kinds}; draw the project area as one or more "
+                             "polygons and save it (area.aoi in the project file)",
+                             path=str(project.area.aoi))
     if not aoi.is_valid.all():
         aoi = aoi.assign(geometry=aoi.geometry.make_valid())
     return aoi
@@ -65,16 +88,47 @@ def _optical_scene(scene, grid: Grid, chunks: int) -> xr.DataArray:
     return refl
 
 
+def check_band_names(path: str | Path, bands: tuple[str, ...] | list[str], *, key: str,
+                     vocabulary: tuple[str, ...], project_file: str | Path | None = None) -> None:
+    """Refuse a band list that contradicts the band descriptions stored in the file itself.
+
+    Only files whose every band is described with a name of ``vocabulary``
+    (the portable names, e.g. ``nir``) are compared; files without
+    descriptions, or described in another naming, are taken as the project
+    file says.  A band count that differs is left to :func:`read_aligned`.
+
+    Raises
+    ------
+    ProjectFileError
+        Naming the key (``optical[2].bands``), the file, both lists and the fix.
+    """
+    described = [d or "" for d in inspect_raster(path).descriptions]
+    if len(described) != len(bands) or not all(described) or not set(described) <= set(vocabulary):
+        return
+    if described != list(bands):
+        dup = sorted({d for d in described if described.count(d) > 1})
+        what = f" (the file names {dup} more than once; fix its band descriptions)" if dup else ""
+        raise ProjectFileError(
+            f"the file {Path(path).name} describes its bands, in order, as {described}{what}, but the "
+            f"project file lists {list(bands)}. List the bands in the file's order, or fix the file if its "
+            "descriptions are wrong",
+            key=key, file=str(project_file) if project_file else None,
+        )
+
+
 def load_optical(project: Project, grid: Grid, *, chunks: int) -> xr.DataArray:
     """All optical scenes as one (time, band, y, x) reflectance stack, sorted by date."""
     bands = project.optical[0].bands
     scenes = []
-    for s in sorted(project.optical, key=lambda s: s.date):
+    for i, s in sorted(enumerate(project.optical), key=lambda t: t[1].date):
         if set(s.bands) != set(bands):
             raise AlignmentError(
-                f"optical scene {s.path.name} has bands {list(s.bands)}, the first scene {list(bands)}; "
-                "every scene must carry the same bands"
+                f"optical scene {s.path.name} (optical[{i}].bands) has bands {list(s.bands)}, the first "
+                f"scene {list(bands)}; every scene must carry the same bands: fix the band lists in the "
+                "project file"
             )
+        check_band_names(s.path, s.bands, key=f"optical[{i}].bands", vocabulary=OPTICAL_BANDS,
+                         project_file=project.file)
         scenes.append(_optical_scene(s, grid, chunks).sel(band=list(bands)))
     stack = xr.concat(scenes, dim="time", combine_attrs="drop_conflicts")
     stack.attrs = {"units": "1", "long_name": "surface reflectance", "kind": "reflectance",
@@ -90,6 +144,32 @@ def _to_linear_power(da: xr.DataArray, units: str) -> xr.DataArray:
     return da
 
 
+def check_sar_file_units(path: str | Path, declared: str, *, nodata: float | None, key: str) -> dict | None:
+    """Check the values in a SAR file against the units the project file declares, before any conversion.
+
+    Reads a few small windows (:func:`~wetlandflow.align.sample_windows`), so
+    it is cheap whatever the file's size.  Checking the raw values matters:
+    once dB values have been converted as if they were linear (or the
+    reverse), the result looks like yet another unit and the advice would be
+    wrong.  Returns the statistics, or ``None`` when the windows hold no data
+    (the run's check on the aligned layer then decides).
+
+    Raises
+    ------
+    DataQualityError
+        Naming the key (``sar[3].units``), the file, what the values look like and the fix.
+    """
+    from .features.sar import check_sar_units
+
+    values = sample_windows(path, nodata=nodata)
+    if not np.isfinite(values).any():
+        return None
+    try:
+        return check_sar_units(xr.DataArray(values, dims=("pol", "sample")), declared, name=Path(path).name)
+    except DataQualityError as exc:
+        raise DataQualityError(f"[{key}] {exc}") from None
+
+
 def load_sar(project: Project, grid: Grid, *, chunks: int) -> xr.DataArray | None:
     """All SAR scenes as (time, pol, y, x) linear power, with an ``orbit`` coordinate on time.
 
@@ -101,9 +181,12 @@ def load_sar(project: Project, grid: Grid, *, chunks: int) -> xr.DataArray | Non
         return None
     pols = project.sar[0].bands
     layers, orbits = [], []
-    for s in sorted(project.sar, key=lambda s: s.date):
+    for i, s in sorted(enumerate(project.sar), key=lambda t: t[1].date):
+        check_band_names(s.path, s.bands, key=f"sar[{i}].bands", vocabulary=SAR_POLARISATIONS,
+                         project_file=project.file)
         da = read_aligned(s.path, grid, kind="sar_power", name=f"sar {s.date.isoformat()}", band_names=s.bands,
                           nodata=s.nodata, chunks=chunks).sel(band=list(pols))
+        check_sar_file_units(s.path, s.units, nodata=s.nodata, key=f"sar[{i}].units")
         da = _to_linear_power(da, s.units).rename({"band": "pol"})
         layers.append(da.astype(np.float32).expand_dims(time=[np.datetime64(s.date, "ns")]))
         orbits.append(s.orbit)
@@ -124,19 +207,156 @@ def load_dem(project: Project, grid: Grid, *, chunks: int) -> xr.DataArray:
     return attach(out, grid)
 
 
-def load_inputs(project: Project, grid: Grid | None = None) -> FeatureInputs:
-    """Every input of the project, aligned lazily onto the grid."""
+def _units_of(name: str) -> str | None:
+    name = name.strip().lower()
+    return "m" if name in _METRE_NAMES else "ft" if name in _FOOT_NAMES else None
+
+
+def _file_elevation_units(path: Path) -> tuple[str | None, str]:
+    """The DEM's elevation unit from its metadata (band unit, else a vertical CRS), and where it was found."""
+    import rasterio
+    from pyproj import CRS
+
+    with rasterio.open(path) as src:
+        band_unit = (src.units[0] or "") if src.units else ""
+        crs = src.crs
+    if _units_of(band_unit):
+        return _units_of(band_unit), f"band unit {band_unit!r}"
+    if crs is not None:
+        c = CRS.from_user_input(crs.to_wkt())
+        for sub in c.sub_crs_list if c.is_compound else []:
+            if sub.is_vertical and sub.axis_info and _units_of(sub.axis_info[0].unit_name):
+                return _units_of(sub.axis_info[0].unit_name), f"vertical CRS {sub.name!r}"
+    return None, ""
+
+
+def check_dem(project: Project, grid: Grid, aoi, *, max_nodata_share: float = 0.05,
+              max_side: int = 256) -> float:
+    """Check the DEM's declared units against its metadata and its coverage of the AOI.
+
+    Elevations in feet are recognised only from metadata (a band unit or a
+    vertical CRS in feet): the values alone cannot tell feet from metres.
+    Coverage is measured on a coarse copy of the grid (at most ``max_side``
+    pixels a side): flow routing and the terrain features need elevation
+    everywhere, so more than ``max_nodata_share`` of the AOI without data
+    (holes, or a DEM that does not reach) is refused.  The 5 % default is a
+    rule of thumb (common practice, no source).
+
+    Returns
+    -------
+    float
+        Share of the AOI with elevation data (NaN when the grid holds no AOI pixel).
+
+    Raises
+    ------
+    ProjectFileError
+        ``dem.units`` contradicts the file's metadata.
+    DataQualityError
+        Too much of the AOI has no elevation.
+    """
+    dem = project.dem
+    found, where = _file_elevation_units(dem.path)
+    if found is not None and found != dem.units:
+        unit = "feet" if found == "ft" else "metres"
+        raise ProjectFileError(
+            f"the DEM {dem.path.name} gives its elevations in {unit} ({where}), but the project file says "
+            f"units = {dem.units!r}. Set dem.units = {found!r} (feet are converted to metres), or correct "
+            "the file's metadata if the values really are in the declared unit",
+            key="dem.units", file=str(project.file),
+        )
+    coarse = grid.coarsen(max(1, math.ceil(max(grid.width, grid.height) / max_side)))
+    inside = aoi_on_grid(aoi, coarse)
+    if not inside.any():
+        return float("nan")
+    share = float(np.isfinite(values_on_coarse_grid(dem.path, coarse, nodata=dem.nodata))[inside].mean())
+    if share < 1.0 - max_nodata_share:
+        raise DataQualityError(
+            f"[dem.path] the DEM {dem.path.name} has no elevation over {1 - share:.0%} of the area of "
+            f"interest (no-data value {dem.nodata:g}, or the file does not reach that far); terrain features "
+            f"and flow routing need elevation everywhere in it (at most {max_nodata_share:.0%} missing). "
+            "Fill the holes (e.g. gdal_fillnodata.py, or mosaic a second DEM in), use a DEM that covers the "
+            "AOI, or correct dem.nodata if it is a real elevation"
+        )
+    return share
+
+
+def _clear_share(scene, coarse: Grid, inside: np.ndarray) -> float:
+    """Share of the AOI where a scene has data in its first band and, with a mask, a valid mask code."""
+    ok = np.isfinite(values_on_coarse_grid(scene.path, coarse, nodata=scene.nodata))
+    if scene.mask is not None:
+        codes = values_on_coarse_grid(scene.mask, coarse, nodata=0)
+        ok &= np.isin(codes, list(scene.mask_valid))
+    return float(ok[inside].mean())
+
+
+def check_observations(project: Project, grid: Grid, aoi, *, max_side: int = 256) -> dict[str, float]:
+    """Share of the AOI with a clear observation, per optical scene; refuse a season with none.
+
+    Measured on a coarse copy of the grid (at most ``max_side`` pixels a
+    side, nearest neighbour), from the scene's no-data value and its quality
+    mask codes (``mask_valid``).  A fully clouded scene is kept, with an
+    :class:`InputCoverageWarning`; a season none of whose scenes has a clear
+    pixel would give an empty composite, and is refused.
+
+    Returns
+    -------
+    dict
+        ``"optical[i] file"`` -> clear share of the AOI.
+
+    Raises
+    ------
+    DataQualityError
+        Naming the season key, its scenes and the fixes.
+    """
+    from .features.composite import season_mask
+
+    coarse = grid.coarsen(max(1, math.ceil(max(grid.width, grid.height) / max_side)))
+    inside = aoi_on_grid(aoi, coarse)
+    if not inside.any():
+        return {}
+    shares = {i: _clear_share(s, coarse, inside) for i, s in enumerate(project.optical)}
+    for i, share in shares.items():
+        if share == 0:
+            s = project.optical[i]
+            warnings.warn(f"optical[{i}] {s.path.name}: no clear pixel inside the area of interest (fully "
+                          f"clouded, or no data under mask codes {list(s.mask_valid)}); the scene adds "
+                          "nothing to the composites", InputCoverageWarning, stacklevel=2)
+    dates = np.array([np.datetime64(s.date, "D") for s in project.optical])
+    for name, (start, end) in project.seasons.items():
+        members = np.flatnonzero(season_mask(dates, start, end))
+        if members.size and all(shares[i] == 0 for i in members):
+            files = [project.optical[i].path.name for i in members]
+            raise DataQualityError(
+                f"[seasons.{name}] season {name!r} ({start} to {end}) has no valid observation inside the "
+                f"area of interest: its scene(s) {files} are fully clouded or without data. Add a clear "
+                "scene in that window, widen the window in [seasons], or remove the season from the project "
+                "file"
+            )
+    return {f"optical[{i}] {project.optical[i].path.name}": round(v, 4) for i, v in shares.items()}
+
+
+def load_inputs(project: Project, grid: Grid | None = None, *, check: bool = True) -> FeatureInputs:
+    """Every input of the project, aligned lazily onto the grid.
+
+    Opening the layers checks their headers, band names and counts, overlap
+    and SAR units against the files.  With ``check`` (the default) the DEM's
+    units and coverage (:func:`check_dem`) and the clear observations of every
+    season (:func:`check_observations`) are then checked on a coarse sample of
+    the grid, before anything is computed at full resolution.
+    """
     grid = grid or project_grid(project)
     chunks = project.output.chunk_size
-    aoi = aoi_mask(read_aoi(project), grid, chunks=chunks)
-    return FeatureInputs(
-        grid=grid,
-        optical=load_optical(project, grid, chunks=chunks),
-        sar=load_sar(project, grid, chunks=chunks),
-        dem=load_dem(project, grid, chunks=chunks),
-        aoi=aoi,
-        seasons=dict(project.seasons),
-    )
+    aoi_polygons = read_aoi(project)
+    # the lazy layers first: opening them checks headers, band counts and overlap, which explain more
+    # precisely than a coverage check what is wrong with a file
+    optical = load_optical(project, grid, chunks=chunks)
+    sar = load_sar(project, grid, chunks=chunks)
+    dem = load_dem(project, grid, chunks=chunks)
+    if check:
+        check_dem(project, grid, aoi_polygons)
+        check_observations(project, grid, aoi_polygons)
+    return FeatureInputs(grid=grid, optical=optical, sar=sar, dem=dem,
+                         aoi=aoi_mask(aoi_polygons, grid, chunks=chunks), seasons=dict(project.seasons))
 
 
 def input_inventory(project: Project, grid: Grid | None = None) -> pd.DataFrame:

@@ -8,6 +8,7 @@ name is always a finished file, whatever interrupts the run.
 from __future__ import annotations
 
 import contextlib
+import glob
 import hashlib
 import json
 import os
@@ -40,7 +41,9 @@ def sha256_file(path: str | Path, *, chunk: int = 1 << 20) -> str:
 def atomic_path(final: str | Path) -> Iterator[Path]:
     """Yield a temporary path beside ``final``; rename it to ``final`` only on success.
 
-    Works for files and for folders (Zarr stores).  On error the temporary is removed.
+    Works for files and for folders (Zarr stores).  On error the temporary is removed.  After a
+    successful rename, temporaries of the same final name that a killed process (SIGKILL, power loss)
+    could not remove are deleted: a run folder has one writer, so they can only be stale.
     """
     final = Path(final)
     final.parent.mkdir(parents=True, exist_ok=True)
@@ -51,14 +54,25 @@ def atomic_path(final: str | Path) -> Iterator[Path]:
     try:
         yield tmp
         if final.is_dir():
-            shutil.rmtree(final)
+            # a folder cannot be replaced in one rename: move the old one aside first, so that a kill at
+            # any moment leaves either the old or the new folder under the final name, never half of one
+            os.replace(final, tmp.with_name(tmp.name.replace(".partial", ".old.partial")))
         os.replace(tmp, final)
+        _remove_stale_temporaries(final)
     except BaseException:
         if tmp.is_dir():
             shutil.rmtree(tmp, ignore_errors=True)
         elif tmp.exists():
             tmp.unlink()
         raise
+
+
+def _remove_stale_temporaries(final: Path) -> None:
+    for stale in final.parent.glob(f".{glob.escape(final.name)}.*.partial"):
+        if stale.is_dir():
+            shutil.rmtree(stale, ignore_errors=True)
+        else:
+            stale.unlink(missing_ok=True)
 
 
 def write_json(obj: Any, path: str | Path) -> Path:
@@ -108,7 +122,9 @@ def read_vector(path: str | Path, *, layer: str | None = None, what: str = "vect
     try:
         gdf = gpd.read_file(path, layer=layer or None)
     except Exception as exc:
-        raise InputFileError(f"cannot read the {what}: {exc}", path=str(path)) from None
+        raise InputFileError(f"cannot read the {what} ({exc}); save it again as a vector format GDAL reads "
+                             "(GeoPackage, shapefile, GeoJSON) and check the path and layer name",
+                             path=str(path)) from None
     if gdf.crs is None:
         raise InputFileError(f"the {what} has no CRS; assign one (e.g. in a GIS) and save again", path=str(path))
     return gdf

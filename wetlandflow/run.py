@@ -26,8 +26,17 @@ from .inputs import load_inputs, project_grid, read_aoi
 from .io import check_writable, sha256_file, write_figure, write_json, write_table
 from .mapping import AOA_LAYERS, LAYERS, class_areas, code_counts, predict_map
 from .models import ClassScheme, WetlandClassifier, data_hash, load_bundle, save_bundle
+from .preflight import preflight
 from .project import Project, config_hash, load_project, portable_dict, to_dict
-from .samples import class_balance, drop_incomplete, extract_samples, missing_report, plot_pixels, read_plots
+from .samples import (
+    check_training_features,
+    class_balance,
+    drop_incomplete,
+    extract_samples,
+    missing_report,
+    plot_pixels,
+    read_plots,
+)
 from .steps import applicability_model, write_explanations, write_inventory_outputs
 
 
@@ -240,13 +249,21 @@ def cross_validate(project: Project, samples: pd.DataFrame, features: list[str],
     """Out-of-fold class probabilities for every sample, and each sample's test fold
     (``check`` is called before every fold: a cancel point)."""
     from .progress import progress_bar
-    from .validation import assign_folds
+    from .validation import assign_folds, check_folds
 
     splitter = make_splitter(project, samples[["x", "y"]].to_numpy())
     X = samples[features].to_numpy(np.float32)
     y = samples["class"].to_numpy()
     groups = samples["plot_id"].to_numpy()
+    n_plots = len(np.unique(groups))
+    if project.validation.n_folds > n_plots:
+        raise ProjectFileError(
+            f"validation.n_folds = {project.validation.n_folds} but the samples come from {n_plots} plot(s); "
+            "plots are never split across folds, so there can be at most one fold per plot. Use fewer folds "
+            "or add plots", key="validation.n_folds", file=str(project.file))
     folds = assign_folds(splitter, X, y, groups)
+    # a class absent from a fold's training side cannot be predicted there: say so, with the fix, and go on
+    check_folds(y, folds, groups, on_missing="warn")
     oof = np.full((len(samples), len(project.classes.names)), np.nan, np.float32)
     for k in progress_bar(np.unique(folds), desc="cross-validating", unit="fold", disable=not progress):
         test = folds == k
@@ -340,9 +357,12 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     zarr_path = run_dir / "features.zarr"
     if manifest.reusable("features", k_feat, [zarr_path]):
         cube = open_cube(zarr_path)
+        manifest.data["preflight"] = preflight(project, grid, n_features=len(cube.data_vars), cube_written=True)
     else:
         with manifest.step("features", k_feat) as rec:
             cube = build_cube(inputs, project.features.select, project.features.params)
+            # the lazy cube tells the number of layers: refuse now, not half-way, if disk or memory is short
+            manifest.data["preflight"] = preflight(project, grid, n_features=len(cube.data_vars))
             cube = save_cube(cube, zarr_path, chunk=project.output.chunk_size)
             rec["features"] = {k: dict(v.attrs) for k, v in cube.data_vars.items()}
             rec["season_coverage"] = season_coverage(cube, inputs.aoi, project.seasons)
@@ -445,6 +465,7 @@ def _samples_step(project: Project, grid, cube, rec: dict[str, Any]) -> pd.DataF
                      max_pixels_per_plot=project.samples.max_pixels_per_plot, seed=project.project.seed)
     samples = extract_samples(cube, px, grid)
     features = feature_names(samples)
+    check_training_features(samples, features)
     rec["missing_before_drop"] = missing_report(samples, features).sum(axis=1).astype(int).to_dict()
     samples = drop_incomplete(samples, features, policy=project.samples.missing)
     rec["class_balance"] = class_balance(samples).to_dict(orient="records")

@@ -8,6 +8,9 @@ plot by a seeded random subsample; points give the pixel they fall in.
 
 from __future__ import annotations
 
+import difflib
+import warnings
+
 import numpy as np
 import pandas as pd
 import xarray as xr
@@ -30,19 +33,17 @@ def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...
                            "Set plots.id_field in the project file, or leave it empty for one id per feature")
     ids = gdf[id_field].astype(str) if id_field else pd.Series([f"plot-{i + 1}" for i in range(len(gdf))],
                                                                index=gdf.index)
+    unlabelled = gdf[class_field].isna() | (gdf[class_field].astype(str).str.strip() == "")
+    if unlabelled.any():
+        raise SamplesError(f"{where}: {int(unlabelled.sum())} plot(s) without a label in field "
+                           f"{class_field!r}, ids {ids[unlabelled].tolist()[:10]}; label them or delete them")
     gdf = gdf.assign(plot_id=ids.values, **{"class": gdf[class_field].astype(str).str.strip().values})
-    empty = gdf.geometry.isna() | gdf.geometry.is_empty
-    if empty.any():
-        raise SamplesError(f"{where}: {int(empty.sum())} plot(s) with empty geometry, ids "
-                           f"{gdf.loc[empty, 'plot_id'].tolist()[:10]}; delete or redraw them")
-    invalid = ~gdf.geometry.is_valid
-    if invalid.any():
-        raise SamplesError(f"{where}: {int(invalid.sum())} plot(s) with invalid (e.g. self-intersecting) geometry, "
-                           f"ids {gdf.loc[invalid, 'plot_id'].tolist()[:10]}; repair them (e.g. make valid) and save")
+    _check_geometries(gdf, where)
     unknown = sorted(set(gdf["class"]) - set(classes))
     if unknown:
-        raise SamplesError(f"{where}: label(s) {unknown} are not in the class scheme {list(classes)}; "
-                           "fix the labels or add the class to [classes].names")
+        raise SamplesError(f"{where}: label(s) {unknown} are not in the class scheme {list(classes)}"
+                           f"{_suggestions(unknown, classes)}; fix the labels in field {class_field!r} or "
+                           "add the class to [classes].names")
     dup = gdf.groupby("plot_id").size()
     if id_field and (dup > 1).any():
         # multipart plots with one id are fine when they share a label; conflicting labels are not
@@ -55,11 +56,74 @@ def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...
     if aoi is not None:
         inside = gdf.geometry.intersects(aoi.to_crs(grid.crs).union_all())
         if not inside.any():
-            raise SamplesError(f"{where}: no plot lies inside the AOI; check the plot file's CRS and the AOI")
+            bounds = tuple(round(v) for v in gdf.total_bounds)
+            aoi_bounds = tuple(round(v) for v in aoi.to_crs(grid.crs).total_bounds)
+            raise SamplesError(f"{where}: no plot lies inside the AOI (plots span {bounds}, the AOI "
+                               f"{aoi_bounds}, both in {grid.crs}); check the plot file's CRS and the AOI")
         if (~inside).any():
             raise SamplesError(f"{where}: {int((~inside).sum())} plot(s) lie outside the AOI, ids "
                                f"{gdf.loc[~inside, 'plot_id'].tolist()[:10]}; remove them or enlarge the AOI")
     return gdf[["plot_id", "class", "geometry"]]
+
+
+PLOT_GEOMETRIES = ("Polygon", "MultiPolygon", "Point")
+
+
+def _check_geometries(gdf, where: str) -> None:
+    empty = gdf.geometry.isna() | gdf.geometry.is_empty
+    if empty.any():
+        raise SamplesError(f"{where}: {int(empty.sum())} plot(s) with empty geometry, ids "
+                           f"{gdf.loc[empty, 'plot_id'].tolist()[:10]}; delete or redraw them")
+    kinds = ~gdf.geom_type.isin(PLOT_GEOMETRIES)
+    if kinds.any():
+        raise SamplesError(f"{where}: {int(kinds.sum())} plot(s) of geometry type "
+                           f"{sorted(set(gdf.geom_type[kinds]))}, ids "
+                           f"{gdf.loc[kinds, 'plot_id'].tolist()[:10]}; "
+                           f"plots must be {', '.join(PLOT_GEOMETRIES)}: buffer lines into polygons or split "
+                           "multipoints into single points")
+    invalid = ~gdf.geometry.is_valid
+    if invalid.any():
+        raise SamplesError(f"{where}: {int(invalid.sum())} plot(s) with invalid (e.g. self-intersecting) geometry, "
+                           f"ids {gdf.loc[invalid, 'plot_id'].tolist()[:10]}; repair them (e.g. make valid) and save")
+
+
+def _suggestions(unknown: list[str], classes: tuple[str, ...]) -> str:
+    """' (did you mean ...)' for labels that differ from a class only in case, spacing or a typo."""
+    lower = {c.lower().replace(" ", "_"): c for c in classes}
+    hints = []
+    for label in unknown:
+        key = label.lower().replace(" ", "_")
+        close = [lower[key]] if key in lower else difflib.get_close_matches(label, classes, n=1, cutoff=0.75)
+        if close:
+            hints.append(f"{label!r} -> {close[0]!r}")
+    return f" (did you mean {', '.join(hints)}?)" if hints else ""
+
+
+def check_training_features(samples: pd.DataFrame, features: list[str]) -> None:
+    """Refuse features that carry nothing over the training samples: all NaN, or one constant value.
+
+    Such a feature cannot inform the model, and it breaks what divides by a
+    feature's spread (the standardisation of the area of applicability); it
+    usually means an input is missing or wrong under the plots (a DEM hole, a
+    season without data, a flat or constant layer).
+
+    Raises
+    ------
+    SamplesError
+        Naming the features, what they hold, and the fixes.
+    """
+    values = samples[features]
+    all_nan = [f for f in features if values[f].isna().all()]
+    constant = [f for f in features if f not in all_nan and values[f].nunique(dropna=True) == 1]
+    if all_nan or constant:
+        pairs = [(f, float(values[f].dropna().iloc[0])) for f in constant]
+        parts = [f"all NaN: {all_nan}"] if all_nan else []
+        parts += [f"one constant value: {pairs}"] if pairs else []
+        raise SamplesError(
+            f"over the {len(samples)} training samples, feature(s) hold {'; '.join(parts)}. Check the "
+            "input layer behind each under the plots (no data, a season without clear scenes, a flat DEM), "
+            "or leave the feature out in [features] select of the project file"
+        )
 
 
 def plot_pixels(plots, grid: Grid, *, inward_buffer_m: float = 0.0, max_pixels_per_plot: int | None = None,
@@ -86,6 +150,12 @@ def plot_pixels(plots, grid: Grid, *, inward_buffer_m: float = 0.0, max_pixels_p
         keys = rng.random(len(px))
         px = (px.assign(_k=keys).sort_values(["i", "_k"]).groupby("i", sort=False).head(max_pixels_per_plot)
               .drop(columns="_k"))
+    lost = np.setdiff1d(np.arange(len(plots)), px["i"].to_numpy())
+    if lost.size:
+        warnings.warn(f"{lost.size} plot(s) contain no pixel centre of the grid (smaller than a pixel, "
+                      f"outside the grid, or emptied by the inward buffer of {inward_buffer_m:g} m), ids "
+                      f"{plots['plot_id'].values[lost].tolist()[:10]}; they give no training sample",
+                      UserWarning, stacklevel=2)
     px = px.sort_values(["i", "row", "col"]).reset_index(drop=True)
     px["plot_id"] = plots["plot_id"].values[px["i"].values]
     px["class"] = plots["class"].values[px["i"].values]

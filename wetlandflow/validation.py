@@ -413,7 +413,8 @@ def check_splits(
     for cls, n in few.items():
         warnings.warn(
             f"class {cls!r} has {n} plot(s) but there are {len(splits)} folds, so it is absent from some "
-            "test folds. Collect more plots, merge it with a similar class, or use fewer folds.",
+            "test folds. Collect more plots, merge it with a similar class, or use fewer folds "
+            "(validation.n_folds in the project file).",
             FewPlotsWarning,
             stacklevel=3,
         )
@@ -427,7 +428,8 @@ def check_splits(
                     on_missing,
                     f"class {cls!r} ({n_plots[cls]} plot(s) in total) is missing from the {side} side of "
                     f"fold {f}. Expected every class on both sides of every fold. Merge {cls!r} with a "
-                    f"similar class, collect more plots of it, or use fewer folds (now {len(splits)}).",
+                    f"similar class, collect more plots of it, or use fewer folds (validation.n_folds, now "
+                    f"{len(splits)}).",
                 )
 
 

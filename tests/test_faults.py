@@ -1,0 +1,186 @@
+"""Faults: a run killed with SIGKILL in the middle of feature building or of prediction, then rerun.
+
+For real: ``wetlandflow run`` is started as a subprocess on a small demo (128 x 128 px, 64 px chunks, so
+the cube is written in many chunks and the map in 4 windows), the run folder is polled until the stage
+is under way (the cube's temporary Zarr store exists; some prediction windows are recorded as done), and
+the process is killed with ``os.kill(pid, SIGKILL)``, which no handler can intercept.  The same folder is
+killed twice, first in feature building, then (rerun) in prediction, and finally rerun to the end:
+
+* no final-named file is partial: every file or store under its final name opens and reads completely,
+  and the manifest is valid JSON that still shows the killed step as running;
+* rerunning finishes, resumes prediction at the first window not written, leaves no temporary behind,
+  and gives results identical to an uninterrupted run (cube values, out-of-fold metrics, the data of
+  every map, the area table).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import rasterio
+import tomli_w
+import xarray as xr
+from conftest import tiny_project_doc
+
+pytestmark = pytest.mark.skipif(not hasattr(signal, "SIGKILL"), reason="needs POSIX signals")
+
+MAPS = ("probability", "class", "confidence", "dissimilarity", "applicability", "class_final")
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory) -> Path:
+    """The demo folder with a light base project (optical and terrain features, 64 px chunks)."""
+    folder = tmp_path_factory.mktemp("faults")
+    doc = tiny_project_doc(folder, chunk_size=64)
+    for name in ("reference", "killed"):
+        doc["project"]["output_dir"] = f"runs/{name}"
+        (folder / f"{name}.toml").write_text(tomli_w.dumps(doc))
+    return folder
+
+
+@pytest.fixture(scope="module")
+def reference(demo) -> Path:
+    """An uninterrupted run of the same project."""
+    from wetlandflow.run import run_project
+
+    return run_project(demo / "reference.toml", progress=False).run_dir
+
+
+def start_run(demo: Path, name: str) -> subprocess.Popen:
+    return subprocess.Popen(
+        [sys.executable, "-m", "wetlandflow.cli", "run", "--quiet", f"{name}.toml"],
+        cwd=demo,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.PIPE,
+    )
+
+
+def kill_when(proc: subprocess.Popen, ready, *, timeout: float = 300.0) -> None:
+    """Poll ``ready()`` every few milliseconds; SIGKILL the run as soon as it is true."""
+    t0 = time.monotonic()
+    while not ready():
+        if proc.poll() is not None:
+            pytest.fail(
+                f"the run ended (code {proc.returncode}) before the stage was reached: "
+                f"{proc.stderr.read().decode()[-2000:]}"
+            )
+        if time.monotonic() - t0 > timeout:
+            proc.kill()
+            pytest.fail("the stage was not reached in time")
+        time.sleep(0.005)
+    os.kill(proc.pid, signal.SIGKILL)
+    assert proc.wait(timeout=60) == -signal.SIGKILL
+
+
+def step_status(run_dir: Path, step: str) -> str | None:
+    try:
+        return json.loads((run_dir / "manifest.json").read_text())["steps"].get(step, {}).get("status")
+    except (OSError, ValueError, KeyError):
+        return None
+
+
+def windows_done(run_dir: Path) -> int:
+    try:
+        return len(json.loads((run_dir / "maps" / ".stage" / "windows_done.json").read_text())["done"])
+    except (OSError, ValueError, KeyError):
+        return 0
+
+
+def assert_final_files_complete(run_dir: Path) -> None:
+    """Every file under its final name (not a dot-named temporary or stage) reads completely."""
+    from wetlandflow.features.cube import open_cube
+
+    for path in sorted(run_dir.rglob("*")):
+        rel = path.relative_to(run_dir)
+        if any(part.startswith(".") for part in rel.parts) or any(p.suffix == ".zarr" for p in rel.parents):
+            continue
+        if path.suffix == ".zarr":
+            open_cube(path).load()
+        elif path.suffix == ".json":
+            json.loads(path.read_text())
+        elif path.suffix == ".tif":
+            with rasterio.open(path) as src:
+                src.read()
+        elif path.suffix == ".parquet":
+            pd.read_parquet(path)
+        elif path.suffix == ".csv":
+            pd.read_csv(path)
+
+
+def leftovers(run_dir: Path) -> list[Path]:
+    return [p for p in run_dir.rglob("*") if p.name.endswith(".partial") or p.name == ".stage"]
+
+
+def raster_data(path: Path) -> np.ndarray:
+    with rasterio.open(path) as src:
+        return src.read()
+
+
+def assert_same_results(run_dir: Path, reference: Path) -> None:
+    from wetlandflow.features.cube import open_cube
+
+    xr.testing.assert_identical(
+        open_cube(run_dir / "features.zarr").load(), open_cube(reference / "features.zarr").load()
+    )
+    assert json.loads((run_dir / "validation" / "metrics.json").read_text()) == json.loads(
+        (reference / "validation" / "metrics.json").read_text()
+    )
+    for name in MAPS:
+        np.testing.assert_array_equal(
+            raster_data(run_dir / "maps" / f"{name}.tif"),
+            raster_data(reference / "maps" / f"{name}.tif"),
+            err_msg=name,
+        )
+    pd.testing.assert_frame_equal(pd.read_csv(run_dir / "areas.csv"), pd.read_csv(reference / "areas.csv"))
+
+
+def test_killed_in_features_then_in_prediction_then_rerun(demo, reference, monkeypatch):
+    """One run folder: killed while writing the cube, rerun and killed while predicting, rerun to the end."""
+    import wetlandflow.mapping as mapping
+    from wetlandflow.run import run_project
+
+    run_dir = demo / "runs" / "killed"
+    n_windows = len(list(mapping.windows(read_grid(reference), 64)))
+    assert n_windows >= 4
+
+    # 1. killed while the cube is written: its temporary Zarr store exists and holds chunks
+    kill_when(
+        start_run(demo, "killed"),
+        lambda: any(p.is_dir() and any(p.rglob("*.*")) for p in run_dir.glob(".features.zarr.*.partial")),
+    )
+    assert not (run_dir / "features.zarr").exists()
+    assert step_status(run_dir, "features") == "running"  # the manifest tells what was under way
+    assert_final_files_complete(run_dir)
+
+    # 2. rerun, killed while predicting: some windows are staged, no map exists under its final name
+    kill_when(start_run(demo, "killed"), lambda: 1 <= windows_done(run_dir) < n_windows - 1)
+    done = windows_done(run_dir)
+    assert step_status(run_dir, "features") == "done" and step_status(run_dir, "mapping") == "running"
+    assert not any((run_dir / "maps" / f"{n}.tif").exists() for n in MAPS)
+    assert_final_files_complete(run_dir)
+
+    # 3. rerun to the end: prediction resumes at the first window not written
+    predicted = []
+    original = mapping._predict_window
+    monkeypatch.setattr(mapping, "_predict_window", lambda *a, **k: predicted.append(1) or original(*a, **k))
+    result = run_project(demo / "killed.toml", progress=False)
+    assert all(s["status"] == "done" for s in result.manifest["steps"].values())
+    assert result.manifest["steps"]["model"].get("reused")  # the steps the killed run finished are kept
+    assert 1 <= len(predicted) <= n_windows - done  # windows written before the kill are not predicted again
+    assert not leftovers(run_dir)
+    assert_same_results(run_dir, reference)
+
+
+def read_grid(run_dir: Path):
+    from wetlandflow.grid import Grid
+
+    return Grid.from_dict(json.loads((run_dir / "manifest.json").read_text())["steps"]["inputs"]["grid"])
