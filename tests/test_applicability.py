@@ -63,7 +63,8 @@ def test_matches_brute_force_pairwise_distances():
     np.testing.assert_allclose(m.mean_distance, d_bar, rtol=1e-12)
     np.testing.assert_allclose(m.train_di, train_di, rtol=1e-12)
     assert m.threshold == pytest.approx(thr, rel=1e-12)
-    np.testing.assert_allclose(dissimilarity_index(m, X_new), di, rtol=1e-10)
+    for search in ("kdtree", "scan"):  # both exact searches
+        np.testing.assert_allclose(dissimilarity_index(m, X_new, search=search), di, rtol=1e-10)
 
 
 @pytest.mark.reference
@@ -224,7 +225,25 @@ def test_near_ties_and_duplicates_match_scipy_brute_force():
     folds = np.arange(400) % 4
     model = fit_applicability(X, rng.uniform(0.5, 2.0, 40), folds)
     queries = np.vstack([X[:300] + rng.normal(scale=1e-6, size=(300, 40)), rng.normal(size=(300, 40)) * 50 + 1000])
-    got = dissimilarity_index(model, queries, chunk_rows=97)
     Z = (queries - model.mean) / model.sd * model.weights
     expected = cdist(Z, model.train_scaled).min(axis=1) / model.mean_distance
-    np.testing.assert_allclose(got, expected, rtol=1e-9, atol=1e-12)
+    for search in ("kdtree", "scan"):
+        got = dissimilarity_index(model, queries, chunk_rows=97, search=search)
+        np.testing.assert_allclose(got, expected, rtol=1e-9, atol=1e-12)
+
+
+def test_search_follows_the_effective_dimensions_of_the_training_data():
+    """Points near a 3-D subspace of 30 features take the KD-tree; 30 independent features the scan."""
+    from wetlandflow.applicability import effective_dimensions, nearest_search
+
+    rng = np.random.default_rng(3)
+    low = rng.normal(size=(500, 3)) @ rng.normal(size=(3, 30)) + rng.normal(scale=1e-3, size=(500, 30))
+    full = rng.normal(size=(500, 30))
+    folds = np.arange(500) % 5
+    low_model, full_model = (fit_applicability(X, np.ones(30), folds) for X in (low, full))
+    assert effective_dimensions(low_model.train_scaled) == 3
+    assert nearest_search(low_model) == "kdtree"
+    assert effective_dimensions(full_model.train_scaled) > 20
+    assert nearest_search(full_model) == "scan"
+    with pytest.raises(ParameterError, match="search must be"):
+        dissimilarity_index(low_model, low[:5], search="approximate")

@@ -232,18 +232,53 @@ def _nearest_distances(Z: np.ndarray, train: np.ndarray, train32: np.ndarray) ->
     return np.sqrt(((Z - train[nearest]) ** 2).sum(axis=1))
 
 
-def dissimilarity_index(model: ApplicabilityModel, X: np.ndarray, *, chunk_rows: int = 2048) -> np.ndarray:
+# A KD-tree prunes well when the training points lie near a low-dimensional subspace, whatever the number of
+# features.  Measured on the demo's 62 features (4 408 training points; 98.9 % of the weighted, scaled variance
+# in 5 principal components): the tree answered 229 kpx/s, the matrix-product scan 41 kpx/s, both exact.  On
+# 40 independent N(0, 1) features the tree fell to 0.65 x the scan.  Earth-observation predictors are strongly
+# correlated (seasons, bands and indices of one surface), so the tree is the usual choice; the scan is kept for
+# data that really fill many dimensions.  The cut-off below is a rule of thumb (common practice, no source).
+KDTREE_MAX_DIMENSIONS = 15
+VARIANCE_SHARE = 0.99
+
+
+def effective_dimensions(train_scaled: np.ndarray, *, share: float = VARIANCE_SHARE) -> int:
+    """Number of principal components holding ``share`` of the variance of the scaled training points."""
+    T = np.asarray(train_scaled, dtype=np.float64)
+    if T.shape[0] < 2:
+        return int(T.shape[1])
+    s2 = np.linalg.svd(T - T.mean(axis=0), compute_uv=False) ** 2
+    if not s2.sum() > 0:
+        return 0
+    return int(np.searchsorted(np.cumsum(s2) / s2.sum(), share) + 1)
+
+
+def nearest_search(model: ApplicabilityModel) -> str:
+    """``"kdtree"`` or ``"scan"``: the exact nearest-neighbour search :func:`dissimilarity_index` uses.
+
+    Decided from the training data alone (:func:`effective_dimensions` against
+    ``KDTREE_MAX_DIMENSIONS``), so a model always takes the same path and gives the same bits.
+    """
+    return "kdtree" if effective_dimensions(model.train_scaled) <= KDTREE_MAX_DIMENSIONS else "scan"
+
+
+def dissimilarity_index(model: ApplicabilityModel, X: np.ndarray, *, chunk_rows: int = 2048,
+                        search: str | None = None) -> np.ndarray:
     """DI of each row of ``X``: exact nearest-training-point distance over ``d_bar``.
 
-    Rows are processed ``chunk_rows`` at a time against all scaled training points
-    (a matrix product per chunk, see :func:`_nearest_distances`), so memory stays bounded by
-    ``chunk_rows x n_train`` float32 values (2048 x 5000: 40 MB).
+    The nearest training point is found exactly, by a KD-tree (``scipy.spatial.cKDTree``) when the
+    training points span few effective dimensions, else by a matrix-product scan of all of them
+    (:func:`_nearest_distances`); see :func:`nearest_search`.  Rows are processed ``chunk_rows`` at a
+    time, so the scan's memory stays bounded by ``chunk_rows x n_train`` float32 values (2048 x 5000:
+    40 MB).
 
     Parameters
     ----------
     model : ApplicabilityModel
     X : ndarray (n, F)
     chunk_rows : int
+    search : {"kdtree", "scan"}, optional
+        Force one search (both are exact); default :func:`nearest_search`.
 
     Returns
     -------
@@ -254,15 +289,23 @@ def dissimilarity_index(model: ApplicabilityModel, X: np.ndarray, *, chunk_rows:
         raise ParameterError(f"X must be (n, {model.n_features}) like the training data, got {X.shape}")
     if chunk_rows < 1:
         raise ParameterError(f"chunk_rows must be >= 1, got {chunk_rows}")
+    search = search or nearest_search(model)
+    if search not in ("kdtree", "scan"):
+        raise ParameterError(f"search must be 'kdtree' or 'scan', got {search!r}")
     train = np.ascontiguousarray(model.train_scaled, dtype=np.float64)
-    train32 = train.astype(np.float32)
+    if search == "kdtree":
+        tree = cKDTree(train)
+        nearest = lambda Z: tree.query(Z, k=1)[0]  # noqa: E731  (one thread: windows may run in parallel)
+    else:
+        train32 = train.astype(np.float32)
+        nearest = lambda Z: _nearest_distances(Z, train, train32)  # noqa: E731
     out = np.full(X.shape[0], np.nan)
     for start in range(0, X.shape[0], chunk_rows):
         Z = _scale(model, X[start:start + chunk_rows])
         ok = ~np.isnan(Z).any(axis=1)
         if ok.any():
             part = out[start:start + Z.shape[0]]
-            part[ok] = _nearest_distances(Z[ok], train, train32) / model.mean_distance
+            part[ok] = nearest(Z[ok]) / model.mean_distance
     return out
 
 

@@ -49,9 +49,11 @@ CONFIDENCE_BANDS = ("max_probability", "margin", "normalised_entropy")
 
 
 def _profile(grid: Grid, count: int, dtype: str, nodata: float) -> dict:
+    # Staged windows are written uncompressed: they are read once, by the COG build, which compresses;
+    # compressing them too would spend a second deflate pass of every layer on the single writer.
     return {"driver": "GTiff", "width": grid.width, "height": grid.height, "count": count, "dtype": dtype,
             "crs": grid.crs, "transform": grid.transform, "nodata": nodata, "tiled": True, "blockxsize": 256,
-            "blockysize": 256, "compress": "deflate", "BIGTIFF": "IF_SAFER"}
+            "blockysize": 256, "compress": "none", "BIGTIFF": "IF_SAFER"}
 
 
 LAYERS = ("probability", "class", "confidence")
@@ -220,8 +222,9 @@ def build_cog(src_path: str | Path, dst_path: str | Path, *, overview_resampling
     from rasterio.shutil import copy as rio_copy
 
     with atomic_path(dst_path) as tmp:
+        # NUM_THREADS: GDAL compresses the tiles and computes the overviews on every core
         rio_copy(str(src_path), str(tmp), driver="COG", compress="DEFLATE", blocksize=256,
-                 overview_resampling=overview_resampling, BIGTIFF="IF_SAFER")
+                 overview_resampling=overview_resampling, BIGTIFF="IF_SAFER", NUM_THREADS="ALL_CPUS")
         with rasterio.open(tmp) as ds:
             if not ds.overviews(1) and max(ds.width, ds.height) > 512:
                 raise RuntimeError(f"COG {dst_path} was written without overviews")
