@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import copy
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -72,7 +74,8 @@ def test_child_model_sees_only_its_parents_samples(fitted):
 
 @pytest.mark.reference
 def test_gate_error_is_bounded_by_the_parent_probability():
-    """Closed form (bound derived in the class Notes): |P_gated - P_full| <= P(parent) <= threshold."""
+    """Analytic bound (derived in the class Notes; follows from the law of total probability, no external
+    source needed): |P_gated - P_full| <= P(parent) <= threshold."""
     X, y, _, _ = data()
     threshold = 0.3
     full = model(0.0).fit(X, y).predict_proba_levels(X)
@@ -116,3 +119,85 @@ def test_bad_tree_is_rejected_with_the_fix():
         HierarchicalClassifier(CLASSES, {"a": ("marsh",), "b": ("marsh",)}, base_params=BASE).fit(X, y)
     with pytest.raises(ModelError, match="gate_threshold"):
         model(1.5).fit(X, y)
+
+
+def gated_copy(m, gate):
+    """The fitted model with another gate (the gate is read at predict time; the fit is shared)."""
+    return copy.deepcopy(m).set_params(gate_threshold=gate)
+
+
+def test_gate_zero_is_the_plain_chain_rule(fitted):
+    """gate 0 (the default) runs the child model on every row: top x child, assembled here by hand."""
+    m, X, _ = fitted
+    Xa = X.to_numpy(np.float32)
+    top = m.top_model_.predict_proba(Xa).astype(np.float64)
+    top /= top.sum(axis=1, keepdims=True)
+    child = m.child_models_["wetland"].predict_proba(Xa).astype(np.float64)
+    child /= child.sum(axis=1, keepdims=True)
+    wet = list(m.top_classes_).index("wetland")
+    expected = np.zeros((len(X), len(CLASSES)))
+    for k, c in enumerate(PARENTS["wetland"]):
+        expected[:, CLASSES.index(c)] = top[:, wet] * child[:, k]
+    for c in ("upland", "open_water"):
+        expected[:, CLASSES.index(c)] = top[:, list(m.top_classes_).index(c)]
+    np.testing.assert_allclose(m.predict_proba(X), expected, rtol=0, atol=1e-12)
+    np.testing.assert_array_equal(gated_copy(m, 0.0).predict_proba(X), m.predict_proba(X))
+
+
+@pytest.mark.reference
+@pytest.mark.parametrize("gate", [0.03, 0.1, 0.5])
+def test_every_gate_keeps_rows_summing_to_one_within_the_bound(fitted, gate):
+    """Analytic (law of total probability, no external source needed): the children of a parent sum to
+    P(parent), so on a gated row each exact child probability is <= P(parent) <= gate, and so is the
+    gated estimate; every child probability then moves by at most ``gate``, all other columns not at all."""
+    m, X, _ = fitted
+    full = m.predict_proba_levels(X)
+    gated = gated_copy(m, gate).predict_proba(X)
+    p_parent = full["top"]["wetland"].to_numpy()
+    closed = p_parent <= gate
+    assert closed.any()
+    kids = [CLASSES.index(c) for c in PARENTS["wetland"]]
+    exact = full["leaf"].to_numpy()
+    assert (exact[closed][:, kids] <= p_parent[closed, None] + 1e-12).all()
+    err = np.abs(gated - exact)
+    assert err.max() <= gate + 1e-12
+    assert err[closed].max() > 0  # priors differ from the child model there: the bound is exercised
+    others = [i for i in range(len(CLASSES)) if i not in kids]
+    np.testing.assert_array_equal(err[:, others], 0.0)
+    np.testing.assert_allclose(gated.sum(axis=1), 1.0, atol=1e-9)
+    np.testing.assert_allclose(gated[:, kids].sum(axis=1), p_parent, atol=1e-12)
+
+
+class CountingModel:
+    """Wraps a child model and keeps every matrix it is asked to predict."""
+
+    def __init__(self, inner):
+        self.inner = inner
+        self.calls: list[np.ndarray] = []
+
+    def predict_proba(self, X):
+        self.calls.append(np.array(X, copy=True))
+        return self.inner.predict_proba(X)
+
+
+def test_child_model_runs_only_on_open_rows(fitted):
+    m, X, _ = fitted
+    gate = 0.05
+    g = gated_copy(m, gate)
+    spy = CountingModel(g.child_models_["wetland"])
+    g.child_models_["wetland"] = spy
+    p_parent = g.predict_proba_levels(X)["top"]["wetland"].to_numpy()
+    opened = p_parent > gate
+    assert opened.any() and (~opened).any()
+    assert len(spy.calls) == 1
+    np.testing.assert_array_equal(spy.calls[0], X.to_numpy(np.float32)[opened])
+    spy.calls.clear()
+    g.predict_proba(X[~opened])  # every row closed: the child model is never asked
+    assert spy.calls == []
+
+
+def test_gate_is_checked_again_at_predict_time(fitted):
+    m, X, _ = fitted
+    for bad in (1.0, -0.1, "0.1"):
+        with pytest.raises(ModelError, match=r"gate_threshold.*\[0, 1\)"):
+            gated_copy(m, bad).predict_proba(X)

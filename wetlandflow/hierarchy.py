@@ -91,19 +91,27 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
         Keyword arguments for every :class:`~wetlandflow.models.WetlandClassifier`
         (``kind``, ``n_estimators``, ...); ``classes`` is set per level.
     gate_threshold : float, default 0.0
-        The second level is evaluated only for rows where ``P(parent) >
-        gate_threshold``.  Elsewhere the parent's probability is shared among its
-        children in proportion to the children's training frequencies (their
-        priors), so no child model is run for rows that are clearly not in the
-        group.
+        The gate, in [0, 1).  The second level (a parent's child model) is
+        evaluated only for rows where ``P(parent) > gate_threshold``.  Elsewhere
+        the parent's probability is shared among its children in proportion to
+        the children's training frequencies (their priors), so no child model
+        is run for rows that are clearly not in the group.  ``0.0`` turns the
+        gate off: every row with a non-zero parent probability goes through the
+        child model, and a row with ``P(parent) == 0`` gets 0 for every child
+        either way.  The gate is read at prediction time, so
+        ``set_params(gate_threshold=...)`` on a fitted model changes only what
+        ``predict_proba`` computes, not the fitted levels.
 
     Notes
     -----
-    Error bound of the gate.  On a gated row the leaf estimate is ``P(parent) *
-    prior(leaf)`` instead of ``P(parent) * P(leaf | parent)``.  Both factors on
-    the right are in [0, 1], so each leaf's absolute error is
-    ``P(parent) * |prior(leaf) - P(leaf | parent)| <= P(parent) <= gate_threshold``.
-    Top-level probabilities and sums over each group are exact on every row.
+    Error bound of the gate.  By the law of total probability the children of
+    a parent share its probability, ``sum_c P(c) = P(parent)``, so on a gated
+    row the exact probability of every child class is itself at most
+    ``P(parent) <= gate_threshold``.  The gated estimate ``P(parent) *
+    prior(c)`` lies in the same interval ``[0, P(parent)]``, so each child's
+    absolute error is ``P(parent) * |prior(c) - P(c | parent)| <= P(parent) <=
+    gate_threshold``.  Top-level probabilities and the sum over each group are
+    exact on every row, and every row still sums to 1.
 
     Inside ``cross_val_predict`` use ``method="predict"`` (the default):
     scikit-learn integer-encodes the labels for ``method="predict_proba"``, and
@@ -156,13 +164,18 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
         classes = tuple(self.classes)
         parents = {str(p): tuple(cs) for p, cs in (self.parents or {}).items()}
         _check_tree(classes, parents)
+        self._gate()
+        return classes, parents
+
+    def _gate(self) -> float:
+        """The validated gate (checked at fit and again at predict: it may be set on a fitted model)."""
         t = self.gate_threshold
-        if not (np.isscalar(t) and 0.0 <= float(t) < 1.0):
+        if not (np.isscalar(t) and not isinstance(t, (bool, str)) and 0.0 <= float(t) < 1.0):
             raise ModelError(
                 "The 'gate_threshold' parameter of HierarchicalClassifier must be a float in [0, 1); "
-                f"got {t!r}."
+                f"got {t!r}. Use 0.0 for no gate, or a small probability such as 0.02."
             )
-        return classes, parents
+        return float(t)
 
     def fit(self, X: Any, y: Any, sample_weight: Any = None) -> HierarchicalClassifier:
         """Fit the top-level model and one child model per parent.
@@ -218,6 +231,7 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
         """Top probabilities, per-parent conditional probabilities and leaf probabilities."""
         if not hasattr(self, "top_model_"):
             raise ModelError("this HierarchicalClassifier is not fitted yet; call fit(X, y) first.")
+        gate = self._gate()
         Xa = np.asarray(X, dtype=np.float32)
         top = _normalise(self.top_model_.predict_proba(Xa))
         leaf = np.zeros((Xa.shape[0], len(self.classes_)))
@@ -227,16 +241,17 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
             if t not in self.child_models_:
                 leaf[:, col[t]] = top[:, j]
                 continue
-            cond = self._conditional(t, Xa, top[:, j])
+            cond = self._conditional(t, Xa, top[:, j], gate)
             conditional[t] = cond
             for k, c in enumerate(self.parents_[t]):
                 leaf[:, col[c]] = top[:, j] * cond[:, k]
         return top, conditional, leaf
 
-    def _conditional(self, parent: str, X: np.ndarray, p_parent: np.ndarray) -> np.ndarray:
+    def _conditional(self, parent: str, X: np.ndarray, p_parent: np.ndarray, gate: float) -> np.ndarray:
         """P(child | parent): the child model where the gate is open, the priors elsewhere."""
         cond = np.tile(self.priors_[parent], (X.shape[0], 1))
-        open_rows = p_parent > float(self.gate_threshold)
+        # Only the open rows are copied out and sent to the child model: that is the whole saving.
+        open_rows = p_parent > gate
         if open_rows.any():
             cond[open_rows] = _normalise(self.child_models_[parent].predict_proba(X[open_rows]))
         return cond
