@@ -61,6 +61,23 @@ def test_deterministic():
     np.testing.assert_array_equal(a, b)
 
 
+def test_threads_are_fixed_whatever_the_openmp_limit():
+    """A one-thread OpenMP limit (``OMP_NUM_THREADS=1``, as dask.distributed sets it) does not change the
+    model fitted with ``n_threads=2``; a one-thread model is another model, so the check can fail."""
+    from threadpoolctl import threadpool_limits
+
+    rng = np.random.default_rng(0)
+    X = rng.normal(size=(3000, 12)).astype(np.float32)
+    y = np.array(CLASSES)[rng.integers(0, len(CLASSES), 3000)]
+    make = lambda n: WetlandClassifier(classes=CLASSES, n_estimators=20, n_threads=n)  # noqa: E731
+    raw = lambda m: bytes(m.model_.get_booster().save_raw("ubj"))  # noqa: E731
+    free = raw(make(2).fit(X, y))
+    with threadpool_limits(limits=1, user_api="openmp"):
+        limited = raw(make(2).fit(X, y))
+    assert limited == free
+    assert raw(make(1).fit(X, y)) != free
+
+
 @pytest.mark.parametrize("kind", ["xgboost", "random_forest"])
 def test_nan_handled_the_same_at_fit_and_predict(kind):
     X, y = data()
