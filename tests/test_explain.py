@@ -356,3 +356,140 @@ def test_window_contributions_add_up_to_the_margin_of_every_pixel_and_class(xgb_
     np.testing.assert_allclose(d.values, (parts[0] + parts[1]).values, atol=1e-6)
     with pytest.raises(ParameterError, match="class_name"):
         contribution_map(contrib, cube, "no_such_class", feature="signal_a")
+
+
+# --------------------------------------------------------------------------- hierarchical models
+
+
+def _hierarchy(kind: str = "xgboost"):
+    from wetlandflow.hierarchy import HierarchicalClassifier
+
+    X, y = _data(300, seed=2)
+    base = {"kind": kind, "n_estimators": 15, "max_depth": 3, "n_threads": 1}
+    model = HierarchicalClassifier(SCHEME, {"wetland": ("marsh", "bog")}, base_params=base)
+    return model.fit(X.to_numpy(), y), X
+
+
+@pytest.fixture(scope="module")
+def hier():
+    return _hierarchy()
+
+
+def _interventional_shapley(f, x: np.ndarray, background: np.ndarray) -> np.ndarray:
+    """Shapley values by the definition, phi_i = sum_S |S|!(M-|S|-1)!/M! [v(S + i) - v(S)], with the
+    interventional value function v(S) = mean_b f(x_S, b_rest) over the background rows (Shapley 1953;
+    Lundberg & Lee 2017, eq. 8-11); written here independently of shap's code."""
+    m = x.size
+
+    def v(subset):
+        Z = background.copy()
+        Z[:, list(subset)] = x[list(subset)]
+        return f(Z).mean(axis=0)
+
+    phi = np.zeros((m, f(x[None]).shape[1]))
+    for i in range(m):
+        others = [j for j in range(m) if j != i]
+        for size in range(m):
+            weight = math.factorial(size) * math.factorial(m - size - 1) / math.factorial(m)
+            for s in itertools.combinations(others, size):
+                phi[i] += weight * (v((*s, i)) - v(s))
+    return phi
+
+
+@pytest.mark.reference
+@pytest.mark.parametrize("method", ["exact", "permutation"])
+def test_combined_values_add_up_to_the_leaf_probabilities(hier, method):
+    """Local accuracy (Lundberg & Lee 2017, A unified approach to interpreting model predictions, NeurIPS 30,
+    property 1): base value + sum of the attributions = the model output, here P(leaf) of the whole
+    hierarchy for every class; the base value is the mean output over the background (shap library's
+    ExactExplainer / PermutationExplainer).  atol 1e-6: float32 storage of the values (DERIVED)."""
+    from wetlandflow.explain import combined_shap_values
+
+    model, X = hier
+    rows = X.iloc[:12]
+    sv = combined_shap_values(model, rows, features=FEATURES, background=X.iloc[100:120], method=method,
+                              seed=3)
+    recon = (sv["base_value"] + sv["values"].sum("feature")).transpose("sample", "class").values
+    assert sv.attrs["output_scale"] == "probability" and sv.attrs["explainer"] == method
+    assert list(sv["class"].values) == list(SCHEME)
+    np.testing.assert_allclose(recon, model.predict_proba(rows), atol=1e-6)
+    bg = X.iloc[100:120].to_numpy(np.float32)
+    np.testing.assert_allclose(sv["base_value"].values, model.predict_proba(bg).mean(axis=0), atol=1e-9)
+    # open_water never trained: probability 0 everywhere, nothing to attribute
+    assert not bool(sv["present"].sel({"class": "open_water"}))
+    np.testing.assert_array_equal(sv["values"].sel({"class": "open_water"}).values, 0.0)
+
+
+@pytest.mark.reference
+def test_combined_exact_values_match_the_shapley_formula(hier):
+    """The exact method against Shapley values computed here from the definition (Shapley 1953) with the
+    interventional value function of Lundberg & Lee (2017), same background; atol 1e-6 for float32."""
+    from wetlandflow.explain import combined_shap_values
+
+    model, X = hier
+    bg = X.iloc[200:215].to_numpy(np.float32)
+    rows = X.iloc[:3].to_numpy(np.float32)
+    sv = combined_shap_values(model, rows, features=FEATURES, background=bg, method="exact")
+    for r in range(len(rows)):
+        expected = _interventional_shapley(model.predict_proba, rows[r].astype(np.float64),
+                                           bg.astype(np.float64))
+        np.testing.assert_allclose(sv["values"].values[r], expected, atol=1e-6)
+
+
+@pytest.mark.reference
+@pytest.mark.parametrize("kind", ["xgboost", "random_forest"])
+def test_per_level_values_add_up_to_each_level_output(kind):
+    """Per level, exact TreeSHAP local accuracy as for a flat model (Lundberg et al. 2020): base + sum phi =
+    the level's raw margin (XGBoost; xgboost docs: pred_contribs rows sum to output_margin) or its
+    predict_proba (forest), for the top level and for the child model, on every row."""
+    from xgboost import DMatrix
+
+    from wetlandflow.explain import hierarchical_shap_values
+
+    model, X = _hierarchy(kind)
+    rows = X.iloc[:30]
+    out = hierarchical_shap_values(model, rows, features=FEATURES, combined=False)
+    assert set(out) == {"top", "wetland"}
+    for name, level in (("top", model.top_model_), ("wetland", model.child_models_["wetland"])):
+        sv = out[name]
+        assert sv.attrs["level"] == name and list(sv["class"].values) == list(level.classes_)
+        present = list(level.present_)
+        recon = (sv["base_value"] + sv["values"].sum("feature")).sel({"class": present})
+        recon = recon.transpose("sample", "class")
+        if kind == "xgboost":
+            booster = level.model_.get_booster()
+            expected = booster.predict(DMatrix(rows.to_numpy(np.float32)), output_margin=True)
+            np.testing.assert_allclose(recon.values, expected, atol=1e-4)
+        else:
+            expected = level.predict_proba(rows.to_numpy(np.float32))[:, [list(level.classes_).index(c)
+                                                                          for c in present]]
+            np.testing.assert_allclose(recon.values, expected, atol=1e-5)
+
+
+def test_model_shap_values_dispatch_and_refusals(hier, xgb_model, data):
+    from wetlandflow.errors import ModelError
+    from wetlandflow.explain import hierarchical_shap_values, model_shap_values
+
+    model, X = hier
+    combined = model_shap_values(model, X.iloc[:4], features=FEATURES, method="exact")
+    assert combined.attrs["level"] == "combined"
+    flat = model_shap_values(xgb_model, data[0].iloc[:4], features=FEATURES)
+    assert flat.attrs["output_scale"] == "margin"
+    with pytest.raises(ModelError, match="HierarchicalClassifier"):
+        hierarchical_shap_values(xgb_model, data[0], features=FEATURES)
+    with pytest.raises(ParameterError, match="method"):
+        model_shap_values(model, X.iloc[:4], features=FEATURES, method="kernel")
+    state = np.random.get_state()[1].copy()  # noqa: NPY002 - the global generator shap uses
+    model_shap_values(model, X.iloc[:4], features=FEATURES, method="permutation", seed=5)
+    np.testing.assert_array_equal(np.random.get_state()[1], state)  # noqa: NPY002 - shap's seeding undone
+
+
+def test_ranking_stability_of_two_seeds_is_a_two_by_two_matrix(data):
+    X, y = data
+
+    def fit(X, y, seed):
+        return WetlandClassifier(classes=SCHEME, n_estimators=10, max_depth=3, random_state=seed).fit(
+            X.to_numpy(), y)
+
+    rho = ranking_stability(fit, X, y, seeds=[0, 1])
+    assert rho.shape == (2, 2) and rho.iloc[0, 1] == rho.iloc[1, 0] == rho.attrs["mean_rho"]

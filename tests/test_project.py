@@ -24,6 +24,7 @@ def test_defaults_are_filled(project_copy):
 
     p = load_project(project_copy(drop))
     assert p.model.kind == "xgboost" and p.output.chunk_size == 512
+    assert p.model.hierarchical is False and p.model.gate_threshold == 0.0
 
 
 def test_round_trip_and_hash_is_stable(small_demo):
@@ -57,6 +58,18 @@ def test_hash_changes_with_parameters(project_copy, small_demo):
         (lambda d: d["classes"].update(names=["upland", "upland", "fen"]), "classes.names", "duplicate"),
         (lambda d: d["plots"].pop("path"), "plots.path", "missing required key"),
         (lambda d: d["optical"][0].update(date="May 14"), "optical[0].date", "date"),
+        (lambda d: (d["model"].update(hierarchical=True), d["classes"].pop("parents")), "model.hierarchical",
+         "[classes.parents]"),
+        (lambda d: d["model"].update(hierarchical="yes"), "model.hierarchical", "true or false"),
+        (lambda d: d["model"].update(hierarchical=True, gate_threshold=1.0), "model.gate_threshold",
+         "[0, 1)"),
+        (lambda d: d["model"].update(hierarchical=True, gate_threshold=-0.1), "model.gate_threshold",
+         "[0, 1)"),
+        (lambda d: d["model"].update(gate_threshold=0.05), "model.gate_threshold", "hierarchical = true"),
+        (lambda d: (d["model"].update(hierarchical=True), d["classes"]["parents"].update(top=["upland"])),
+         "classes.parents.top", "reserved"),
+        (lambda d: (d["model"].update(hierarchical=True), d["classes"]["parents"].update(peat=[])),
+         "classes.parents.peat", "no classes"),
     ],
 )
 def test_bad_project_files_name_the_key(project_copy, mutate, key, words):

@@ -8,6 +8,14 @@ contribution to the model output, with local accuracy
 contributions are on the raw margin (log-odds) scale, forest contributions on
 the probability scale; ``attrs["output_scale"]`` says which.
 
+A :class:`~wetlandflow.hierarchy.HierarchicalClassifier` is explained per
+level (exact TreeSHAP of each level's classifier, :func:`hierarchical_shap_values`)
+and as a whole (:func:`combined_shap_values`): the leaf probabilities
+``P(leaf) = P(parent) x P(leaf | parent)`` are a product of two models, which no
+tree explainer sees as one, so their attributions are computed model-agnostically
+with shap's permutation (or, for few features, exact) explainer against a
+background sample, on the probability scale.
+
 Summaries (global, per domain, per correlation cluster, ranking stability
 across seeds) are plain DataFrames; figures live in :mod:`wetlandflow.explain_plots`.
 
@@ -19,6 +27,13 @@ global understanding with explainable AI for trees. Nature Machine Intelligence
 
 Chen, T., Guestrin, C. (2016). XGBoost: A Scalable Tree Boosting System.
 Proc. 22nd ACM SIGKDD, 785-794.
+
+Lundberg, S. M., Lee, S.-I. (2017). A unified approach to interpreting model
+predictions. Advances in Neural Information Processing Systems 30, 4765-4774.
+
+Strumbelj, E., Kononenko, I. (2014). Explaining prediction models and individual
+predictions with feature contributions. Knowledge and Information Systems 41(3),
+647-665.
 """
 
 from __future__ import annotations
@@ -40,11 +55,16 @@ REFERENCE = ("Lundberg et al. (2020) From local explanations to global understan
 CLUSTER_NOTE = ("Correlated predictors share credit unpredictably: TreeSHAP splits a signal among correlated "
                 "features according to which one the trees happened to split on, so member ranks within a "
                 "cluster can swap between seeds or resamples. Read the cluster totals, not the member ranks.")
+COMBINED_REFERENCE = ("Lundberg & Lee (2017) A unified approach to interpreting model predictions, "
+                      "NeurIPS 30; Strumbelj & Kononenko (2014) Explaining prediction models and individual "
+                      "predictions with feature contributions, Knowledge and Information Systems 41, 647-665")
 _DEFAULT_CHUNK_ROWS = 50_000
+EXACT_MAX_FEATURES = 10  # method="auto": exact enumeration (2^F coalitions per row) up to this many features
 
 __all__ = [
-    "CLUSTER_NOTE", "cluster_importance", "domain_importance", "explain_budget", "global_importance",
-    "contribution_map", "ranking_stability", "shap_interactions", "shap_map", "shap_values", "stratified_subsample",
+    "CLUSTER_NOTE", "cluster_importance", "combined_shap_values", "domain_importance", "explain_budget",
+    "global_importance", "contribution_map", "hierarchical_shap_values", "model_levels", "model_shap_values",
+    "ranking_stability", "shap_interactions", "shap_map", "shap_values", "stratified_subsample",
     "window_contributions", "write_shap_map",
 ]
 
@@ -248,6 +268,212 @@ def _assemble(model: WetlandClassifier, vals: np.ndarray, base: np.ndarray, samp
              "reference": REFERENCE}
     return xr.Dataset({"values": (("sample", "feature", "class"), full), "base_value": (("class",), full_base)},
                       coords=coords, attrs=attrs)
+
+
+# --------------------------------------------------------------------------- hierarchical models
+
+
+def _is_hierarchical(model: Any) -> bool:
+    from .hierarchy import HierarchicalClassifier
+
+    return isinstance(model, HierarchicalClassifier)
+
+
+def model_levels(model: Any) -> dict[str, WetlandClassifier]:
+    """The fitted classifiers of a hierarchical model by level name: ``"top"``, then each parent with a model.
+
+    A parent with fewer than two children in training has no classifier (its priors are its conditional
+    probabilities) and is left out.
+    """
+    if not hasattr(model, "top_model_"):
+        raise ModelError("model_levels needs a fitted HierarchicalClassifier; call fit(X, y) first")
+    levels = {"top": model.top_model_}
+    levels |= {p: m for p, m in model.child_models_.items() if isinstance(m, WetlandClassifier)}
+    return levels
+
+
+def _background(Xm: np.ndarray, background: Any, features: Sequence[str], model: Any, n_background: int,
+                seed: int) -> np.ndarray:
+    if background is not None:
+        return _as_matrix(background, features, model)[0]
+    if n_background < 1:
+        raise ParameterError(f"n_background must be a positive number of rows; got {n_background!r}")
+    if Xm.shape[0] == 0:
+        raise ParameterError("no rows to explain and no background given; pass rows, or background=")
+    if Xm.shape[0] <= n_background:
+        return Xm
+    pick = np.sort(np.random.default_rng(seed).choice(Xm.shape[0], size=n_background, replace=False))
+    return Xm[pick]
+
+
+def combined_shap_values(model: Any, X: pd.DataFrame | np.ndarray, *, features: list[str],
+                         background: pd.DataFrame | np.ndarray | None = None, n_background: int = 50,
+                         method: str = "auto", n_permutations: int = 2, seed: int = 0) -> xr.Dataset:
+    """SHAP values of the leaf probabilities of a whole hierarchical model (any model with ``predict_proba``).
+
+    The explained function is ``predict_proba``: for a
+    :class:`~wetlandflow.hierarchy.HierarchicalClassifier` the leaf probabilities
+    ``P(parent) x P(leaf | parent)`` of the composed model, gate included.  A
+    feature left out of a coalition takes the values of the background rows
+    (the interventional, or marginal, value function of Lundberg & Lee 2017),
+    and the model output is averaged over them.
+
+    Parameters
+    ----------
+    model : fitted classifier with ``predict_proba`` and ``classes_``
+    X : DataFrame or ndarray of shape (n, F)
+        Rows to explain, read as in :func:`shap_values`.
+    features : list of str
+        Feature names in training order.
+    background : DataFrame or ndarray, optional
+        Rows that stand in for a missing feature (a sample of the training
+        data).  Default: ``n_background`` rows of ``X`` drawn with ``seed``.
+    n_background : int, default 50
+        Background size when ``background`` is not given.  The cost grows
+        linearly with it (every coalition is evaluated on every background row).
+    method : {"auto", "exact", "permutation"}
+        ``"exact"`` enumerates all 2^F coalitions (shap's ``ExactExplainer``):
+        the exact Shapley values for this background.  ``"permutation"`` uses
+        shap's ``PermutationExplainer``: the Shapley values estimated from
+        ``n_permutations`` random feature orders (permutation sampling,
+        Strumbelj & Kononenko 2014), each order walked forward and backward
+        (shap's antithetic variant).  ``"auto"`` is exact up to
+        :data:`EXACT_MAX_FEATURES` features, permutation above.
+    n_permutations : int, default 2
+        Permutations per row for ``"permutation"`` (each costs 2F + 1 model
+        evaluations on the background); more gives less sampling noise.
+    seed : int
+        Seeds the background draw and the permutations (the global NumPy
+        random state that shap uses is restored afterwards).
+
+    Returns
+    -------
+    xarray.Dataset
+        As :func:`shap_values`: ``values`` (sample, feature, class) and
+        ``base_value`` (class), with ``present`` on ``class``, in the model's
+        class order; ``attrs["output_scale"]`` is ``"probability"``.  Local
+        accuracy holds for both methods (the permutation walk telescopes from
+        the all-background output to the row's output):
+        ``base_value + values.sum("feature")`` equals ``predict_proba(X)``, and
+        ``base_value`` is the mean predicted probability over the background.
+
+    Notes
+    -----
+    These values differ from TreeSHAP's even for a single tree model: TreeSHAP
+    (tree-path-dependent) takes the expectation over the training data that
+    reached each tree node, this function over the background rows; and
+    permutation values are a sampled estimate (``attrs["method"]``), exact
+    only in their sum.  Cost: about ``n x n_permutations x (2F + 1) x
+    n_background`` rows through ``predict_proba`` (``2^F x n_background`` per
+    row for the exact method).
+    """
+    try:
+        import shap
+    except ImportError as exc:  # pragma: no cover - shap is a declared dependency
+        raise ModelError("combined SHAP values need the 'shap' package; pip install shap") from exc
+    if method not in ("auto", "exact", "permutation"):
+        raise ParameterError(f"method must be 'auto', 'exact' or 'permutation'; got {method!r}")
+    if int(n_permutations) < 1:
+        raise ParameterError(f"n_permutations must be a positive integer; got {n_permutations!r}")
+    Xm, sample = _as_matrix(X, features, model)
+    bg = _background(Xm, background, features, model, n_background, seed)
+    f = len(features)
+    chosen = ("exact" if f <= EXACT_MAX_FEATURES else "permutation") if method == "auto" else method
+    classes = [str(c) for c in model.classes_]
+    k = len(classes)
+
+    def leaf_proba(Z: np.ndarray) -> np.ndarray:
+        return np.asarray(model.predict_proba(np.asarray(Z, dtype=np.float32)), dtype=np.float64)
+
+    masker = shap.maskers.Independent(bg, max_samples=len(bg))
+    state = np.random.get_state()  # noqa: NPY002 - shap seeds and draws from NumPy's global generator
+    try:
+        if chosen == "exact":
+            explainer = shap.explainers.Exact(leaf_proba, masker)
+            kwargs: dict[str, Any] = {"max_evals": max(2 ** f, 2)}
+        else:
+            explainer = shap.explainers.Permutation(leaf_proba, masker, seed=int(seed))
+            kwargs = {"max_evals": int(n_permutations) * (2 * f + 1)}
+        if Xm.shape[0]:
+            exp = explainer(Xm, silent=True, **kwargs)
+            vals = np.asarray(exp.values, dtype=np.float64).reshape(Xm.shape[0], f, k)
+            base = np.asarray(exp.base_values, dtype=np.float64).reshape(Xm.shape[0], k)[0]
+        else:
+            vals, base = np.zeros((0, f, k)), leaf_proba(bg).mean(axis=0)
+    finally:
+        np.random.set_state(state)  # noqa: NPY002 - leave the caller's global generator as it was
+    present = (np.isin(classes, model.present_leaves()) if hasattr(model, "present_leaves")
+               else np.isin(classes, [str(c) for c in getattr(model, "present_", classes)]))
+    how = ("exact Shapley values, all 2^F coalitions (shap ExactExplainer)" if chosen == "exact" else
+           f"permutation estimate, {int(n_permutations)} antithetic permutation(s) per row (shap "
+           "PermutationExplainer)")
+    attrs = {"output_scale": "probability", "level": "combined",
+             "model_kind": f"hierarchical ({(model.base_params or {}).get('kind', 'xgboost')})"
+             if _is_hierarchical(model) else str(getattr(model, "kind", type(model).__name__)),
+             "method": f"{how} of predict_proba, interventional value function over {len(bg)} background "
+                       "rows",
+             "explainer": chosen, "n_background": int(len(bg)), "n_permutations": int(n_permutations)
+             if chosen == "permutation" else 0, "seed": int(seed), "reference": COMBINED_REFERENCE}
+    return xr.Dataset({"values": (("sample", "feature", "class"), vals.astype(np.float32)),
+                       "base_value": (("class",), base)},
+                      coords={"sample": sample, "feature": list(features), "class": classes,
+                              "present": ("class", present)}, attrs=attrs)
+
+
+def hierarchical_shap_values(model: Any, X: pd.DataFrame | np.ndarray, *, features: list[str],
+                             combined: bool = True, background: pd.DataFrame | np.ndarray | None = None,
+                             n_background: int = 50, method: str = "auto", n_permutations: int = 2,
+                             seed: int = 0, chunk_rows: int = _DEFAULT_CHUNK_ROWS) -> dict[str, xr.Dataset]:
+    """SHAP values of a hierarchical model, per level and combined.
+
+    Parameters
+    ----------
+    model : HierarchicalClassifier
+        Fitted.
+    X, features, chunk_rows
+        As for :func:`shap_values`.
+    combined : bool, default True
+        Also compute the combined values (:func:`combined_shap_values`, the
+        costly part); ``background``, ``n_background``, ``method``,
+        ``n_permutations`` and ``seed`` are passed to it.
+
+    Returns
+    -------
+    dict of str to xarray.Dataset
+        ``"top"`` and one entry per parent with a fitted model: exact TreeSHAP
+        of that level's :class:`~wetlandflow.models.WetlandClassifier`
+        (:func:`shap_values`: classes are the level's classes, e.g. upland,
+        open_water, wetland for the top level, the parent's children for a
+        child model, on that level's margin scale for XGBoost or probability
+        scale for a forest; a child model explains ``P(leaf | parent)`` and was
+        trained on the parent's rows only, but is evaluated here on every row).
+        ``"combined"``: the leaf probabilities of the whole model, on the
+        probability scale, an exact or sampled Shapley estimate against a
+        background (see :func:`combined_shap_values`).  Each dataset has
+        ``attrs["level"]``.
+    """
+    if not _is_hierarchical(model):
+        raise ModelError(f"hierarchical_shap_values needs a HierarchicalClassifier; got "
+                         f"{type(model).__name__}. Explain a flat WetlandClassifier with shap_values")
+    out = {}
+    for name, level in model_levels(model).items():
+        sv = shap_values(level, X, features=features, chunk_rows=chunk_rows)
+        sv.attrs["level"] = name
+        out[name] = sv
+    if combined:
+        out["combined"] = combined_shap_values(model, X, features=features, background=background,
+                                               n_background=n_background, method=method,
+                                               n_permutations=n_permutations, seed=seed)
+    return out
+
+
+def model_shap_values(model: Any, X: pd.DataFrame | np.ndarray, *, features: list[str],
+                      **combined_options: Any) -> xr.Dataset:
+    """SHAP values per class of the model's own output: :func:`shap_values` for a flat classifier,
+    :func:`combined_shap_values` (options passed on) for a hierarchical one."""
+    if _is_hierarchical(model):
+        return combined_shap_values(model, X, features=features, **combined_options)
+    return shap_values(model, X, features=features)
 
 
 # --------------------------------------------------------------------------- budget and interactions
@@ -480,7 +706,8 @@ def cluster_importance(sv: xr.Dataset | xr.DataArray, corr_clusters: Mapping[str
 
 
 def ranking_stability(fit_fn: Callable[[Any, Any, int], WetlandClassifier], X: pd.DataFrame, y: Any,
-                      seeds: Sequence[int]) -> pd.DataFrame:
+                      seeds: Sequence[int], *, explain: Callable[..., xr.Dataset] | None = None
+                      ) -> pd.DataFrame:
     """Spearman rank correlation of overall importance rankings between models fitted with different seeds.
 
     Parameters
@@ -493,6 +720,9 @@ def ranking_stability(fit_fn: Callable[[Any, Any, int], WetlandClassifier], X: p
         Labels.
     seeds : sequence of int
         At least two seeds.
+    explain : callable, optional
+        ``explain(model, X, features=...)`` returning SHAP values as :func:`shap_values`
+        does; default :func:`shap_values` (e.g. :func:`model_shap_values` for hierarchical models).
 
     Returns
     -------
@@ -504,9 +734,12 @@ def ranking_stability(fit_fn: Callable[[Any, Any, int], WetlandClassifier], X: p
     if len(seeds) < 2:
         raise ParameterError(f"ranking_stability needs at least two seeds; got {list(seeds)}")
     features = [str(c) for c in X.columns]
-    imp = pd.DataFrame({s: global_importance(shap_values(fit_fn(X, y, s), X, features=features))["overall"]
+    explain = explain or shap_values
+    imp = pd.DataFrame({s: global_importance(explain(fit_fn(X, y, s), X, features=features))["overall"]
                         for s in seeds}).loc[features]
-    rho = np.atleast_2d(spearmanr(imp.to_numpy()).statistic)
+    stat = spearmanr(imp.to_numpy()).statistic
+    # two seeds: scipy returns the single coefficient, not the 2 x 2 matrix
+    rho = np.array([[1.0, stat], [stat, 1.0]]) if np.ndim(stat) == 0 else np.asarray(stat)
     out = pd.DataFrame(rho, index=pd.Index(list(seeds), name="seed"), columns=list(seeds))
     off = rho[~np.eye(len(seeds), dtype=bool)]
     out.attrs["mean_rho"] = float(np.nanmean(off))

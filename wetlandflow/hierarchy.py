@@ -130,6 +130,9 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
     child_models_ : dict of str to WetlandClassifier (or a constant model)
     priors_ : dict of str to ndarray
         Training frequency of each child within its parent.
+    level_rows_ : dict of str to int
+        Training rows each level was fitted on: ``"top"`` (all rows) and one
+        entry per parent (that parent's rows).
 
     Examples
     --------
@@ -210,6 +213,7 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
         for p, children in parents.items():
             rows = y_top == p
             self._fit_child(p, children, X[rows], y[rows], None if w is None else w[rows])
+        self.level_rows_ = {"top": int(len(y)), **{p: int((y_top == p).sum()) for p in parents}}
         self.n_features_in_ = X.shape[1]
         return self
 
@@ -281,4 +285,27 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
         for p, cond in conditional.items():
             out[p] = pd.DataFrame(cond, columns=list(self.parents_[p]), index=index)
         out["leaf"] = pd.DataFrame(leaf, columns=list(self.classes_), index=index)
+        return out
+
+    def present_leaves(self) -> list[str]:
+        """Leaf classes the fitted model can give a non-zero probability, in scheme order.
+
+        A leaf is absent when its top-level class was absent from the top level's training data,
+        or, under a parent, when the child model never saw it (or its prior is 0).
+        """
+        if not hasattr(self, "top_model_"):
+            raise ModelError("this HierarchicalClassifier is not fitted yet; call fit(X, y) first.")
+        top = set(self.top_model_.present_.tolist())
+        parent_of = {c: p for p, cs in self.parents_.items() for c in cs}
+        out = []
+        for c in self.classes_:
+            p = parent_of.get(str(c))
+            if p is None:
+                ok = c in top
+            else:
+                child = self.child_models_[p]
+                ok = p in top and (c in set(child.present_.tolist()) if hasattr(child, "present_")
+                                   else self.priors_[p][list(self.parents_[p]).index(c)] > 0)
+            if ok:
+                out.append(str(c))
         return out

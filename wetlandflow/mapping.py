@@ -204,17 +204,48 @@ def predict_map(model, cube: xr.Dataset, features: list[str], grid: Grid, out_di
 
 
 def _model_signature(model) -> str:
-    """A short fingerprint of a fitted model, so staged windows of another model are never reused."""
+    """A short fingerprint of a fitted model, so staged windows of another model are never reused.
+
+    Deterministic, and the same for a model and its reloaded bundle: XGBoost by the booster's raw bytes,
+    a scikit-learn forest by its trees' arrays (field by field: the padding bytes of the node records
+    are arbitrary), a hierarchical model by its tree (classes, parents, priors, gate) and the fingerprint
+    of every level; anything else by its pickle.
+    """
     import hashlib
+
+    if hasattr(model, "top_model_") and hasattr(model, "child_models_"):  # a fitted HierarchicalClassifier
+        levels = {"top": _model_signature(model.top_model_)}
+        # a parent with one child in training has no model: its priors (recorded below) are its output
+        levels |= {p: _model_signature(c) if hasattr(c, "model_") else "constant"
+                   for p, c in model.child_models_.items()}
+        tree = {"classes": [str(c) for c in model.classes_],
+                "parents": {p: list(c) for p, c in model.parents_.items()},
+                "priors": {p: np.asarray(v, np.float64).tolist() for p, v in model.priors_.items()},
+                "gate_threshold": float(model.gate_threshold), "levels": levels}
+        return hashlib.sha256(json.dumps(tree, sort_keys=True).encode()).hexdigest()[:16]
+    return hashlib.sha256(_estimator_bytes(model)).hexdigest()[:16]
+
+
+def _estimator_bytes(model) -> bytes:
     import pickle
 
-    try:
-        raw = model.model_.get_booster().save_raw("ubj") if getattr(model, "kind", "") == "xgboost" else None
-    except AttributeError:
-        raw = None
-    if raw is None:
-        raw = pickle.dumps(model)
-    return hashlib.sha256(bytes(raw)).hexdigest()[:16]
+    inner = getattr(model, "model_", None)
+    if getattr(model, "kind", "") == "xgboost" and inner is not None:
+        try:
+            return bytes(inner.get_booster().save_raw("ubj"))
+        except AttributeError:  # not a booster after all: fall through to the pickle
+            pass
+    trees = getattr(inner, "estimators_", None)
+    if trees is not None and all(hasattr(t, "tree_") for t in trees):
+        classes = [[str(c) for c in getattr(model, name, [])] for name in ("classes_", "present_")]
+        parts = [json.dumps(classes).encode()]
+        for t in trees:
+            state = t.tree_.__getstate__()
+            nodes = state["nodes"]
+            parts += [np.ascontiguousarray(nodes[f]).tobytes() for f in nodes.dtype.names]
+            parts.append(np.ascontiguousarray(state["values"]).tobytes())
+        return b"".join(parts)
+    return pickle.dumps(model)
 
 
 def build_cog(src_path: str | Path, dst_path: str | Path, *, overview_resampling: str) -> Path:

@@ -113,6 +113,8 @@ class ModelSection:
     max_plot_share: float = 0.1  # largest share of its class's weight one plot may carry; 0 = no cap
     n_threads: int = 2
     features: tuple[str, ...] = ()  # train on these cube variables only (e.g. a selection's result); () = all
+    hierarchical: bool = False  # top level over [classes.parents], then one model per parent group
+    gate_threshold: float = 0.0  # hierarchical only, in [0, 1): a child model runs where P(parent) > this
 
 
 @dataclass(frozen=True)
@@ -350,6 +352,39 @@ def _check_classes(c: ClassesSection) -> None:
             seen[child] = parent
 
 
+RESERVED_PARENTS = ("top", "leaf")  # level names of the hierarchical model (wetlandflow.hierarchy)
+
+
+def _check_model(p: Project) -> None:
+    """Model keys whose valid values depend on each other or on the class scheme."""
+    m = p.model
+    if not 0 <= m.gate_threshold < 1:
+        raise ProjectFileError(f"gate_threshold must be in [0, 1) (0 = no gate), got {m.gate_threshold}",
+                               key="model.gate_threshold")
+    if m.gate_threshold and not m.hierarchical:
+        raise ProjectFileError(
+            f"gate_threshold = {m.gate_threshold} has an effect only on a hierarchical model; set "
+            "model.hierarchical = true, or remove gate_threshold (or set it to 0)",
+            key="model.gate_threshold")
+    if not m.hierarchical:
+        return
+    if not p.classes.parents:
+        raise ProjectFileError(
+            "hierarchical = true needs parent groups of classes, and the class scheme has none; add a "
+            "[classes.parents] table (e.g. wetland = [\"marsh\", \"swamp\", \"fen\", \"bog\"]) or set "
+            "model.hierarchical = false", key="model.hierarchical")
+    for parent, children in p.classes.parents.items():
+        if parent in RESERVED_PARENTS:
+            raise ProjectFileError(
+                f"parent name {parent!r} is reserved for a level of the hierarchical model "
+                f"({', '.join(RESERVED_PARENTS)}); rename the group (e.g. 'wetland')",
+                key=f"classes.parents.{parent}")
+        if not children:
+            raise ProjectFileError(
+                f"parent {parent!r} has no classes; list at least one of {', '.join(p.classes.names)}, or "
+                "remove the group", key=f"classes.parents.{parent}")
+
+
 def _validate(p: Project) -> None:
     _require_file(p.area.aoi, "area.aoi")
     _require_file(p.plots.path, "plots.path")
@@ -376,6 +411,7 @@ def _validate(p: Project) -> None:
     _check_seasons(p.seasons)
     _check_season_scenes(p)
     _check_choice(p.model.kind, MODEL_KINDS, "model.kind")
+    _check_model(p)
     _check_choice(p.samples.missing, ("keep", "drop"), "samples.missing")
     if not 0 <= p.model.max_plot_share <= 1:
         raise ProjectFileError(f"max_plot_share must be in [0, 1] (0 = no cap), got {p.model.max_plot_share}",

@@ -399,6 +399,15 @@ def section_model(run: RunFolder) -> Section:
     selection = (f"The cube's features were not recorded; the model used {n_used}." if not n_cube else
                  "All features of the cube were used; the run selected none out." if n_cube == n_used else
                  f"{n_used} of the cube's {n_cube} features were used.")
+    if b.get("structure") == "hierarchical":
+        h = b.get("hierarchy", {})
+        groups = "; ".join(f"{p}: {', '.join(c)}" for p, c in h.get("parents", {}).items())
+        gate = float(h.get("gate_threshold", 0.0))
+        label = (f"a two-level hierarchy of {label}: a top level over {', '.join(h.get('top_classes', []))}, "
+                 f"then one model within each group ({groups}); a leaf's probability is P(group) x "
+                 "P(leaf | group)" + (f", the second level evaluated only where P(group) > {gate:g} (elsewhere "
+                                       f"the group's training shares, an error of at most {gate:g} per class)"
+                                       if gate else ""))
     text = (f"The classifier is {label}{cite}, fitted on all training samples with seed "
             f"{params.get('random_state', run.manifest.get('seed', '?'))}. {weighting}The hyperparameters were "
             f"set in the project file; the run did not tune them. {selection} The training data's SHA-256 is "
@@ -524,7 +533,12 @@ def section_drivers(run: RunFolder) -> Section:
     blocks: list = [Paragraph(
         f"SHAP values ({cite}) of a spatially stratified subsample of {d.get('n_rows', '?'):,} training pixels "
         "rank the features by their mean absolute contribution to each class's score. They describe how the "
-        "model uses the features, not what causes a wetland class on the ground."),
+        "model uses the features, not what causes a wetland class on the ground."
+        + (" The model is hierarchical, so these values explain its leaf probabilities as a whole: shap's "
+           f"model-agnostic {d.get('combined', {}).get('explainer', 'permutation')} explainer on the probability "
+           f"scale against {d.get('combined', {}).get('n_background', '?')} background rows (an estimate, not "
+           "exact TreeSHAP); the maps use exact TreeSHAP of each level's own model (explain/levels/)."
+           if d.get("structure") == "hierarchical" else "")),
         Table(pd.DataFrame([{"class": c, "top features": ", ".join(f),
                              "top domains": ", ".join(f"{x['domain']} {pct(x['share'])}"
                                                       for x in d.get("top_domains", {}).get(c, []))}

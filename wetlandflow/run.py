@@ -22,6 +22,7 @@ import pandas as pd
 from . import CAUTION, __version__
 from .errors import Cancelled, ProjectFileError
 from .features.cube import build_cube, open_cube, save_cube, season_coverage
+from .hierarchy import HierarchicalClassifier
 from .inputs import load_inputs, project_grid, read_aoi
 from .io import check_writable, sha256_file, write_figure, write_json, write_table
 from .mapping import AOA_LAYERS, LAYERS, class_areas, code_counts, predict_map
@@ -183,13 +184,36 @@ def make_splitter(project: Project, coords: np.ndarray):
                               allow_random_pixels=v.allow_random_pixels)
 
 
-def make_model(project: Project) -> WetlandClassifier:
-    """The classifier of the project file; class balance comes from :func:`training_weights` when plots are capped."""
+def make_model(project: Project, *, random_state: int | None = None
+               ) -> WetlandClassifier | HierarchicalClassifier:
+    """The classifier of the project file, seeded with ``project.seed`` (or ``random_state``).
+
+    With ``model.hierarchical = true`` a :class:`~wetlandflow.hierarchy.HierarchicalClassifier` over
+    ``[classes.parents]``, every level with the same estimator settings.  Class balance comes from
+    :func:`training_weights` when plots are capped, and always for a hierarchy (balanced over the leaf
+    classes, so that the levels estimate the same leaf priors as a flat model would).
+
+    Raises
+    ------
+    ProjectFileError
+        Naming ``model.hierarchical`` when a hierarchy is asked for and the class scheme has no parents.
+    """
     m = project.model
-    return WetlandClassifier(classes=project.classes.names, kind=m.kind, n_estimators=m.n_estimators,
-                             max_depth=m.max_depth, learning_rate=m.learning_rate,
-                             class_weighting=m.class_weighting and not m.max_plot_share,
-                             n_threads=m.n_threads, random_state=project.project.seed)
+    seed = project.project.seed if random_state is None else int(random_state)
+    base = {"kind": m.kind, "n_estimators": m.n_estimators, "max_depth": m.max_depth,
+            "learning_rate": m.learning_rate, "class_weighting": m.class_weighting and not m.max_plot_share,
+            "n_threads": m.n_threads, "random_state": seed}
+    if not m.hierarchical:
+        return WetlandClassifier(classes=project.classes.names, **base)
+    if not project.classes.parents:
+        raise ProjectFileError(
+            "model.hierarchical = true needs parent groups of classes, and the class scheme has none; add a "
+            "[classes.parents] table (e.g. wetland = [\"marsh\", \"swamp\", \"fen\", \"bog\"]) or set "
+            "model.hierarchical = false", key="model.hierarchical", file=str(project.file))
+    # the leaf-balanced weights of training_weights balance the classes; the levels must not re-balance
+    return HierarchicalClassifier(classes=project.classes.names, parents=dict(project.classes.parents),
+                                  base_params={**base, "class_weighting": False},
+                                  gate_threshold=m.gate_threshold)
 
 
 def training_weights(project: Project, samples: pd.DataFrame) -> np.ndarray | None:
@@ -199,18 +223,26 @@ def training_weights(project: Project, samples: pd.DataFrame) -> np.ndarray | No
 
     A class with too few plots to meet the cap gets equal plot totals, the most even split possible;
     the model step's record in the manifest shows the largest share any plot carries.
+
+    A hierarchical model always gets weights when ``class_weighting`` is on, balanced over the leaf
+    classes (capped or not): every level is fitted on its rows with these weights, so the top level
+    sees each parent group with the summed weight of its classes, and ``P(parent) x P(leaf | parent)``
+    estimates the leaf probabilities of the same balanced population as a flat model.  Balancing each
+    level on its own would give a parent's classes together the weight of one top-level class.
     """
     share = project.model.max_plot_share
-    if not share:
+    hierarchical_balance = project.model.hierarchical and project.model.class_weighting
+    if not share and not hierarchical_balance:
         return None
     from .weights import sample_weights
 
     return sample_weights(samples["class"].to_numpy(), samples["plot_id"].to_numpy(),
-                          balance_classes=project.model.class_weighting, max_plot_share=share,
+                          balance_classes=project.model.class_weighting, max_plot_share=share or None,
                           on_infeasible="ignore")
 
 
-def refit_with_seed(project: Project, samples: pd.DataFrame, features: list[str], seed: int) -> WetlandClassifier:
+def refit_with_seed(project: Project, samples: pd.DataFrame, features: list[str], seed: int
+                    ) -> WetlandClassifier | HierarchicalClassifier:
     """The final model refitted on a bootstrap of the plots drawn with ``seed`` (and that model seed).
 
     Plots, not pixels, are drawn with replacement within each class, so a refit sees another plausible
@@ -223,9 +255,18 @@ def refit_with_seed(project: Project, samples: pd.DataFrame, features: list[str]
     counts = pd.Series(drawn).value_counts()
     boot = samples.loc[samples["plot_id"].isin(counts.index)]
     boot = boot.loc[boot.index.repeat(boot["plot_id"].map(counts).to_numpy())]
-    model = make_model(project).set_params(random_state=seed)
+    model = make_model(project, random_state=seed)
     return model.fit(boot[features].to_numpy(np.float32), boot["class"].to_numpy(),
                      sample_weight=training_weights(project, boot))
+
+
+def model_hyperparameters(model: WetlandClassifier | HierarchicalClassifier) -> dict[str, Any]:
+    """The settings of a fitted model for the manifest: the estimator's, and for a hierarchy also its tree."""
+    if isinstance(model, HierarchicalClassifier):
+        base = {k: v for k, v in (model.base_params or {}).items() if k != "classes"}
+        return {**base, "hierarchical": True, "parents": {p: list(c) for p, c in model.parents_.items()},
+                "gate_threshold": float(model.gate_threshold)}
+    return {k: v for k, v in model.get_params().items() if k != "classes"}
 
 
 def model_features(project: Project, samples: pd.DataFrame) -> list[str]:
@@ -404,7 +445,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
                         extra={"config_sha256": manifest.data["config_sha256"]})
             rec["n_features"] = len(features)
             rec["weights"] = _weights_record(project, samples, w)
-            rec["hyperparameters"] = {k: v for k, v in model.get_params().items() if k != "classes"}
+            rec["hyperparameters"] = model_hyperparameters(model)
 
     applicability = project.output.applicability
     k_map = step_key(k_model, k_val if applicability else None, applicability, cfg["output"]["chunk_size"])
