@@ -253,9 +253,12 @@ def build_cog(src_path: str | Path, dst_path: str | Path, *, overview_resampling
     from rasterio.shutil import copy as rio_copy
 
     with atomic_path(dst_path) as tmp:
-        # NUM_THREADS: GDAL compresses the tiles and computes the overviews on every core
-        rio_copy(str(src_path), str(tmp), driver="COG", compress="DEFLATE", blocksize=256,
-                 overview_resampling=overview_resampling, BIGTIFF="IF_SAFER", NUM_THREADS="ALL_CPUS")
+        # NUM_THREADS: GDAL compresses the tiles and computes the overviews on every core.  A 64 MB block
+        # cache for the copy: the source is read once, so a larger cache only holds memory (measured on a
+        # 4096 x 4096 map: peak 667 MB with the process's 128 MB, 520 MB with 64 MB, same time).
+        with rasterio.Env(GDAL_CACHEMAX=64):
+            rio_copy(str(src_path), str(tmp), driver="COG", compress="DEFLATE", blocksize=256,
+                     overview_resampling=overview_resampling, BIGTIFF="IF_SAFER", NUM_THREADS="ALL_CPUS")
         with rasterio.open(tmp) as ds:
             if not ds.overviews(1) and max(ds.width, ds.height) > 512:
                 raise RuntimeError(f"COG {dst_path} was written without overviews")
