@@ -706,8 +706,8 @@ def cluster_importance(sv: xr.Dataset | xr.DataArray, corr_clusters: Mapping[str
 
 
 def ranking_stability(fit_fn: Callable[[Any, Any, int], WetlandClassifier], X: pd.DataFrame, y: Any,
-                      seeds: Sequence[int], *, explain: Callable[..., xr.Dataset] | None = None
-                      ) -> pd.DataFrame:
+                      seeds: Sequence[int], *, explain: Callable[..., xr.Dataset] | None = None,
+                      known: Mapping[int, pd.Series] | None = None) -> pd.DataFrame:
     """Spearman rank correlation of overall importance rankings between models fitted with different seeds.
 
     Parameters
@@ -723,6 +723,9 @@ def ranking_stability(fit_fn: Callable[[Any, Any, int], WetlandClassifier], X: p
     explain : callable, optional
         ``explain(model, X, features=...)`` returning SHAP values as :func:`shap_values`
         does; default :func:`shap_values` (e.g. :func:`model_shap_values` for hierarchical models).
+    known : mapping of int to Series, optional
+        Overall importance (the ``"overall"`` column of :func:`global_importance`) already computed for
+        some seeds, e.g. the final model's; those seeds are neither refitted nor explained again.
 
     Returns
     -------
@@ -735,7 +738,9 @@ def ranking_stability(fit_fn: Callable[[Any, Any, int], WetlandClassifier], X: p
         raise ParameterError(f"ranking_stability needs at least two seeds; got {list(seeds)}")
     features = [str(c) for c in X.columns]
     explain = explain or shap_values
-    imp = pd.DataFrame({s: global_importance(explain(fit_fn(X, y, s), X, features=features))["overall"]
+    known = dict(known or {})
+    imp = pd.DataFrame({s: known[s] if s in known else
+                        global_importance(explain(fit_fn(X, y, s), X, features=features))["overall"]
                         for s in seeds}).loc[features]
     stat = spearmanr(imp.to_numpy()).statistic
     # two seeds: scipy returns the single coefficient, not the 2 x 2 matrix

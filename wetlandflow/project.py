@@ -355,8 +355,9 @@ def _check_classes(c: ClassesSection) -> None:
 RESERVED_PARENTS = ("top", "leaf")  # level names of the hierarchical model (wetlandflow.hierarchy)
 
 
-def _check_model(p: Project) -> None:
-    """Model keys whose valid values depend on each other or on the class scheme."""
+def check_model_section(p: Project) -> None:
+    """Model keys whose valid values depend on each other or on the class scheme (also called by
+    :func:`wetlandflow.run.make_model`, for a project built without :func:`load_project`)."""
     m = p.model
     if not 0 <= m.gate_threshold < 1:
         raise ProjectFileError(f"gate_threshold must be in [0, 1) (0 = no gate), got {m.gate_threshold}",
@@ -411,7 +412,7 @@ def _validate(p: Project) -> None:
     _check_seasons(p.seasons)
     _check_season_scenes(p)
     _check_choice(p.model.kind, MODEL_KINDS, "model.kind")
-    _check_model(p)
+    check_model_section(p)
     _check_choice(p.samples.missing, ("keep", "drop"), "samples.missing")
     if not 0 <= p.model.max_plot_share <= 1:
         raise ProjectFileError(f"max_plot_share must be in [0, 1] (0 = no cap), got {p.model.max_plot_share}",

@@ -28,7 +28,7 @@ from .io import check_writable, sha256_file, write_figure, write_json, write_tab
 from .mapping import AOA_LAYERS, LAYERS, class_areas, code_counts, predict_map
 from .models import ClassScheme, WetlandClassifier, data_hash, load_bundle, save_bundle
 from .preflight import preflight
-from .project import Project, config_hash, load_project, portable_dict, to_dict
+from .project import Project, check_model_section, config_hash, load_project, portable_dict, to_dict
 from .samples import (
     check_training_features,
     class_balance,
@@ -205,11 +205,7 @@ def make_model(project: Project, *, random_state: int | None = None
             "n_threads": m.n_threads, "random_state": seed}
     if not m.hierarchical:
         return WetlandClassifier(classes=project.classes.names, **base)
-    if not project.classes.parents:
-        raise ProjectFileError(
-            "model.hierarchical = true needs parent groups of classes, and the class scheme has none; add a "
-            "[classes.parents] table (e.g. wetland = [\"marsh\", \"swamp\", \"fen\", \"bog\"]) or set "
-            "model.hierarchical = false", key="model.hierarchical", file=str(project.file))
+    check_model_section(project)
     # the leaf-balanced weights of training_weights balance the classes; the levels must not re-balance
     return HierarchicalClassifier(classes=project.classes.names, parents=dict(project.classes.parents),
                                   base_params={**base, "class_weighting": False},

@@ -257,7 +257,7 @@ def write_explanations(model, samples: pd.DataFrame, features: list[str], cube, 
                                 "output_scale)."}
     if refit is not None and stability_seeds >= 2:
         record["ranking_stability"] = _ranking_stability(refit, model, sub, features, seed, stability_seeds,
-                                                         out_dir, explain=explain_fn)
+                                                         out_dir, explain=explain_fn, final=imp["overall"])
     (out_dir / "drivers.json").write_text(json.dumps(record, indent=2))
     return record
 
@@ -269,14 +269,16 @@ def _leading_domains(domains: pd.DataFrame, classes: list[str], n: int = 2) -> d
 
 
 def _ranking_stability(refit: Callable[[int], Any], model, sub: pd.DataFrame, features: list[str], seed: int,
-                       n_seeds: int, out_dir: Path, explain: Callable[..., Any] | None = None
-                       ) -> dict[str, Any]:
-    """Spearman's rho between importance rankings of the model and refits with other seeds."""
+                       n_seeds: int, out_dir: Path, explain: Callable[..., Any] | None = None,
+                       final: pd.Series | None = None) -> dict[str, Any]:
+    """Spearman's rho between importance rankings of the model and refits with other seeds
+    (``final``: the model's overall importance, already computed, so it is not explained twice)."""
     from .explain import ranking_stability
 
     seeds = [seed + i for i in range(n_seeds)]
     table = ranking_stability(lambda X, y, s: model if s == seed else refit(s), sub[features],
-                              sub["class"].to_numpy(), seeds, explain=explain)
+                              sub["class"].to_numpy(), seeds, explain=explain,
+                              known=None if final is None else {seed: final})
     write_table(table.reset_index(), out_dir / "ranking_stability.csv")
     off = table.to_numpy()[~np.eye(n_seeds, dtype=bool)]
     return {"seeds": seeds, "mean_spearman_rho": round(table.attrs["mean_rho"], 4),
