@@ -181,7 +181,7 @@ def _scenes(n: int):
 def _composite_numpy(quick: bool, repeat: int):
     import warnings
 
-    from wetlandflow.features.composite import season_mask
+    from wetlandflow.inputs.seasons import season_mask
 
     n = 1024 if quick else 2048
     stack = _scenes(n)
@@ -215,6 +215,6 @@ def _composite_dask(quick: bool, repeat: int):
 
 
 # terrain cases live in their own file; importing it registers them after the optical ones
-import cases_terrain  # noqa: E402,F401
-import cases_mapping  # noqa: E402,F401
 import cases_explain  # noqa: E402,F401
+import cases_mapping  # noqa: E402,F401
+import cases_terrain  # noqa: E402,F401

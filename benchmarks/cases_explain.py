@@ -31,7 +31,7 @@ def _model(quick: bool):
     """The WetlandClassifier used by both variants (fitted once, then loaded from MODEL_FILE)."""
     from xgboost import XGBClassifier
 
-    from wetlandflow.models import WetlandClassifier
+    from wetlandflow.models.classifier import WetlandClassifier
 
     n_trees = 100 if quick else 600
     path = MODEL_FILE.with_suffix(f".{n_trees}.ubj")
@@ -73,7 +73,7 @@ def _contribs(quick: bool, repeat: int):
 
 @shap_case.variant("wetlandflow shap_values")
 def _wetlandflow(quick: bool, repeat: int):
-    from wetlandflow.explain import shap_values
+    from wetlandflow.explain.attribution import shap_values
 
     model = _model(quick)
     X = _rows(_n(quick), 1)

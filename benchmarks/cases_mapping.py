@@ -64,7 +64,7 @@ def _built(name: str, builder: Callable[..., None], *args) -> Path:
 def _grid(n: int):
     from affine import Affine
 
-    from wetlandflow.grid import Grid
+    from wetlandflow.inputs.grid import Grid
 
     return Grid("EPSG:32633", Affine(PIXEL_M, 0.0, 500000.0, 0.0, -PIXEL_M, 6000000.0), n, n)
 
@@ -81,7 +81,7 @@ def _training(seed: int = 0, n: int = 4000) -> tuple[np.ndarray, np.ndarray]:
 
 def _model(n_rounds: int):
     """XGBoost WetlandClassifier of ``n_rounds`` x 6 trees (100 rounds = 600 trees), depth 6, 2 threads."""
-    from wetlandflow.models import WetlandClassifier
+    from wetlandflow.models.classifier import WetlandClassifier
 
     X, y = _training()
     return WetlandClassifier(classes=CLASSES, n_estimators=n_rounds, max_depth=6, n_threads=2).fit(X, y)
@@ -115,7 +115,7 @@ def _build_stack_tif(path: Path, n: int) -> None:
     import rasterio
 
     from wetlandflow.features.cube import open_cube
-    from wetlandflow.mapping import windows
+    from wetlandflow.mapping.predict import windows
 
     grid = _grid(n)
     cube = open_cube(_synthetic(n))
@@ -135,12 +135,12 @@ def _stack_tif(n: int) -> Path:
 
 def _build_demo(path: Path, size: int) -> None:
     """The demo project at ``size`` x ``size`` pixels, its feature cube (Zarr) and its samples table."""
-    from wetlandflow.demo import make_demo
+    from wetlandflow.demo.landscape import make_demo
     from wetlandflow.features.cube import build_cube, save_cube
-    from wetlandflow.inputs import load_inputs, project_grid, read_aoi
-    from wetlandflow.project import load_project
-    from wetlandflow.run import feature_names
-    from wetlandflow.samples import drop_incomplete, extract_samples, plot_pixels, read_plots
+    from wetlandflow.inputs.layers import load_inputs, project_grid, read_aoi
+    from wetlandflow.inputs.project import load_project
+    from wetlandflow.pipeline.run import feature_names
+    from wetlandflow.training.samples import drop_incomplete, extract_samples, plot_pixels, read_plots
 
     t0 = time.perf_counter()
     project = load_project(make_demo(path, size=size, seed=0))
@@ -184,8 +184,8 @@ class _Clock:
 
 def _map_once(model, cube, features: list[str], grid, valid) -> float:
     """Seconds of one ``predict_map`` over the whole grid, after a warm-up on a 256 x 256 crop."""
-    from wetlandflow.grid import Grid
-    from wetlandflow.mapping import predict_map
+    from wetlandflow.inputs.grid import Grid
+    from wetlandflow.mapping.predict import predict_map
 
     crop = {"y": slice(0, WARM), "x": slice(0, WARM)}
     small = Grid(grid.crs, grid.transform, min(WARM, grid.width), min(WARM, grid.height))
@@ -266,11 +266,11 @@ def _demo_inputs(quick: bool):
     """The demo's cube, samples, grid and lazy AOI mask, as the run's mapping step sees them."""
     import pandas as pd
 
-    from wetlandflow.align import aoi_mask
     from wetlandflow.features.cube import open_cube
-    from wetlandflow.inputs import project_grid, read_aoi
-    from wetlandflow.project import load_project
-    from wetlandflow.run import feature_names
+    from wetlandflow.inputs.align import aoi_mask
+    from wetlandflow.inputs.layers import project_grid, read_aoi
+    from wetlandflow.inputs.project import load_project
+    from wetlandflow.pipeline.run import feature_names
 
     folder = _demo(_demo_size(quick))
     project = load_project(folder / "project.toml")
@@ -281,8 +281,8 @@ def _demo_inputs(quick: bool):
 
 
 def _hierarchical(project, gate: float):
-    from wetlandflow.hierarchy import HierarchicalClassifier
-    from wetlandflow.run import make_model
+    from wetlandflow.models.hierarchy import HierarchicalClassifier
+    from wetlandflow.pipeline.run import make_model
 
     params = {k: v for k, v in make_model(project).get_params().items() if k != "classes"}
     return HierarchicalClassifier(project.classes.names, project.classes.parents, base_params=params,
@@ -298,7 +298,7 @@ def _gating_run(quick: bool, make) -> tuple[int, float, object, tuple]:
 
 @gating.variant("flat")
 def _gating_flat(quick: bool, repeat: int):
-    from wetlandflow.run import make_model
+    from wetlandflow.pipeline.run import make_model
 
     work, seconds, _, _ = _gating_run(quick, make_model)
     return work, seconds
@@ -320,7 +320,7 @@ def _gating_gated(quick: bool, repeat: int):
 def _report_gate_error(model, cube, features: list[str], grid, valid) -> None:
     """Mean and max |P_gated - P_ungated| over every valid pixel, window by window, and the share of pixels
     whose gate was open (where the child model ran)."""
-    from wetlandflow.mapping import windows
+    from wetlandflow.mapping.predict import windows
 
     data = cube[features].to_dataarray("feature").transpose("feature", "y", "x")
     total, worst, n, n_open = 0.0, 0.0, 0, 0
@@ -456,8 +456,8 @@ def _fresh_project(folder: Path) -> Path:
 
 @end_to_end.variant("run_project + report")
 def _end_to_end(quick: bool, repeat: int):
-    from wetlandflow.report import write_report
-    from wetlandflow.run import run_project
+    from wetlandflow.pipeline.run import run_project
+    from wetlandflow.report.appendix import write_report
 
     size = _run_size(quick)
     path = _fresh_project(_demo(size))

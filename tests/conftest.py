@@ -16,7 +16,7 @@ else:  # pragma: no cover
 @pytest.fixture(scope="session")
 def small_demo(tmp_path_factory) -> Path:
     """A 160 x 160 pixel demo (1.6 km at 10 m): fast, for validation and alignment tests."""
-    from wetlandflow.demo import make_demo
+    from wetlandflow.demo.landscape import make_demo
 
     return make_demo(tmp_path_factory.mktemp("small_demo"), size=160, seed=3)
 
@@ -24,8 +24,8 @@ def small_demo(tmp_path_factory) -> Path:
 @pytest.fixture(scope="session")
 def demo_run(tmp_path_factory):
     """The default-size demo (600 x 600 pixels, 6 km) run end to end once per session."""
-    from wetlandflow.demo import make_demo
-    from wetlandflow.run import run_project
+    from wetlandflow.demo.landscape import make_demo
+    from wetlandflow.pipeline.run import run_project
 
     project_file = make_demo(tmp_path_factory.mktemp("demo"), size=600, seed=0)
     return run_project(project_file, progress=False)
@@ -69,7 +69,7 @@ def project_variant(project_file: Path, name: str, **changes) -> Path:
 def tiny_project_doc(folder: Path, *, chunk_size: int) -> dict:
     """The project document of a 128 x 128 px demo with optical and terrain features only, a 30-tree model
     and 3 plot folds: the smallest project that runs end to end, for tests that corrupt or kill a run."""
-    from wetlandflow.demo import make_demo
+    from wetlandflow.demo.landscape import make_demo
 
     doc = read_toml(make_demo(folder, size=128, seed=3, n_optical=3, n_sar=2))
     doc["features"] = {"select": ["optical", "terrain"]}
@@ -82,7 +82,7 @@ def tiny_project_doc(folder: Path, *, chunk_size: int) -> dict:
 
 def light_project(folder: Path) -> Path:
     """A 300 x 300 px demo with a light model and 3 folds, so that several full runs stay short."""
-    from wetlandflow.demo import make_demo
+    from wetlandflow.demo.landscape import make_demo
 
     pf = make_demo(folder, size=300, seed=1)
     # Capping pixels per plot keeps the runs light and gives the seed something to choose (which pixels train).
@@ -101,6 +101,6 @@ def light_demo(tmp_path_factory) -> Path:
 @pytest.fixture(scope="session")
 def light_run(light_demo):
     """One threaded run of the light project (``runs/light``), shared by the tests that compare runs."""
-    from wetlandflow.run import run_project
+    from wetlandflow.pipeline.run import run_project
 
     return run_project(light_demo, progress=False)

@@ -1,4 +1,4 @@
-"""Tests for wetlandflow.accuracy: error matrices, accuracy measures, stratified area estimation."""
+"""Tests for wetlandflow.accuracy.estimators: error matrices, accuracy measures, stratified area estimation."""
 
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 from scipy import ndimage
 from sklearn.metrics import cohen_kappa_score, confusion_matrix, f1_score
 
-from wetlandflow.accuracy import (
+from wetlandflow.accuracy.estimators import (
     KAPPA_NOTE,
     AreaAccuracyResult,
     accuracy_measures,

@@ -9,9 +9,9 @@ from rasterio.enums import Resampling
 from rasterio.transform import from_origin
 from rasterio.warp import reproject, transform_bounds
 
-from wetlandflow.align import aoi_mask, choose_resampling, read_aligned
 from wetlandflow.errors import AlignmentError, InputFileError
-from wetlandflow.grid import Grid
+from wetlandflow.inputs.align import aoi_mask, choose_resampling, read_aligned
+from wetlandflow.inputs.grid import Grid
 
 GRID = Grid.from_bbox((512000, 6396000, 514000, 6398000), crs="EPSG:32633", resolution=10)
 

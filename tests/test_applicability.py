@@ -16,17 +16,17 @@ import pytest
 import xarray as xr
 from scipy.spatial.distance import cdist, pdist
 
-from wetlandflow.applicability import (
+from wetlandflow.errors import ModelError, ParameterError, ValidationDesignError
+from wetlandflow.inputs.grid import Grid
+from wetlandflow.mapping.applicability import (
     AOA_NODATA,
     applicability_map,
-    mean_pairwise_distance,
     dissimilarity_index,
     fit_applicability,
+    mean_pairwise_distance,
     share_outside,
     xgb_importance_weights,
 )
-from wetlandflow.errors import ModelError, ParameterError, ValidationDesignError
-from wetlandflow.grid import Grid
 
 RNG = np.random.default_rng(42)
 
@@ -195,7 +195,7 @@ def test_applicability_map_lazy_and_equal_to_array_result():
 
 
 def test_xgb_importance_weights_maps_by_index():
-    from wetlandflow.models import WetlandClassifier
+    from wetlandflow.models.classifier import WetlandClassifier
 
     rng = np.random.default_rng(0)
     X = rng.normal(size=(300, 4)).astype(np.float32)
@@ -234,7 +234,7 @@ def test_near_ties_and_duplicates_match_scipy_brute_force():
 
 def test_search_follows_the_effective_dimensions_of_the_training_data():
     """Points near a 3-D subspace of 30 features take the KD-tree; 30 independent features the scan."""
-    from wetlandflow.applicability import effective_dimensions, nearest_search
+    from wetlandflow.mapping.applicability import effective_dimensions, nearest_search
 
     rng = np.random.default_rng(3)
     low = rng.normal(size=(500, 3)) @ rng.normal(size=(3, 30)) + rng.normal(scale=1e-3, size=(500, 30))

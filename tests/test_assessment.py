@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from wetlandflow.assessment import (
+from wetlandflow.accuracy.assessment import (
     assess,
     class_codes,
     coverage_study,
@@ -17,9 +17,9 @@ from wetlandflow.assessment import (
     final_class_map,
     label_from_reference,
 )
-from wetlandflow.demo import load_truth
+from wetlandflow.demo.landscape import load_truth
 from wetlandflow.errors import OutputError
-from wetlandflow.project import load_project
+from wetlandflow.inputs.project import load_project
 
 
 @pytest.fixture(scope="module")
@@ -83,7 +83,7 @@ def test_interval_coverage_near_nominal_and_map_counts_biased(project, sample_pa
 
 def test_cli_sample_and_assess_print_tables_and_caution(project, tmp_path, capsys):
     from wetlandflow import CAUTION
-    from wetlandflow.cli import main
+    from wetlandflow.ui.cli import main
 
     assert main(["sample", str(project.file), "--target-se", "0.02", "--overwrite"]) == 0
     out = capsys.readouterr().out

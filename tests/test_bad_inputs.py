@@ -37,9 +37,9 @@ from conftest import tiny_project_doc
 from shapely import affinity
 from shapely.geometry import LineString, Point, Polygon
 
-from wetlandflow.cli import main
 from wetlandflow.errors import BudgetError, ModelError, OutputError, SamplesError
-from wetlandflow.project import load_project
+from wetlandflow.inputs.project import load_project
+from wetlandflow.ui.cli import main
 
 FINAL_OUTPUTS = (
     "maps",
@@ -64,7 +64,7 @@ class Demo:
 @pytest.fixture(scope="module")
 def demo(tmp_path_factory) -> Demo:
     """The base project (valid: it runs end to end) that every case corrupts in one place."""
-    from wetlandflow.run import run_project
+    from wetlandflow.pipeline.run import run_project
 
     folder = tmp_path_factory.mktemp("bad_inputs")
     doc = tiny_project_doc(folder, chunk_size=128)
@@ -765,8 +765,8 @@ def test_disk_too_small_is_refused_before_writing(demo, tmp_path, monkeypatch):
     """The estimate is made before anything is written; a disk with less room refuses with the figures."""
     import shutil as shutil_module
 
-    from wetlandflow.inputs import project_grid
-    from wetlandflow.preflight import check_disk, estimate_output_bytes, preflight
+    from wetlandflow.inputs.layers import project_grid
+    from wetlandflow.inputs.preflight import check_disk, estimate_output_bytes, preflight
 
     project = load_project(demo.base_file)
     grid = project_grid(project)
@@ -791,8 +791,8 @@ def test_disk_too_small_is_refused_before_writing(demo, tmp_path, monkeypatch):
 
 
 def test_output_folder_not_writable_is_refused_by_preflight(demo, tmp_path, monkeypatch):
-    from wetlandflow.inputs import project_grid
-    from wetlandflow.preflight import preflight
+    from wetlandflow.inputs.layers import project_grid
+    from wetlandflow.inputs.preflight import preflight
 
     project = load_project(demo.base_file)
     (tmp_path / "a_file").write_text("x")
@@ -802,8 +802,8 @@ def test_output_folder_not_writable_is_refused_by_preflight(demo, tmp_path, monk
 
 
 def test_whole_layer_steps_beyond_the_memory_budget_are_refused(demo):
-    from wetlandflow.inputs import project_grid
-    from wetlandflow.preflight import check_memory, estimate_memory_bytes
+    from wetlandflow.inputs.layers import project_grid
+    from wetlandflow.inputs.preflight import check_memory, estimate_memory_bytes
 
     project = load_project(demo.base_file)
     need = estimate_memory_bytes(project, project_grid(project))
@@ -815,7 +815,8 @@ def test_whole_layer_steps_beyond_the_memory_budget_are_refused(demo):
 
 def test_model_bundle_whose_features_do_not_match_the_cube(demo):
     from wetlandflow.features.cube import open_cube
-    from wetlandflow.models import align_features, load_bundle
+    from wetlandflow.models.bundle import load_bundle
+    from wetlandflow.models.classifier import align_features
 
     _, bundle = load_bundle(demo.run_dir / "model")
     cube = open_cube(demo.run_dir / "features.zarr")
@@ -828,7 +829,7 @@ def test_model_bundle_whose_features_do_not_match_the_cube(demo):
 
 @pytest.mark.parametrize("what", ["all-nan", "constant"])
 def test_feature_without_information_over_the_training_data(demo, what):
-    from wetlandflow.samples import check_training_features
+    from wetlandflow.training.samples import check_training_features
 
     samples = pd.read_parquet(demo.run_dir / "samples.parquet")
     features = [c for c in samples.columns if c not in ("plot_id", "class", "x", "y")]
@@ -843,7 +844,7 @@ def test_feature_without_information_over_the_training_data(demo, what):
 
 def test_class_with_fewer_plots_than_folds_warns_with_the_fix():
     """Two plots and three folds: the class cannot reach every test fold (a warning, not a refusal)."""
-    from wetlandflow.validation import FewPlotsWarning, check_splits
+    from wetlandflow.validation.splitters import FewPlotsWarning, check_splits
 
     y = np.array(["fen"] * 4 + ["bog"] * 12)
     groups = np.array(["f1", "f1", "f2", "f2"] + [f"b{i}" for i in range(12)])
@@ -860,7 +861,7 @@ def test_class_with_fewer_plots_than_folds_warns_with_the_fix():
 
 
 def test_aoi_in_another_crs_is_reprojected(demo, tmp_path):
-    from wetlandflow.inputs import project_grid
+    from wetlandflow.inputs.layers import project_grid
 
     doc = copy.deepcopy(demo.doc)
     gpd.read_file(demo.folder / doc["area"]["aoi"]).to_crs("EPSG:4326").to_file(
@@ -874,8 +875,8 @@ def test_aoi_in_another_crs_is_reprojected(demo, tmp_path):
 
 
 def test_plots_in_another_crs_give_the_same_pixels(demo):
-    from wetlandflow.inputs import project_grid, read_aoi
-    from wetlandflow.samples import plot_pixels, read_plots
+    from wetlandflow.inputs.layers import project_grid, read_aoi
+    from wetlandflow.training.samples import plot_pixels, read_plots
 
     project = load_project(demo.base_file)
     grid, aoi = project_grid(project), read_aoi(project)
@@ -896,7 +897,7 @@ def test_plots_in_another_crs_give_the_same_pixels(demo):
 
 
 def test_dem_in_feet_declared_as_feet_is_converted(demo, tmp_path):
-    from wetlandflow.inputs import load_dem, project_grid
+    from wetlandflow.inputs.layers import load_dem, project_grid
 
     doc = copy.deepcopy(demo.doc)
     doc["dem"].update(
@@ -911,7 +912,7 @@ def test_dem_in_feet_declared_as_feet_is_converted(demo, tmp_path):
 
 
 def test_one_clouded_scene_in_a_season_with_a_clear_one_is_kept_with_a_warning(demo, tmp_path):
-    from wetlandflow.inputs import InputCoverageWarning, load_inputs
+    from wetlandflow.inputs.layers import InputCoverageWarning, load_inputs
 
     doc = copy.deepcopy(demo.doc)
     extra = copy.deepcopy(doc["optical"][0])
@@ -928,8 +929,8 @@ def test_one_clouded_scene_in_a_season_with_a_clear_one_is_kept_with_a_warning(d
 
 
 def test_a_plot_smaller_than_a_pixel_is_named_in_a_warning(demo):
-    from wetlandflow.inputs import project_grid
-    from wetlandflow.samples import plot_pixels
+    from wetlandflow.inputs.layers import project_grid
+    from wetlandflow.training.samples import plot_pixels
 
     project = load_project(demo.base_file)
     grid = project_grid(project)

@@ -154,7 +154,7 @@ def test_notebook_runs_in_jupyterlab_and_its_panel_answers_a_click(project_file,
     import nbformat
     from playwright.sync_api import expect, sync_playwright
 
-    from wetlandflow.widgets import inject_parameters
+    from wetlandflow.ui.widgets import inject_parameters
 
     nb = nbformat.read(NOTEBOOK, as_version=4)
     inject_parameters(

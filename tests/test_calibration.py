@@ -8,7 +8,8 @@ from matplotlib.figure import Figure
 from sklearn.calibration import CalibratedClassifierCV, calibration_curve
 from sklearn.metrics import brier_score_loss
 
-from wetlandflow.calibration import (
+from wetlandflow.errors import ModelError, ParameterError
+from wetlandflow.models.calibration import (
     CalibratedWetlandClassifier,
     ProbabilityCalibrator,
     brier_score,
@@ -17,9 +18,8 @@ from wetlandflow.calibration import (
     plot_reliability_comparison,
     reliability_table,
 )
-from wetlandflow.errors import ModelError, ParameterError
-from wetlandflow.models import WetlandClassifier
-from wetlandflow.validation import SpatialBlockKFold
+from wetlandflow.models.classifier import WetlandClassifier
+from wetlandflow.validation.splitters import SpatialBlockKFold
 
 CLASSES = ("upland", "open_water", "marsh", "swamp", "fen", "bog")
 

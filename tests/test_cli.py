@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import pytest
 
-from wetlandflow.cli import main
 from wetlandflow.errors import ProjectFileError
+from wetlandflow.ui.cli import main
 
 
 def test_check_prints_the_inventory(small_demo, capsys):

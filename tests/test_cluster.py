@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 import rasterio
 
-from wetlandflow.run import SCHEDULER_ENV, run_project
+from wetlandflow.pipeline.run import SCHEDULER_ENV, run_project
 
 
 @pytest.mark.slow

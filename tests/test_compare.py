@@ -10,11 +10,11 @@ import pytest
 from sklearn.metrics import accuracy_score, f1_score, make_scorer
 from sklearn.model_selection import PredefinedSplit, cross_val_predict, cross_val_score
 
-from wetlandflow.compare import compare_models, compare_run, main, write_comparison
 from wetlandflow.errors import ModelError, ParameterError
-from wetlandflow.hierarchy import HierarchicalClassifier
-from wetlandflow.models import ClassScheme, WetlandClassifier, canonical_order
-from wetlandflow.selection import forward_feature_selection, read_selected_features
+from wetlandflow.models.classifier import ClassScheme, WetlandClassifier, canonical_order
+from wetlandflow.models.compare import compare_models, compare_run, main, write_comparison
+from wetlandflow.models.hierarchy import HierarchicalClassifier
+from wetlandflow.models.selection import forward_feature_selection, read_selected_features
 
 # A handful of the demo's features (water, vegetation, radar) keeps every test fast.
 REAL = ["mndwi_summer", "ndvi_summer", "vh_mean_db", "water_frequency"]
@@ -27,10 +27,10 @@ NESTED = REAL[:3] + NOISE[:2]  # fewer candidates for the nested selection, whic
 def demo(small_demo):
     """The small demo's samples (the run's steps up to samples, no files written) and spatial folds."""
     from wetlandflow.features.cube import build_cube
-    from wetlandflow.inputs import load_inputs, project_grid, read_aoi
-    from wetlandflow.project import load_project
-    from wetlandflow.samples import drop_incomplete, extract_samples, plot_pixels, read_plots
-    from wetlandflow.validation import SpatialBlockKFold, assign_folds
+    from wetlandflow.inputs.layers import load_inputs, project_grid, read_aoi
+    from wetlandflow.inputs.project import load_project
+    from wetlandflow.training.samples import drop_incomplete, extract_samples, plot_pixels, read_plots
+    from wetlandflow.validation.splitters import SpatialBlockKFold, assign_folds
 
     p = load_project(small_demo)
     grid = project_grid(p)
@@ -188,7 +188,7 @@ def test_compare_run_reads_a_run_folder(demo, tmp_path):
                                                                           "model": {"n_threads": 2}}}))
     r = compare_run(run, kinds=("random_forest",), structures=("flat",), selection="none", quick=True)
     assert (run / "comparison" / "comparison.csv").exists() and r.settings["features"] == REAL
-    # the rerun command: python -m wetlandflow.compare RUN_DIR ...
+    # the rerun command: python -m wetlandflow.models.compare RUN_DIR ...
     assert main([str(run), "--out", str(tmp_path / "cli"), "--quick", "--selection", "none",
                  "--kinds", "xgboost", "--structures", "flat"]) == 0
     assert pd.read_csv(tmp_path / "cli" / "comparison.csv")["config"].tolist() == ["xgboost/flat/all"]

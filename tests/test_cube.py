@@ -12,8 +12,8 @@ from wetlandflow._provenance import with_attrs
 from wetlandflow.errors import ProjectFileError
 from wetlandflow.features.cube import REQUIRED_ATTRS, build_cube, cube_summary, save_cube
 from wetlandflow.features.registry import REGISTRY, feature, registry_table, resolve_selection
-from wetlandflow.inputs import load_inputs
-from wetlandflow.project import load_project
+from wetlandflow.inputs.layers import load_inputs
+from wetlandflow.inputs.project import load_project
 
 
 @pytest.fixture(scope="module")

@@ -15,7 +15,7 @@ import rasterio
 from affine import Affine
 
 from wetlandflow.errors import GridMismatchError, ParameterError, ValidationDesignError
-from wetlandflow.honesty import cv_honesty, map_accuracy_against_truth, random_pixel_cv_predictions
+from wetlandflow.validation.honesty import cv_honesty, map_accuracy_against_truth, random_pixel_cv_predictions
 
 # Margins of the honesty test (common practice, no source): random-pixel CV must exceed the map's true
 # accuracy by at least 5 points, and the spatial estimate must be at most half as far from the truth.

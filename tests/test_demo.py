@@ -1,4 +1,4 @@
-"""Tests of the synthetic demo landscape (wetlandflow.demo).
+"""Tests of the synthetic demo landscape (wetlandflow.demo.landscape).
 
 One module-scoped demo (size 256) serves most tests; the determinism test makes
 two more of the same size.  Checks marked ``reference`` compare the synthetic
@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import datetime as dt
 import re
-import tomllib
 from pathlib import Path
 
 import geopandas as gpd
@@ -18,11 +17,12 @@ import numpy as np
 import pytest
 import rasterio
 import shapely
+import tomllib
 from pyproj import CRS
 from rasterio.features import rasterize
 from rasterio.warp import transform_bounds
 
-from wetlandflow import demo
+from wetlandflow.demo import landscape as demo
 from wetlandflow.errors import AlignmentError, InputFileError, ProjectFileError
 
 SIZE, SEED = 256, 0

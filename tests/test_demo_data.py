@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 import rasterio
 
-from wetlandflow.demo import make_demo
+from wetlandflow.demo.landscape import make_demo
 
 COMMITTED = Path(__file__).resolve().parent.parent / "demo_data" / "orlenmere_small"
 

@@ -4,7 +4,13 @@ from __future__ import annotations
 
 import pytest
 
-from wetlandflow.doctor import doctor_report, find_problems, format_report, installed_distributions, stack_info
+from wetlandflow.ui.doctor import (
+    doctor_report,
+    find_problems,
+    format_report,
+    installed_distributions,
+    stack_info,
+)
 
 
 def clean_info(tmp_path) -> dict:

@@ -1,4 +1,4 @@
-"""Tests for wetlandflow.explain and wetlandflow.explain_plots.
+"""Tests for wetlandflow.explain.attribution and wetlandflow.explain.plots.
 
 Reference checks: local accuracy of TreeSHAP and
 agreement with the reference library ``shap`` (PyPI), after
@@ -18,7 +18,7 @@ import pytest
 import xarray as xr
 
 from wetlandflow.errors import BudgetError, ParameterError
-from wetlandflow.explain import (
+from wetlandflow.explain.attribution import (
     CLUSTER_NOTE,
     _shap_layout,
     _xgb_contribs_layout,
@@ -33,7 +33,7 @@ from wetlandflow.explain import (
     stratified_subsample,
     write_shap_map,
 )
-from wetlandflow.models import WetlandClassifier
+from wetlandflow.models.classifier import WetlandClassifier
 
 SCHEME = ("upland", "open_water", "marsh", "bog")  # open_water is never in the training labels
 FEATURES = ["signal_a", "signal_b", "noise_1", "noise_2", "noise_3"]
@@ -265,7 +265,7 @@ def test_ranking_stability_matrix(data):
 def test_figures_return_figures(xgb_sv, data):
     from matplotlib.figure import Figure
 
-    from wetlandflow.explain_plots import (
+    from wetlandflow.explain.plots import (
         plot_beeswarm,
         plot_dependence,
         plot_domain_importance,
@@ -335,7 +335,7 @@ def test_window_contributions_add_up_to_the_margin_of_every_pixel_and_class(xgb_
     understanding with explainable AI for trees, Nature Machine Intelligence 2, 56-67; the margin comes
     from XGBoost itself (``output_margin=True``).
     """
-    from wetlandflow.explain import contribution_map, window_contributions
+    from wetlandflow.explain.attribution import contribution_map, window_contributions
 
     cube = _cube(data)
     win = (slice(2, 10), slice(0, 10))
@@ -362,7 +362,7 @@ def test_window_contributions_add_up_to_the_margin_of_every_pixel_and_class(xgb_
 
 
 def _hierarchy(kind: str = "xgboost"):
-    from wetlandflow.hierarchy import HierarchicalClassifier
+    from wetlandflow.models.hierarchy import HierarchicalClassifier
 
     X, y = _data(300, seed=2)
     base = {"kind": kind, "n_estimators": 15, "max_depth": 3, "n_threads": 1}
@@ -403,7 +403,7 @@ def test_combined_values_add_up_to_the_leaf_probabilities(hier, method):
     property 1): base value + sum of the attributions = the model output, here P(leaf) of the whole
     hierarchy for every class; the base value is the mean output over the background (shap library's
     ExactExplainer / PermutationExplainer).  atol 1e-6: float32 storage of the values (DERIVED)."""
-    from wetlandflow.explain import combined_shap_values
+    from wetlandflow.explain.attribution import combined_shap_values
 
     model, X = hier
     rows = X.iloc[:12]
@@ -424,7 +424,7 @@ def test_combined_values_add_up_to_the_leaf_probabilities(hier, method):
 def test_combined_exact_values_match_the_shapley_formula(hier):
     """The exact method against Shapley values computed here from the definition (Shapley 1953) with the
     interventional value function of Lundberg & Lee (2017), same background; atol 1e-6 for float32."""
-    from wetlandflow.explain import combined_shap_values
+    from wetlandflow.explain.attribution import combined_shap_values
 
     model, X = hier
     bg = X.iloc[200:215].to_numpy(np.float32)
@@ -444,7 +444,7 @@ def test_per_level_values_add_up_to_each_level_output(kind):
     predict_proba (forest), for the top level and for the child model, on every row."""
     from xgboost import DMatrix
 
-    from wetlandflow.explain import hierarchical_shap_values
+    from wetlandflow.explain.attribution import hierarchical_shap_values
 
     model, X = _hierarchy(kind)
     rows = X.iloc[:30]
@@ -468,7 +468,7 @@ def test_per_level_values_add_up_to_each_level_output(kind):
 
 def test_model_shap_values_dispatch_and_refusals(hier, xgb_model, data):
     from wetlandflow.errors import ModelError
-    from wetlandflow.explain import hierarchical_shap_values, model_shap_values
+    from wetlandflow.explain.attribution import hierarchical_shap_values, model_shap_values
 
     model, X = hier
     combined = model_shap_values(model, X.iloc[:4], features=FEATURES, method="exact")

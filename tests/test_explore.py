@@ -1,4 +1,4 @@
-"""Tests for wetlandflow.explore (class separability, predictor redundancy)."""
+"""Tests for wetlandflow.training.explore (class separability, predictor redundancy)."""
 
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 from scipy import integrate, stats
 
 from wetlandflow.errors import SamplesError
-from wetlandflow.explore import (
+from wetlandflow.training.explore import (
     bhattacharyya_gaussian,
     class_separability,
     divergence_gaussian,

@@ -50,14 +50,14 @@ def demo(tmp_path_factory) -> Path:
 @pytest.fixture(scope="module")
 def reference(demo) -> Path:
     """An uninterrupted run of the same project."""
-    from wetlandflow.run import run_project
+    from wetlandflow.pipeline.run import run_project
 
     return run_project(demo / "reference.toml", progress=False).run_dir
 
 
 def start_run(demo: Path, name: str) -> subprocess.Popen:
     return subprocess.Popen(
-        [sys.executable, "-m", "wetlandflow.cli", "run", "--quiet", f"{name}.toml"],
+        [sys.executable, "-m", "wetlandflow.ui.cli", "run", "--quiet", f"{name}.toml"],
         cwd=demo,
         stdout=subprocess.DEVNULL,
         stderr=subprocess.PIPE,
@@ -145,8 +145,8 @@ def assert_same_results(run_dir: Path, reference: Path) -> None:
 
 def test_killed_in_features_then_in_prediction_then_rerun(demo, reference, monkeypatch):
     """One run folder: killed while writing the cube, rerun and killed while predicting, rerun to the end."""
-    import wetlandflow.mapping as mapping
-    from wetlandflow.run import run_project
+    import wetlandflow.mapping.predict as mapping
+    from wetlandflow.pipeline.run import run_project
 
     run_dir = demo / "runs" / "killed"
     n_windows = len(list(mapping.windows(read_grid(reference), 64)))
@@ -181,6 +181,6 @@ def test_killed_in_features_then_in_prediction_then_rerun(demo, reference, monke
 
 
 def read_grid(run_dir: Path):
-    from wetlandflow.grid import Grid
+    from wetlandflow.inputs.grid import Grid
 
     return Grid.from_dict(json.loads((run_dir / "manifest.json").read_text())["steps"]["inputs"]["grid"])

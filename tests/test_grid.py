@@ -9,7 +9,7 @@ import pytest
 from affine import Affine
 
 from wetlandflow.errors import AlignmentError, GridMismatchError
-from wetlandflow.grid import Grid, require_match
+from wetlandflow.inputs.grid import Grid, require_match
 
 
 def test_from_bbox_snaps_outward_to_whole_pixels():

@@ -11,12 +11,13 @@ import pytest
 import rasterio
 from conftest import project_variant
 
-from wetlandflow.applicability import xgb_importance_weights
 from wetlandflow.errors import ProjectFileError
-from wetlandflow.hierarchy import HierarchicalClassifier
-from wetlandflow.mapping import _model_signature
-from wetlandflow.models import ClassScheme, WetlandClassifier, load_bundle, save_bundle
-from wetlandflow.steps import importance_weights
+from wetlandflow.mapping.applicability import xgb_importance_weights
+from wetlandflow.mapping.predict import _model_signature
+from wetlandflow.models.bundle import load_bundle, save_bundle
+from wetlandflow.models.classifier import ClassScheme, WetlandClassifier
+from wetlandflow.models.hierarchy import HierarchicalClassifier
+from wetlandflow.pipeline.steps import importance_weights
 
 CLASSES = ("upland", "open_water", "marsh", "swamp", "fen", "bog")
 PARENTS = {"wetland": ("marsh", "swamp", "fen", "bog")}
@@ -130,8 +131,8 @@ def test_importance_weights_average_the_normalised_levels_by_training_rows():
 
 
 def test_make_model_builds_the_hierarchy_with_the_flat_settings(light_demo):
-    from wetlandflow.project import load_project
-    from wetlandflow.run import make_model, training_weights
+    from wetlandflow.inputs.project import load_project
+    from wetlandflow.pipeline.run import make_model, training_weights
 
     project = load_project(light_demo)
     flat = make_model(project)
@@ -166,7 +167,7 @@ def hier_run(light_demo, light_run):
     feature and sample steps are reused (their keys do not depend on the model), the rest is recomputed."""
     import shutil
 
-    from wetlandflow.run import run_project
+    from wetlandflow.pipeline.run import run_project
 
     shutil.copytree(light_run.run_dir, light_demo.parent / "runs" / "light_hier")
     pf = project_variant(light_demo, "light_hier", **{"model.hierarchical": True,
@@ -198,9 +199,9 @@ def test_hierarchical_run_writes_maps_whose_probabilities_sum_to_one(hier_run):
 
 def test_explanations_of_a_hierarchical_run(hier_run):
     from wetlandflow.features.cube import open_cube
-    from wetlandflow.project import load_project
-    from wetlandflow.run import refit_with_seed
-    from wetlandflow.steps import write_explanations
+    from wetlandflow.inputs.project import load_project
+    from wetlandflow.pipeline.run import refit_with_seed
+    from wetlandflow.pipeline.steps import write_explanations
 
     d = hier_run.run_dir
     model, side = load_bundle(d / "model")

@@ -11,8 +11,8 @@ from sklearn.base import clone
 from sklearn.model_selection import GroupKFold, cross_val_predict
 
 from wetlandflow.errors import ModelError
-from wetlandflow.hierarchy import HierarchicalClassifier
-from wetlandflow.validation import SpatialBlockKFold
+from wetlandflow.models.hierarchy import HierarchicalClassifier
+from wetlandflow.validation.splitters import SpatialBlockKFold
 
 CLASSES = ("upland", "open_water", "marsh", "swamp", "fen", "bog")
 PARENTS = {"wetland": ("marsh", "swamp", "fen", "bog")}

@@ -8,8 +8,14 @@ import pytest
 from scipy import ndimage
 
 from wetlandflow.errors import GridMismatchError, ParameterError
-from wetlandflow.grid import Grid
-from wetlandflow.inventory import INVENTORY_LAYER, apply_mmu, area_summary, polygonize, write_inventory
+from wetlandflow.inputs.grid import Grid
+from wetlandflow.mapping.inventory import (
+    INVENTORY_LAYER,
+    apply_mmu,
+    area_summary,
+    polygonize,
+    write_inventory,
+)
 
 NAMES = ("upland", "open_water", "marsh", "swamp", "fen", "bog")
 

@@ -7,9 +7,9 @@ import pytest
 import rasterio
 import xarray as xr
 
-from wetlandflow.grid import Grid, attach
-from wetlandflow.mapping import class_areas, confidence_layers, predict_map, windows
-from wetlandflow.models import WetlandClassifier
+from wetlandflow.inputs.grid import Grid, attach
+from wetlandflow.mapping.predict import class_areas, confidence_layers, predict_map, windows
+from wetlandflow.models.classifier import WetlandClassifier
 
 GRID = Grid.from_bbox((0, 0, 3000, 2000), crs="EPSG:32633", resolution=10)
 CLASSES = ("upland", "fen", "bog")
@@ -111,7 +111,7 @@ def test_interrupted_prediction_resumes_from_written_windows(tmp_path):
 
 
 def test_applicability_layers_match_the_array_computation(tmp_path):
-    from wetlandflow.applicability import applicability_map, fit_applicability
+    from wetlandflow.mapping.applicability import applicability_map, fit_applicability
 
     cube, valid = synthetic_cube()
     model, X = _fitted(cube)

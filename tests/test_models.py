@@ -9,7 +9,8 @@ from sklearn.base import clone
 from sklearn.model_selection import GroupKFold, cross_val_score
 
 from wetlandflow.errors import ModelError
-from wetlandflow.models import (
+from wetlandflow.models.bundle import load_bundle, save_bundle
+from wetlandflow.models.classifier import (
     ClassScheme,
     FeatureAlignmentWarning,
     WetlandClassifier,
@@ -17,8 +18,6 @@ from wetlandflow.models import (
     canonical_order,
     check_features,
     check_no_sentinels,
-    load_bundle,
-    save_bundle,
 )
 
 CLASSES = ("upland", "open_water", "fen", "bog")

@@ -50,8 +50,8 @@ def shared_notebook_run(tmp_path_factory) -> Path:
     """
     import tomli_w
 
-    from wetlandflow.demo import make_demo
-    from wetlandflow.run import run_project
+    from wetlandflow.demo.landscape import make_demo
+    from wetlandflow.pipeline.run import run_project
 
     root = tmp_path_factory.getbasetemp() / "shared_notebook_demo"
     project_file = root / "notebooks.toml"
@@ -135,7 +135,7 @@ def test_template_is_committed_clean_with_a_parameters_cell(name):
 
 
 def test_injected_parameters_follow_the_parameters_cell_and_round_trip():
-    from wetlandflow.widgets import inject_parameters
+    from wetlandflow.ui.widgets import inject_parameters
 
     nb = nbformat.read(NOTEBOOKS / "03_validation_and_training.ipynb", as_version=4)
     values = {
@@ -156,7 +156,7 @@ def test_injected_parameters_follow_the_parameters_cell_and_round_trip():
 @pytest.fixture(scope="module")
 def executed(project_file, tmp_path_factory):
     """Execute a template once with small parameters; cached per notebook for this module."""
-    from wetlandflow.widgets import run_notebook
+    from wetlandflow.ui.widgets import run_notebook
 
     tmp = tmp_path_factory.mktemp("executed")
     cache: dict[str, object] = {}

@@ -5,7 +5,7 @@ from __future__ import annotations
 import pytest
 
 from wetlandflow.errors import ProjectFileError
-from wetlandflow.project import config_hash, load_project, to_dict
+from wetlandflow.inputs.project import config_hash, load_project, to_dict
 
 
 def test_demo_project_loads(small_demo):

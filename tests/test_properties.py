@@ -22,7 +22,7 @@ from hypothesis.extra.numpy import arrays
 
 from wetlandflow.errors import ValidationDesignError
 from wetlandflow.features.optical import _ND_SPECS, BANDS, optical_indices
-from wetlandflow.grid import Grid
+from wetlandflow.inputs.grid import Grid
 
 FAST = settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 SLOW = settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow])
@@ -108,7 +108,7 @@ def assert_partition(splits, n):
 @FAST
 @given(plots_and_samples(), st.floats(200, 2500), st.integers(2, 5))
 def test_block_folds_partition_and_keep_plots_and_blocks_whole(data, block, k):
-    from wetlandflow.validation import SpatialBlockKFold, _plot_blocks, block_ids
+    from wetlandflow.validation.splitters import SpatialBlockKFold, _plot_blocks, block_ids
 
     xy, y, plots = data
     cv = SpatialBlockKFold(
@@ -139,7 +139,7 @@ def test_buffered_training_samples_stay_beyond_the_buffer(data, buffer_m):
     from scipy.spatial.distance import cdist
     from sklearn.model_selection import GroupKFold
 
-    from wetlandflow.validation import BufferedSplitter
+    from wetlandflow.validation.splitters import BufferedSplitter
 
     xy, y, plots = data
     cv = BufferedSplitter(GroupKFold(n_splits=3), buffer_m, coords=xy, on_class_missing="ignore")
@@ -198,7 +198,7 @@ def test_alignment_places_every_pixel_within_half_a_pixel(tmp_path_factory, pair
     from pyproj import Transformer
     from rasterio.transform import from_origin
 
-    from wetlandflow.align import read_aligned
+    from wetlandflow.inputs.align import read_aligned
 
     lon, lat, grid_crs, src_crs, res, src_res, w, h = pair
     cx, cy = Transformer.from_crs("EPSG:4326", grid_crs, always_xy=True).transform(lon, lat)
@@ -258,7 +258,7 @@ def _matrix(counts):
 @FAST
 @given(sample_and_areas(), st.sampled_from([0.8, 0.9, 0.95, 0.99]))
 def test_area_estimates_sum_up_and_intervals_contain_them(data, confidence):
-    from wetlandflow.accuracy import stratified_estimates
+    from wetlandflow.accuracy.estimators import stratified_estimates
 
     counts, areas = data
     m, names = _matrix(counts)
@@ -286,7 +286,7 @@ def test_area_estimates_equal_the_stratified_estimator_closed_form(data):
     p_j = sum_i W_i n_ij / n_i.,  SE(p_j) = sqrt(sum_i W_i^2 (n_ij/n_i.)(1 - n_ij/n_i.) / (n_i. - 1)).
     The formulas are from memory (not re-read in the paper); the worked example they reproduce is tested
     in tests/test_accuracy.py."""
-    from wetlandflow.accuracy import stratified_estimates
+    from wetlandflow.accuracy.estimators import stratified_estimates
 
     counts, areas = data
     m, names = _matrix(counts)
@@ -305,7 +305,7 @@ def test_area_estimates_equal_the_stratified_estimator_closed_form(data):
 @given(st.lists(st.integers(2, 60), min_size=2, max_size=6), st.data())
 def test_a_perfect_sample_returns_the_mapped_areas_with_no_error(diag, data):
     """Closed form: with no off-diagonal counts every estimate equals the mapped value and every SE is 0."""
-    from wetlandflow.accuracy import stratified_estimates
+    from wetlandflow.accuracy.estimators import stratified_estimates
 
     k = len(diag)
     areas = np.array(data.draw(st.lists(st.floats(1.0, 1e5), min_size=k, max_size=k)))

@@ -13,23 +13,24 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import project_variant
 
 from wetlandflow import CAUTION
 from wetlandflow.errors import InputFileError
-from wetlandflow.references import BIBLIOGRAPHY, Citations, match
-from wetlandflow.report import RunFolder, read_preview, write_report
-from wetlandflow.report_text import NO_SAMPLE, SECTIONS
-
-from conftest import project_variant
+from wetlandflow.report.appendix import write_report
+from wetlandflow.report.figures import read_preview
+from wetlandflow.report.references import BIBLIOGRAPHY, Citations, match
+from wetlandflow.report.run_folder import RunFolder
+from wetlandflow.report.text import NO_SAMPLE, SECTIONS
 
 
 @pytest.fixture(scope="module")
 def run_dir(tmp_path_factory) -> Path:
     """A tiny demo run (200 x 200 px) with explanations and an assessed sample; its inputs then deleted."""
-    from wetlandflow.assessment import assess, class_codes, design_sample, label_from_reference
-    from wetlandflow.demo import load_truth, make_demo
-    from wetlandflow.project import load_project
-    from wetlandflow.run import run_project
+    from wetlandflow.accuracy.assessment import assess, class_codes, design_sample, label_from_reference
+    from wetlandflow.demo.landscape import load_truth, make_demo
+    from wetlandflow.inputs.project import load_project
+    from wetlandflow.pipeline.run import run_project
 
     folder = tmp_path_factory.mktemp("report_demo")
     pf = project_variant(make_demo(folder, size=200, seed=1), "tiny", **{
@@ -195,7 +196,7 @@ def test_preview_reads_an_overview_not_the_full_raster(tmp_path):
     """A COG with overviews: the preview has the shape of an overview level, as GDAL reports it."""
     import rasterio
 
-    from wetlandflow.mapping import build_cog
+    from wetlandflow.mapping.predict import build_cog
 
     codes = np.repeat(np.arange(1, 7, dtype=np.uint8), 100)[None, :].repeat(700, axis=0)  # 700 x 600
     cog = build_cog(_plain_tif(tmp_path / "plain.tif", codes), tmp_path / "cog.tif", overview_resampling="mode")

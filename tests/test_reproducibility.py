@@ -9,7 +9,7 @@ import pandas as pd
 import pytest
 from conftest import project_variant
 
-from wetlandflow.run import run_project
+from wetlandflow.pipeline.run import run_project
 
 TABLES = ("samples.parquet", "validation/oof_predictions.parquet", "validation/error_matrix.csv", "areas.csv",
           "inventory_areas.csv")

@@ -8,9 +8,9 @@ import numpy as np
 import rasterio
 
 from wetlandflow import CAUTION
-from wetlandflow.demo import load_truth
-from wetlandflow.inputs import project_grid
-from wetlandflow.project import load_project
+from wetlandflow.demo.landscape import load_truth
+from wetlandflow.inputs.layers import project_grid
+from wetlandflow.inputs.project import load_project
 
 
 def test_run_folder_is_complete(demo_run):

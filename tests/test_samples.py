@@ -9,8 +9,14 @@ import pytest
 from shapely.geometry import Point, Polygon, box
 
 from wetlandflow.errors import SamplesError
-from wetlandflow.grid import Grid
-from wetlandflow.samples import class_balance, drop_incomplete, extract_samples, plot_pixels, read_plots
+from wetlandflow.inputs.grid import Grid
+from wetlandflow.training.samples import (
+    class_balance,
+    drop_incomplete,
+    extract_samples,
+    plot_pixels,
+    read_plots,
+)
 
 GRID = Grid.from_bbox((0, 0, 1000, 1000), crs="EPSG:32633", resolution=10)
 CLASSES = ("upland", "fen", "bog")

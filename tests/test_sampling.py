@@ -1,4 +1,4 @@
-"""Tests for wetlandflow.sampling: sample size, allocation, drawing and the labelling round trip."""
+"""Tests for wetlandflow.accuracy.sampling: sample size, allocation, drawing and the labelling round trip."""
 
 from __future__ import annotations
 
@@ -10,9 +10,8 @@ import rioxarray  # noqa: F401  (registers the .rio accessor)
 import shapely
 import xarray as xr
 
-from wetlandflow.accuracy import error_matrix, stratified_estimates
-from wetlandflow.errors import AlignmentError, InputFileError, OutputError, ValidationDesignError
-from wetlandflow.sampling import (
+from wetlandflow.accuracy.estimators import error_matrix, stratified_estimates
+from wetlandflow.accuracy.sampling import (
     allocate,
     draw_stratified_sample,
     estimates_from_sample,
@@ -21,6 +20,7 @@ from wetlandflow.sampling import (
     sample_size_overall,
     write_sample,
 )
+from wetlandflow.errors import AlignmentError, InputFileError, OutputError, ValidationDesignError
 
 NAMES = {1: "upland", 2: "open_water", 3: "marsh", 4: "fen"}
 CRS = "EPSG:32633"

@@ -11,8 +11,8 @@ from matplotlib.figure import Figure
 from sklearn.model_selection import GroupKFold, cross_val_score
 
 from wetlandflow.errors import ModelError, ParameterError
-from wetlandflow.models import WetlandClassifier
-from wetlandflow.selection import (
+from wetlandflow.models.classifier import WetlandClassifier
+from wetlandflow.models.selection import (
     forward_feature_selection,
     forward_selection_within_folds,
     importance_ranking,
@@ -20,7 +20,7 @@ from wetlandflow.selection import (
     recursive_elimination,
     write_selection,
 )
-from wetlandflow.validation import SpatialBlockKFold
+from wetlandflow.validation.splitters import SpatialBlockKFold
 
 INFORMATIVE = ["f1", "f2"]
 NOISE = ["pixel_noise", "plot_noise_a", "plot_noise_b"]

@@ -1,4 +1,4 @@
-"""Tests for wetlandflow.validation, .nndm, .variogram and .nested (spatial CV designs)."""
+"""Tests for wetlandflow.validation.splitters, .nndm, .variogram and .nested (spatial CV designs)."""
 
 from __future__ import annotations
 
@@ -20,10 +20,11 @@ from sklearn.model_selection import (
     cross_val_score,
 )
 
-from wetlandflow import nested, validation, variogram
 from wetlandflow.errors import BudgetError, ValidationDesignError
-from wetlandflow.nested import spatial_grid_search, subset_splitter
-from wetlandflow.validation import (
+from wetlandflow.validation import nested, variogram
+from wetlandflow.validation import splitters as validation
+from wetlandflow.validation.nested import spatial_grid_search, subset_splitter
+from wetlandflow.validation.splitters import (
     KNNDM,
     NNDM,
     BufferedSplitter,
@@ -42,7 +43,7 @@ from wetlandflow.validation import (
     random_pixel_kfold,
     wasserstein_w,
 )
-from wetlandflow.variogram import suggest_block_size
+from wetlandflow.validation.variogram import suggest_block_size
 
 CLASSES = np.array(["bog", "fen", "marsh", "upland"])
 
@@ -517,7 +518,7 @@ def test_spatial_early_stopping_scores_the_given_folds_like_scikit_learn_log_los
     import xgboost as xgb
     from sklearn.metrics import log_loss
 
-    from wetlandflow.nested import spatial_early_stopping
+    from wetlandflow.validation.nested import spatial_early_stopping
 
     s = make_samples(60)
     X, y, g, xy = arrays(s)

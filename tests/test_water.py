@@ -15,13 +15,12 @@ import numpy as np
 import pandas as pd
 import pytest
 import xarray as xr
+from test_sar import sar_stack, speckle  # the shared synthetic SAR data
 
 from wetlandflow._provenance import parameters_of
 from wetlandflow.errors import DataQualityError, GridMismatchError
 from wetlandflow.features import sar
 from wetlandflow.features import water as S
-
-from test_sar import sar_stack, speckle  # the shared synthetic SAR data
 
 
 def db(x):

@@ -1,4 +1,4 @@
-"""Tests for wetlandflow.weights: class balance, the per-plot cap, and the effect on class priors."""
+"""Tests for wetlandflow.training.weights: class balance, the per-plot cap, and the effect on class priors."""
 
 from __future__ import annotations
 
@@ -13,7 +13,7 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.utils.class_weight import compute_sample_weight
 
 from wetlandflow.errors import ParameterError, SamplesError
-from wetlandflow.weights import (
+from wetlandflow.training.weights import (
     PlotCapWarning,
     adjust_priors,
     sample_weights,

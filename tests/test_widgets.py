@@ -15,9 +15,9 @@ import pandas as pd
 import pytest
 import rasterio
 
-from wetlandflow import previews, widgets
 from wetlandflow.errors import ParameterError, ProjectFileError
-from wetlandflow.project import load_project
+from wetlandflow.inputs.project import load_project
+from wetlandflow.ui import previews, widgets
 
 
 @pytest.fixture(scope="module")
@@ -117,7 +117,7 @@ def test_cv_panel_matches_scikit_learn_cross_val_predict(project_file, samples):
     predicting their test indices, gives the same out-of-fold probabilities as the panel's loop."""
     from sklearn.model_selection import PredefinedSplit, cross_validate
 
-    from wetlandflow.run import make_model
+    from wetlandflow.pipeline.run import make_model
 
     panel = widgets.CrossValidationPanel(load_project(project_file), samples)
     panel.model.controls["n_estimators"].value = 12
@@ -149,7 +149,7 @@ def test_cv_panel_matches_scikit_learn_cross_val_predict(project_file, samples):
 
 
 def test_cv_cancel_stops_between_folds_and_keeps_the_finished_fold(project_file, samples, monkeypatch):
-    from wetlandflow.models import WetlandClassifier
+    from wetlandflow.models.classifier import WetlandClassifier
 
     fits = []
     original_fit = WetlandClassifier.fit
@@ -222,7 +222,7 @@ def _cog(tmp_path: Path, values: np.ndarray, resampling: str) -> Path:
     """A single-band COG of ``values`` (10 m pixels) with overviews, through the library's writer."""
     from affine import Affine
 
-    from wetlandflow.mapping import build_cog
+    from wetlandflow.mapping.predict import build_cog
 
     stage = tmp_path / f"stage_{resampling}.tif"
     profile = {
@@ -275,7 +275,7 @@ def test_small_rasters_are_read_at_their_own_size_and_class_codes_keep_their_val
 def test_class_map_uses_the_scheme_palette_with_a_legend(tmp_path):
     from matplotlib.colors import to_hex
 
-    from wetlandflow.models import ClassScheme
+    from wetlandflow.models.classifier import ClassScheme
 
     names = ("upland", "open_water", "marsh", "swamp", "fen", "bog")
     codes = np.repeat(np.arange(0, 7, dtype=np.uint8), 20)[None, :].repeat(40, axis=0)
@@ -309,7 +309,7 @@ def test_coarsened_cube_previews_are_block_means_ignoring_nan():
 
 
 def test_preview_grid_covers_the_grid_with_whole_pixel_factors():
-    from wetlandflow.grid import Grid
+    from wetlandflow.inputs.grid import Grid
 
     grid = Grid.from_bbox((500000, 6000000, 513070, 6004010), crs="EPSG:32633", resolution=10)
     coarse = previews.preview_grid(grid, max_px=200)

@@ -1,5 +1,12 @@
 """wetlandflow: wetland inventories from local Earth-observation rasters and labelled plots.
 
+The package is laid out by stage of a run, each sub-package importing only from those before it::
+
+    inputs -> features -> training -> validation, models -> mapping, accuracy, explain -> report
+           -> pipeline -> ui          (demo: the synthetic landscape; errors, progress: every stage)
+
+The names a notebook user reaches for first are re-exported here and imported on first use.
+
 The inventory this package produces is a screening-level model product, not a
 legal wetland delineation: defer to local regulations and qualified wetland
 professionals for any permit or land decision.
@@ -32,7 +39,23 @@ import warnings  # noqa: E402
 # to a user.  Only this one message from that one module is ignored.
 warnings.filterwarnings("ignore", message="Dataset has no geotransform", module=r"rasterio\.features")
 
+from ._lazy import exports  # noqa: E402
 from .errors import WetlandflowError  # noqa: E402
-from .grid import Grid  # noqa: E402
 
-__all__ = ["CAUTION", "Grid", "WetlandflowError", "__version__"]
+_all, __getattr__, __dir__ = exports(__name__, {
+    "wetlandflow.inputs.project": ["load_project"],
+    "wetlandflow.inputs.grid": ["Grid"],
+    "wetlandflow.inputs.layers": ["FeatureInputs", "load_inputs"],
+    "wetlandflow.features.registry": ["feature", "registry_table"],
+    "wetlandflow.features.cube": ["open_cube"],
+    "wetlandflow.validation.splitters": ["SpatialBlockKFold", "BufferedSplitter"],
+    "wetlandflow.validation.nndm": ["NNDM", "KNNDM"],
+    "wetlandflow.models.classifier": ["WetlandClassifier", "ClassScheme"],
+    "wetlandflow.models.hierarchy": ["HierarchicalClassifier"],
+    "wetlandflow.models.bundle": ["load_bundle"],
+    "wetlandflow.accuracy.estimators": ["stratified_estimates", "error_matrix", "accuracy_measures"],
+    "wetlandflow.pipeline.run": ["run_project"],
+    "wetlandflow.report.appendix": ["write_report"],
+    "wetlandflow.demo.landscape": ["make_demo"],
+})
+__all__ = ["CAUTION", "WetlandflowError", "__version__", *_all]

@@ -28,10 +28,10 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from . import CAUTION
-from .errors import ValidationDesignError
-from .io import write_figure, write_json, write_table
-from .project import Project, load_project
+from .. import CAUTION
+from ..errors import ValidationDesignError
+from ..inputs.io import write_figure, write_json, write_table
+from ..inputs.project import Project, load_project
 
 SAMPLE_DIR = "validation_sample"
 ACCURACY_DIR = "accuracy"
@@ -85,9 +85,15 @@ def design_sample(project: Project | str | Path, *, target_se: float = 0.01,
     overwrite : bool
         Replace an existing sample file (off: it may already hold labels).
     """
-    from .inputs import project_grid
-    from .samples import read_plots
-    from .sampling import allocate, draw_stratified_sample, mapped_proportions, sample_size_overall, write_sample
+    from ..inputs.layers import project_grid
+    from ..training.samples import read_plots
+    from .sampling import (
+        allocate,
+        draw_stratified_sample,
+        mapped_proportions,
+        sample_size_overall,
+        write_sample,
+    )
 
     p = _project(project)
     codes = class_codes(p)
@@ -129,7 +135,7 @@ def assess(project: Project | str | Path, labelled: str | Path, *, design: str =
     figures ``error_matrix.png`` and ``areas.png``, and rewrites the run's ``areas.csv`` with mapped and
     error-adjusted areas and their confidence intervals.
     """
-    from .accuracy import plot_areas, plot_error_matrix
+    from .estimators import plot_areas, plot_error_matrix
     from .sampling import estimates_from_sample, read_labelled_sample
 
     p = _project(project)
@@ -197,7 +203,7 @@ def coverage_study(class_map: xr.DataArray, reference: xr.DataArray, codes: Mapp
     area, the mapped area and its bias, the mean estimated area, the estimator's mean bias, and the share
     of repetitions whose interval covered the true area.
     """
-    from .accuracy import error_matrix, stratified_estimates
+    from .estimators import error_matrix, stratified_estimates
 
     cm = np.asarray(class_map.values).astype(int).ravel()
     ref = np.asarray(reference.values).astype(int).ravel()

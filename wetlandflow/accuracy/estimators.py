@@ -41,7 +41,7 @@ import numpy as np
 import pandas as pd
 from scipy.stats import norm
 
-from .errors import OutputError, ValidationDesignError
+from ..errors import OutputError, ValidationDesignError
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure

@@ -32,8 +32,8 @@ import pandas as pd
 import shapely
 import xarray as xr
 
-from .accuracy import AreaAccuracyResult, error_matrix, simple_random_estimates, stratified_estimates
-from .errors import AlignmentError, InputFileError, OutputError, ValidationDesignError
+from ..errors import AlignmentError, InputFileError, OutputError, ValidationDesignError
+from .estimators import AreaAccuracyResult, error_matrix, simple_random_estimates, stratified_estimates
 
 __all__ = [
     "SAMPLE_COLUMNS",

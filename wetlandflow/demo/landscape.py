@@ -15,7 +15,7 @@ interfluves and infilled basins, swamp as treed belts around wetlands and on
 lower valley sides, upland elsewhere).  Every random step draws from its own
 ``numpy.random.default_rng(SeedSequence([seed, stream, ...]))``, so one seed
 gives byte-identical rasters.  Optical and SAR rasters are rendered by blocks
-of rows (:mod:`wetlandflow.demo_spectra`), so memory grows with the area, not
+of rows (:mod:`wetlandflow.demo.spectra`), so memory grows with the area, not
 with the number of dates.
 
 All names in the demo are invented; the data are synthetic.
@@ -34,14 +34,14 @@ import numpy as np
 import xarray as xr
 from scipy import ndimage as ndi
 
-from . import demo_spectra as sp
-from ._provenance import with_attrs
-from .demo_spectra import make_rng as _rng
-from .demo_spectra import smooth_noise as _noise
-from .demo_spectra import smoothstep as _smoothstep
-from .errors import AlignmentError, InputFileError, ProjectFileError
-from .features._terrain_kernels import fill_array
-from .grid import Grid, attach, require_projected
+from .._provenance import with_attrs
+from ..errors import AlignmentError, InputFileError, ProjectFileError
+from ..features._terrain_kernels import fill_array
+from ..inputs.grid import Grid, attach, require_projected
+from . import spectra as sp
+from .spectra import make_rng as _rng
+from .spectra import smooth_noise as _noise
+from .spectra import smoothstep as _smoothstep
 
 CLASS_NAMES = ("upland", "open_water", "marsh", "swamp", "fen", "bog")
 WETLAND_CLASSES = ("marsh", "swamp", "fen", "bog")
@@ -622,7 +622,7 @@ def _write_project(out: Path, seed: int, px: float, optical: list, sar: list) ->
     import tomli_w
 
     head = (f"# {PLACE}: synthetic demo project (a fictional place; synthetic data).\n"
-            "# Written by wetlandflow.demo.make_demo; paths are relative to this file.\n\n")
+            "# Written by wetlandflow.demo.landscape.make_demo; paths are relative to this file.\n\n")
     path = out / "project.toml"
     path.write_text(head + tomli_w.dumps(_project_doc(seed, px, optical, sar)), encoding="utf-8")
     return path
@@ -778,7 +778,7 @@ def load_truth(out_dir) -> xr.DataArray:
     path = Path(out_dir) / "truth.tif"
     if not path.exists():
         raise InputFileError("no truth.tif here; generate the demo first with "
-                             "wetlandflow.demo.make_demo(out_dir)", path=str(path))
+                             "wetlandflow.demo.landscape.make_demo(out_dir)", path=str(path))
     with rasterio.open(path) as src:
         data, grid = src.read(1), Grid(src.crs.to_string(), src.transform, src.width, src.height)
     da = xr.DataArray(data, dims=("y", "x"), coords=grid.coords())

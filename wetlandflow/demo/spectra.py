@@ -1,6 +1,6 @@
 """Signal models of the synthetic demo: smooth fields, optical reflectance, scene masks, SAR backscatter.
 
-:mod:`wetlandflow.demo` builds the landscape (terrain, classes); this module
+:mod:`wetlandflow.demo.landscape` builds the landscape (terrain, classes); this module
 turns the per-pixel fields of that landscape into what a sensor would record on
 one date and writes it as tiled GeoTIFF.  Scenes are rendered by blocks of rows,
 so no scene is ever held whole in memory.

@@ -1,4 +1,4 @@
-"""Exact TreeSHAP explanations of a fitted :class:`~wetlandflow.models.WetlandClassifier`.
+"""Exact TreeSHAP explanations of a fitted :class:`~wetlandflow.models.classifier.WetlandClassifier`.
 
 XGBoost models are explained with the booster's own exact TreeSHAP
 (``pred_contribs=True``); random forests with ``shap.TreeExplainer``
@@ -8,7 +8,7 @@ contribution to the model output, with local accuracy
 contributions are on the raw margin (log-odds) scale, forest contributions on
 the probability scale; ``attrs["output_scale"]`` says which.
 
-A :class:`~wetlandflow.hierarchy.HierarchicalClassifier` is explained per
+A :class:`~wetlandflow.models.hierarchy.HierarchicalClassifier` is explained per
 level (exact TreeSHAP of each level's classifier, :func:`hierarchical_shap_values`)
 and as a whole (:func:`combined_shap_values`): the leaf probabilities
 ``P(leaf) = P(parent) x P(leaf | parent)`` are a product of two models, which no
@@ -17,7 +17,7 @@ with shap's permutation (or, for few features, exact) explainer against a
 background sample, on the probability scale.
 
 Summaries (global, per domain, per correlation cluster, ranking stability
-across seeds) are plain DataFrames; figures live in :mod:`wetlandflow.explain_plots`.
+across seeds) are plain DataFrames; figures live in :mod:`wetlandflow.explain.plots`.
 
 References
 ----------
@@ -46,9 +46,9 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from ._provenance import DOMAINS, with_attrs
-from .errors import BudgetError, ModelError, ParameterError
-from .models import WetlandClassifier
+from .._provenance import DOMAINS, with_attrs
+from ..errors import BudgetError, ModelError, ParameterError
+from ..models.classifier import WetlandClassifier
 
 REFERENCE = ("Lundberg et al. (2020) From local explanations to global understanding with explainable AI "
              "for trees, Nature Machine Intelligence 2, 56-67")
@@ -274,7 +274,7 @@ def _assemble(model: WetlandClassifier, vals: np.ndarray, base: np.ndarray, samp
 
 
 def _is_hierarchical(model: Any) -> bool:
-    from .hierarchy import HierarchicalClassifier
+    from ..models.hierarchy import HierarchicalClassifier
 
     return isinstance(model, HierarchicalClassifier)
 
@@ -312,7 +312,7 @@ def combined_shap_values(model: Any, X: pd.DataFrame | np.ndarray, *, features: 
     """SHAP values of the leaf probabilities of a whole hierarchical model (any model with ``predict_proba``).
 
     The explained function is ``predict_proba``: for a
-    :class:`~wetlandflow.hierarchy.HierarchicalClassifier` the leaf probabilities
+    :class:`~wetlandflow.models.hierarchy.HierarchicalClassifier` the leaf probabilities
     ``P(parent) x P(leaf | parent)`` of the composed model, gate included.  A
     feature left out of a coalition takes the values of the background rows
     (the interventional, or marginal, value function of Lundberg & Lee 2017),
@@ -441,7 +441,7 @@ def hierarchical_shap_values(model: Any, X: pd.DataFrame | np.ndarray, *, featur
     -------
     dict of str to xarray.Dataset
         ``"top"`` and one entry per parent with a fitted model: exact TreeSHAP
-        of that level's :class:`~wetlandflow.models.WetlandClassifier`
+        of that level's :class:`~wetlandflow.models.classifier.WetlandClassifier`
         (:func:`shap_values`: classes are the level's classes, e.g. upland,
         open_water, wetland for the top level, the parent's children for a
         child model, on that level's margin scale for XGBoost or probability
@@ -613,7 +613,7 @@ def stratified_subsample(samples: pd.DataFrame, *, n: int, seed: int, by: Sequen
     ----------
     samples : DataFrame
         Needs the columns named in ``by``; a ``block`` level missing from the
-        table is made from ``x`` and ``y`` with :func:`wetlandflow.validation.block_ids`.
+        table is made from ``x`` and ``y`` with :func:`wetlandflow.validation.splitters.block_ids`.
     n : int
         Rows wanted (all rows are returned when the table is smaller).
     seed : int
@@ -635,7 +635,7 @@ def stratified_subsample(samples: pd.DataFrame, *, n: int, seed: int, by: Sequen
         raise ParameterError(f"n must be a positive number of rows; got {n!r}")
     frame = samples.copy()
     if "block" in by and "block" not in frame.columns:
-        from .validation import block_ids
+        from ..validation.splitters import block_ids
 
         frame["block"] = block_ids(frame["x"].to_numpy(), frame["y"].to_numpy(), block_size_m)
     missing = [c for c in by if c not in frame.columns]
@@ -897,7 +897,7 @@ def write_shap_map(da: xr.DataArray, path: str | Path) -> Path:
         import rioxarray  # noqa: F401
     except ImportError as exc:  # pragma: no cover
         raise ModelError("writing a SHAP map needs rioxarray; pip install rioxarray") from exc
-    from .io import atomic_path
+    from ..inputs.io import atomic_path
 
     path = Path(path)
     with atomic_path(path) as tmp:

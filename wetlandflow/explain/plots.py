@@ -13,8 +13,8 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .errors import ParameterError
-from .explain import _values
+from ..errors import ParameterError
+from .attribution import _values
 
 __all__ = ["plot_beeswarm", "plot_dependence", "plot_domain_importance", "plot_importance", "plot_waterfall"]
 
@@ -46,7 +46,7 @@ def _feature_frame(X: pd.DataFrame | np.ndarray, features: list[str]) -> pd.Data
 
 
 def plot_importance(table: pd.DataFrame, top: int = 15, *, column: str = "overall") -> Any:
-    """Horizontal bars of a :func:`~wetlandflow.explain.global_importance` column (largest on top)."""
+    """Horizontal bars of a :func:`~wetlandflow.explain.attribution.global_importance` column (largest on top)."""
     if column not in table.columns:
         raise ParameterError(f"column {column!r} not in the importance table; choose from {list(table.columns)}")
     sel = table[column].sort_values(ascending=False).head(top)[::-1]

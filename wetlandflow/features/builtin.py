@@ -13,10 +13,10 @@ import xarray as xr
 
 from .._provenance import parameters_of
 from ..errors import ProjectFileError
-
+from ..inputs.layers import FeatureInputs
 from . import mrvbf as mrvbf_module
 from . import optical, sar, terrain, water
-from .registry import FeatureInputs, feature
+from .registry import feature
 
 
 # -- shared intermediates -------------------------------------------------------------------

@@ -4,8 +4,8 @@ A reflectance stack is an ``xr.DataArray`` with dims ``("time", "band", "y", "x"
 float32 surface reflectance (already scaled, NaN where masked) and a ``band``
 coordinate of portable names (see :data:`wetlandflow.features.optical.BANDS`).
 :func:`seasonal_composite` stays lazy on dask input; the plausibility checks
-reduce each scene to a few numbers and so compute.  :func:`season_mask` (dates
-inside a month-day window) is shared with the SAR features.
+reduce each scene to a few numbers and so compute.  :func:`~wetlandflow.inputs.seasons.season_mask`
+(dates inside a month-day window) lives with the inputs, which select scenes by season too.
 """
 
 from __future__ import annotations
@@ -19,6 +19,7 @@ import xarray as xr
 
 from .._provenance import with_attrs
 from ..errors import DataQualityError
+from ..inputs.seasons import season_mask
 from ._kernels import nanmedian_time
 
 _OFFSET_HINT = (
@@ -31,31 +32,6 @@ _OFFSET_HINT = (
 # ---------------------------------------------------------------------------
 # Seasonal composites
 # ---------------------------------------------------------------------------
-
-
-def _month_day(text: str) -> int:
-    """'MM-DD' -> MM * 100 + DD, validated."""
-    try:
-        month, day = (int(p) for p in text.split("-"))
-    except (ValueError, AttributeError):
-        month = day = -1
-    if not (1 <= month <= 12 and 1 <= day <= 31):
-        raise ValueError(f"season bounds must be 'MM-DD' strings such as '04-01', received {text!r}")
-    return month * 100 + day
-
-
-def season_mask(times: xr.DataArray | np.ndarray, start: str, end: str) -> np.ndarray:
-    """Boolean mask of the dates whose month-day lies in ``[start, end]`` (inclusive).
-
-    A window whose start is later than its end wraps over the new year
-    (``("12-01", "02-28")`` is winter).
-    """
-    t = np.asarray(times, dtype="datetime64[D]")
-    months = t.astype("datetime64[M]").astype(int) % 12 + 1
-    days = (t - t.astype("datetime64[M]")).astype(int) + 1
-    md = months * 100 + days
-    lo, hi = _month_day(start), _month_day(end)
-    return (md >= lo) & (md <= hi) if lo <= hi else (md >= lo) | (md <= hi)
 
 
 def _require_stack(stack: xr.DataArray) -> None:

@@ -16,8 +16,9 @@ import pandas as pd
 import xarray as xr
 
 from ..errors import ProjectFileError
-from ..grid import attach, require_match
-from .registry import FeatureDef, FeatureInputs, resolve_selection
+from ..inputs.grid import attach, require_match
+from ..inputs.layers import FeatureInputs
+from .registry import FeatureDef, resolve_selection
 
 REQUIRED_ATTRS = ("long_name", "units", "domain", "reference", "parameters")
 
@@ -78,7 +79,7 @@ def build_cube(inputs: FeatureInputs, select: tuple[str, ...] | list[str],
 
 def save_cube(cube: xr.Dataset, path: str | Path, *, chunk: int = 512) -> xr.Dataset:
     """Write the cube to Zarr atomically and return it reopened lazily from disk."""
-    from ..io import atomic_path
+    from ..inputs.io import atomic_path
 
     cube = cube.chunk({"y": chunk, "x": chunk})
     for v in cube.data_vars.values():

@@ -26,12 +26,12 @@ import xarray as xr
 
 from .._provenance import with_attrs
 from ..errors import DataQualityError, GridMismatchError
+from ..inputs.seasons import season_mask  # noqa: F401  (re-exported)
 from ._kernels import quiet_call
 from .composite import (  # noqa: F401  (re-exported: the optical module's public API before the split)
     PLAUSIBILITY_LIMITS,
     check_reflectance,
     reflectance_plausibility,
-    season_mask,
     seasonal_composite,
 )
 

@@ -17,36 +17,16 @@ from __future__ import annotations
 
 import inspect
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import xarray as xr
 
 from .._provenance import DOMAINS
 from ..errors import ProjectFileError
-from ..grid import Grid
+from ..inputs.layers import FeatureInputs  # noqa: F401  (re-exported: feature functions take it)
 
 NEEDS = ("composite", "optical", "sar", "dem", "aoi")
-
-
-@dataclass
-class FeatureInputs:
-    """Aligned inputs of a run, on one grid, plus a cache for shared intermediates."""
-
-    grid: Grid
-    optical: xr.DataArray | None = None  # (time, band, y, x) reflectance
-    composite: xr.Dataset | None = None  # reflectance (season, band, y, x), valid_count (season, y, x)
-    sar: xr.DataArray | None = None  # (time, pol, y, x) linear power
-    dem: xr.DataArray | None = None  # (y, x) elevation in metres
-    aoi: xr.DataArray | None = None  # (y, x) bool
-    seasons: dict[str, tuple[str, str]] = field(default_factory=dict)  # name -> (month-day, month-day)
-    cache: dict[str, Any] = field(default_factory=dict)
-
-    def cached(self, key: str, make: Callable[[], Any]) -> Any:
-        """Compute an intermediate once per run (e.g. the filled DEM, the flow accumulation)."""
-        if key not in self.cache:
-            self.cache[key] = make()
-        return self.cache[key]
 
 
 @dataclass(frozen=True)
@@ -88,7 +68,6 @@ def feature(name: str, *, domain: str, needs: tuple[str, ...], replace: bool = F
 
 def resolve_selection(select: tuple[str, ...] | list[str]) -> list[FeatureDef]:
     """Feature definitions for names and/or whole domains, in registry order, without duplicates."""
-    _load_builtins()
     chosen: list[str] = []
     for item in select:
         if item in DOMAINS:
@@ -109,12 +88,7 @@ def registry_table() -> Any:
     """The registry as a DataFrame (name, domain, needs, description, default parameters)."""
     import pandas as pd
 
-    _load_builtins()
     return pd.DataFrame(
         [(d.name, d.domain, ", ".join(d.needs), d.description, d.defaults) for d in REGISTRY.values()],
         columns=["name", "domain", "needs", "description", "defaults"],
     )
-
-
-def _load_builtins() -> None:
-    from . import builtin  # noqa: F401  (registers the built-in features on import)

@@ -17,7 +17,6 @@ input.  Open-water masks live in :mod:`.water` and are re-exported here.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from types import MappingProxyType
 from typing import Any
 
 import numpy as np
@@ -25,6 +24,7 @@ import xarray as xr
 
 from .._provenance import with_attrs
 from ..errors import DataQualityError
+from ..inputs.sar_units import SAR_UNIT_LIMITS, UNITS, check_sar_units  # noqa: F401  (re-exported)
 from ._kernels import box_mean_block, half_window, lee_block, nan_order_stats_time, raw_db, run_windowed
 from .optical import safe_ratio, season_mask
 from .water import (  # noqa: F401  (re-exported: the open-water section moved to .water)
@@ -36,9 +36,6 @@ from .water import (  # noqa: F401  (re-exported: the open-water section moved t
     surface_water_frequency,
     water_masks,
 )
-
-UNITS = ("linear", "amplitude", "db")
-
 
 # ---------------------------------------------------------------------------
 # Units
@@ -118,136 +115,6 @@ def to_linear_power(da: xr.DataArray, units: str) -> xr.DataArray:
         domain="sar",
         formula="amplitude ** 2" if units == "amplitude" else "x",
     )
-
-
-# Typical ranges, from memory (not checked in a source): linear power of land
-# and water mostly in (0, 1.5] with a scene median of about 0.01-0.3
-# (-20 to -5 dB); dB mostly negative within about [-35, 5]; amplitude is the
-# square root of power, so its median sits at about 0.1-0.55.
-SAR_UNIT_LIMITS: Mapping[str, float] = MappingProxyType(
-    {
-        "negative_share_db": 0.5,
-        "positive_share_linear": 0.99,
-        "linear_median_max": 0.5,
-        "amplitude_median_min": 0.03,
-        "db_median_min": -35.0,
-        "db_median_max": 5.0,
-        "power_max": 1.5,
-        "large_share_max": 0.05,
-    }
-)
-
-
-def _unit_stats(da: xr.DataArray, max_pixels: int, lim: Mapping[str, float]) -> dict[str, float]:
-    """Summary of the finite values on a strided subsample (computes)."""
-    step = 1
-    if "y" in da.dims and "x" in da.dims:
-        step = max(1, int(np.ceil(np.sqrt(da.size / max_pixels))))
-        da = da.isel(y=slice(None, None, step), x=slice(None, None, step))
-    v = np.asarray(da.values, dtype=np.float64).ravel()
-    v = v[np.isfinite(v)]
-    if v.size == 0:
-        return {"n_valid": 0}
-    return {
-        "n_valid": int(v.size),
-        "median": float(np.median(v)),
-        "negative_share": float(np.mean(v < 0)),
-        "positive_share": float(np.mean(v > 0)),
-        "large_share": float(np.mean(v > lim["power_max"])),
-    }
-
-
-def _likely_units(s: Mapping[str, float], lim: Mapping[str, float]) -> str:
-    if s["negative_share"] > lim["negative_share_db"]:
-        return "db" if lim["db_median_min"] <= s["median"] <= lim["db_median_max"] else "unknown"
-    if s["large_share"] > lim["large_share_max"]:
-        return "unscaled"
-    if s["median"] > lim["linear_median_max"]:
-        return "amplitude"
-    if s["median"] < lim["amplitude_median_min"]:
-        return "linear"
-    return "linear or amplitude"
-
-
-def check_sar_units(
-    da: xr.DataArray,
-    declared: str,
-    *,
-    name: str | None = None,
-    max_pixels: int = 1_000_000,
-    limits: Mapping[str, float] | None = None,
-) -> dict[str, Any]:
-    """Check that backscatter values look like the units they are declared in.
-
-    Computes on a strided subsample.  Linear power is mostly in (0, 1.5] with
-    a median of about 0.01-0.3; dB values are mostly negative within about
-    [-35, 5]; amplitude is ``sqrt(power)`` (ranges from memory, see
-    :data:`SAR_UNIT_LIMITS`).
-
-    Parameters
-    ----------
-    da : xarray.DataArray
-        Backscatter (a stack or one image).
-    declared : {"linear", "amplitude", "db"}
-        The units the data claim to be in (the ``units`` key of ``[[sar]]``).
-    name : str, optional
-        Label of the data in messages (e.g. the file name).
-    max_pixels : int
-        Pixels per image sampled.
-    limits : mapping, optional
-        Overrides for :data:`SAR_UNIT_LIMITS`.
-
-    Returns
-    -------
-    dict
-        The summary statistics and ``likely_units``.
-
-    Raises
-    ------
-    DataQualityError
-        If the values contradict ``declared``; the message names the likely units and the fix.
-    """
-    if declared not in UNITS:
-        raise ValueError(f"declared must be one of {UNITS}, received {declared!r}")
-    lim = {**SAR_UNIT_LIMITS, **(limits or {})}
-    stats = _unit_stats(da, max_pixels, lim)
-    what = f"SAR data {name}" if name else "SAR data"
-    if stats["n_valid"] == 0:
-        raise DataQualityError(
-            f"{what} (declared {declared!r}) hold no finite value; check nodata and the file."
-        )
-    stats["likely_units"] = likely = _likely_units(stats, lim)
-    consistent = {
-        "db": likely == "db",
-        "linear": likely in ("linear", "linear or amplitude"),
-        "amplitude": likely in ("amplitude", "linear or amplitude"),
-    }[declared]
-    if not consistent:
-        raise DataQualityError(_units_message(what, declared, stats))
-    return stats
-
-
-def _units_message(what: str, declared: str, s: Mapping[str, Any]) -> str:
-    seen = (
-        f"received values with median {s['median']:.4g}, {s['negative_share']:.0%} negative and "
-        f"{s['large_share']:.0%} above 1.5"
-    )
-    expected = {
-        "linear": "linear power is positive with a median of about 0.01-0.3",
-        "amplitude": "amplitude is positive with a median of about 0.1-0.55",
-        "db": "dB values are mostly negative, median within about -35 to 5",
-    }[declared]
-    likely = s["likely_units"]
-    if likely == "unscaled":
-        fix = "the values look like unscaled digital numbers: calibrate them to backscatter before use"
-    elif likely == "unknown":
-        fix = "the values fit none of the units: check the file, its scale and its nodata value"
-    else:
-        fix = (
-            f"they look like {likely!r}: set units = \"{likely.split()[0]}\" in the [[sar]] tables of the "
-            "project file"
-        )
-    return f"{what} declared units = {declared!r}, {seen}; {expected}. Likely mislabelled: {fix}."
 
 
 # ---------------------------------------------------------------------------

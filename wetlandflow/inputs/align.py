@@ -34,7 +34,7 @@ from rasterio.vrt import WarpedVRT
 from rasterio.warp import transform_bounds
 from rasterio.windows import Window
 
-from .errors import AlignmentError, InputFileError
+from ..errors import AlignmentError, InputFileError
 from .grid import Grid, attach, require_match
 
 KINDS = ("reflectance", "sar_power", "elevation", "categorical")

@@ -15,7 +15,7 @@ import xarray as xr
 from affine import Affine
 from pyproj import CRS
 
-from .errors import AlignmentError, GridMismatchError
+from ..errors import AlignmentError, GridMismatchError
 
 
 def _as_crs(crs: object) -> CRS:
@@ -203,7 +203,7 @@ def require_match(obj: xr.DataArray | xr.Dataset, grid: Grid, *, name: str | Non
     if obj.sizes.get("y") != grid.height or obj.sizes.get("x") != grid.width:
         raise GridMismatchError(
             f"{label!s}: shape (y={obj.sizes.get('y')}, x={obj.sizes.get('x')}) differs from the grid's "
-            f"(y={grid.height}, x={grid.width}); align it with wetlandflow.align.align_to_grid first"
+            f"(y={grid.height}, x={grid.width}); align it with wetlandflow.inputs.align.align_to_grid first"
         )
     x, y = grid.xy_coords()
     res = grid.resolution

@@ -20,7 +20,7 @@ from typing import Any
 
 import numpy as np
 
-from .errors import InputFileError, OutputError
+from ..errors import InputFileError, OutputError
 
 
 def sha256_file(path: str | Path, *, chunk: int = 1 << 20) -> str:

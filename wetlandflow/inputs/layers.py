@@ -1,7 +1,7 @@
 """A project's inputs, inspected and aligned onto its reference grid.
 
 :func:`project_grid` derives the grid from the AOI and pixel size,
-:func:`load_inputs` opens every layer lazily on it (with reflectance scaling,
+:func:`load_inputs` opens every layer lazily on it into a :class:`FeatureInputs` (with reflectance scaling,
 quality masks, SAR scale and DEM units handled), and :func:`input_inventory`
 is the table that ``wetlandflow check`` prints.
 """
@@ -10,12 +10,16 @@ from __future__ import annotations
 
 import math
 import warnings
+from collections.abc import Callable
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
 import xarray as xr
 
+from ..errors import AlignmentError, DataQualityError, InputFileError, ProjectFileError
 from .align import (
     aoi_mask,
     aoi_on_grid,
@@ -25,8 +29,6 @@ from .align import (
     sample_windows,
     values_on_coarse_grid,
 )
-from .errors import AlignmentError, DataQualityError, InputFileError, ProjectFileError
-from .features.registry import FeatureInputs
 from .grid import Grid, attach, require_projected
 from .io import read_vector
 from .project import OPTICAL_BANDS, Project
@@ -36,6 +38,26 @@ SAR_POLARISATIONS = ("VV", "VH", "HH", "HV")
 _METRE_NAMES = {"m", "metre", "meter", "metres", "meters"}
 _FOOT_NAMES = {"ft", "foot", "feet", "us survey foot", "us_survey_foot", "ftus", "foot_us", "us-ft",
                "international foot"}
+
+
+@dataclass
+class FeatureInputs:
+    """Aligned inputs of a run, on one grid, plus a cache for shared intermediates."""
+
+    grid: Grid
+    optical: xr.DataArray | None = None  # (time, band, y, x) reflectance
+    composite: xr.Dataset | None = None  # reflectance (season, band, y, x), valid_count (season, y, x)
+    sar: xr.DataArray | None = None  # (time, pol, y, x) linear power
+    dem: xr.DataArray | None = None  # (y, x) elevation in metres
+    aoi: xr.DataArray | None = None  # (y, x) bool
+    seasons: dict[str, tuple[str, str]] = field(default_factory=dict)  # name -> (month-day, month-day)
+    cache: dict[str, Any] = field(default_factory=dict)
+
+    def cached(self, key: str, make: Callable[[], Any]) -> Any:
+        """Compute an intermediate once per run (e.g. the filled DEM, the flow accumulation)."""
+        if key not in self.cache:
+            self.cache[key] = make()
+        return self.cache[key]
 
 
 class InputCoverageWarning(UserWarning):
@@ -147,7 +169,7 @@ def _to_linear_power(da: xr.DataArray, units: str) -> xr.DataArray:
 def check_sar_file_units(path: str | Path, declared: str, *, nodata: float | None, key: str) -> dict | None:
     """Check the values in a SAR file against the units the project file declares, before any conversion.
 
-    Reads a few small windows (:func:`~wetlandflow.align.sample_windows`), so
+    Reads a few small windows (:func:`~wetlandflow.inputs.align.sample_windows`), so
     it is cheap whatever the file's size.  Checking the raw values matters:
     once dB values have been converted as if they were linear (or the
     reverse), the result looks like yet another unit and the advice would be
@@ -159,7 +181,7 @@ def check_sar_file_units(path: str | Path, declared: str, *, nodata: float | Non
     DataQualityError
         Naming the key (``sar[3].units``), the file, what the values look like and the fix.
     """
-    from .features.sar import check_sar_units
+    from .sar_units import check_sar_units
 
     values = sample_windows(path, nodata=nodata)
     if not np.isfinite(values).any():
@@ -308,7 +330,7 @@ def check_observations(project: Project, grid: Grid, aoi, *, max_side: int = 256
     DataQualityError
         Naming the season key, its scenes and the fixes.
     """
-    from .features.composite import season_mask
+    from .seasons import season_mask
 
     coarse = grid.coarsen(max(1, math.ceil(max(grid.width, grid.height) / max_side)))
     inside = aoi_on_grid(aoi, coarse)

@@ -15,7 +15,7 @@ The estimates are upper bounds computed from the grid and the project
 
 Examples
 --------
->>> from wetlandflow.grid import Grid
+>>> from wetlandflow.inputs.grid import Grid
 >>> g = Grid.from_bbox((0, 0, 10_000, 10_000), crs="EPSG:32633", resolution=10)
 >>> round(raster_bytes(g, bands=40) / 2**30, 2)  # 40 float32 layers of 1000 x 1000 pixels, in GiB
 0.15
@@ -27,7 +27,7 @@ import shutil
 from pathlib import Path
 from typing import Any
 
-from .errors import BudgetError, OutputError
+from ..errors import BudgetError, OutputError
 from .grid import Grid
 from .io import check_writable
 
@@ -68,7 +68,7 @@ def estimate_output_bytes(
 
     Parameters
     ----------
-    project : wetlandflow.project.Project
+    project : wetlandflow.inputs.project.Project
         The resolved project (classes, samples and output options are read).
     grid : Grid
         The run's reference grid.
@@ -163,7 +163,7 @@ def estimate_memory_bytes(project: Any, grid: Grid) -> dict[str, int]:
     MRVBF) on the whole DEM; ``inventory``: the minimum mapping unit and the
     polygons on the class map with the per-class probabilities.  The chunked
     steps (alignment, composites, indices, prediction) are bounded by the chunk
-    size instead (see :func:`wetlandflow.mapping.window_memory_bytes`).
+    size instead (see :func:`wetlandflow.mapping.predict.window_memory_bytes`).
     """
     px = grid.width * grid.height
     k = len(project.classes.names)
@@ -194,7 +194,7 @@ def check_memory(need: dict[str, int], budget_gb: float) -> None:
 def preflight(project: Any, grid: Grid, *, n_features: int, cube_written: bool = False) -> dict[str, Any]:
     """All the checks before the first output is written; returns a record for the manifest.
 
-    The run folder must be writable (:func:`wetlandflow.io.check_writable`), its disk must hold the
+    The run folder must be writable (:func:`wetlandflow.inputs.io.check_writable`), its disk must hold the
     outputs (:func:`check_disk`), and the whole-layer steps must fit ``output.memory_budget_gb``
     (:func:`check_memory`).
     """

@@ -26,7 +26,7 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover
     import tomli as tomllib
 
-from .errors import ProjectFileError
+from ..errors import ProjectFileError
 
 OPTICAL_BANDS = ("blue", "green", "red", "re1", "re2", "re3", "nir", "nir_narrow", "swir1", "swir2")
 SAR_UNITS = ("linear", "amplitude", "db")
@@ -352,12 +352,12 @@ def _check_classes(c: ClassesSection) -> None:
             seen[child] = parent
 
 
-RESERVED_PARENTS = ("top", "leaf")  # level names of the hierarchical model (wetlandflow.hierarchy)
+RESERVED_PARENTS = ("top", "leaf")  # level names of the hierarchical model (wetlandflow.models.hierarchy)
 
 
 def check_model_section(p: Project) -> None:
     """Model keys whose valid values depend on each other or on the class scheme (also called by
-    :func:`wetlandflow.run.make_model`, for a project built without :func:`load_project`)."""
+    :func:`wetlandflow.pipeline.run.make_model`, for a project built without :func:`load_project`)."""
     m = p.model
     if not 0 <= m.gate_threshold < 1:
         raise ProjectFileError(f"gate_threshold must be in [0, 1) (0 = no gate), got {m.gate_threshold}",

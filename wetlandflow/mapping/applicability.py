@@ -45,8 +45,8 @@ import xarray as xr
 from scipy.spatial import cKDTree
 from scipy.spatial.distance import cdist
 
-from ._provenance import with_attrs
-from .errors import DataQualityError, ModelError, ParameterError, ValidationDesignError
+from .._provenance import with_attrs
+from ..errors import DataQualityError, ModelError, ParameterError, ValidationDesignError
 
 AOA_NODATA = 255
 NAN_POLICIES = ("impute_mean", "propagate")
@@ -374,7 +374,7 @@ def share_outside(aoa_ds: xr.Dataset) -> float:
 
 
 def xgb_importance_weights(model, features: list[str]) -> np.ndarray:
-    """Gain importances of a fitted XGBoost :class:`~wetlandflow.models.WetlandClassifier`, in feature order.
+    """Gain importances of a fitted XGBoost :class:`~wetlandflow.models.classifier.WetlandClassifier`, in feature order.
 
     The booster names features ``f0..fN`` when fitted from numpy (as the classifier does); they are mapped
     by index.  A feature never used in a split gets 0.

@@ -25,9 +25,9 @@ from pathlib import Path
 import numpy as np
 from scipy import ndimage
 
-from .errors import GridMismatchError, ParameterError
-from .grid import Grid
-from .io import write_vector
+from ..errors import GridMismatchError, ParameterError
+from ..inputs.grid import Grid
+from ..inputs.io import write_vector
 
 NODATA = 0
 INVENTORY_LAYER = "inventory"

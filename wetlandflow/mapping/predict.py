@@ -19,9 +19,9 @@ import rasterio
 import xarray as xr
 from rasterio.windows import Window
 
-from .grid import Grid
-from .io import atomic_path, write_json
-from .progress import progress_bar
+from ..inputs.grid import Grid
+from ..inputs.io import atomic_path, write_json
+from ..progress import progress_bar
 
 CLASS_NODATA = 0
 
@@ -153,7 +153,7 @@ def predict_map(model, cube: xr.Dataset, features: list[str], grid: Grid, out_di
     Writes ``probability.tif`` (one band per class, band descriptions = class
     names), ``class.tif`` (codes 1..K, 0 = nodata, equal to the per-pixel argmax)
     and ``confidence.tif`` into ``out_dir``; with an ``aoa_model``
-    (:func:`~wetlandflow.applicability.fit_applicability`) also
+    (:func:`~wetlandflow.mapping.applicability.fit_applicability`) also
     ``dissimilarity.tif`` (DI) and ``applicability.tif`` (1 inside the area of
     applicability, 0 outside, 255 no data).
 
@@ -165,7 +165,7 @@ def predict_map(model, cube: xr.Dataset, features: list[str], grid: Grid, out_di
     ``check`` is called before every window (a cancel point: it may raise
     :class:`~wetlandflow.errors.Cancelled`; the windows written stay staged).
     """
-    from .errors import BudgetError
+    from ..errors import BudgetError
 
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)

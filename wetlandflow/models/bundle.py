@@ -1,7 +1,7 @@
 """The model bundle: a fitted classifier saved in its library's own format plus a JSON sidecar, and loaded again.
 
-A flat :class:`~wetlandflow.models.classifier.WetlandClassifier` is one estimator file and ``bundle.json``; a
-:class:`~wetlandflow.models.hierarchy.HierarchicalClassifier` is one flat bundle per level.  This module also
+A flat :class:`~wetlandflow.models.classifier.classifier.WetlandClassifier` is one estimator file and ``bundle.json``; a
+:class:`~wetlandflow.models.classifier.hierarchy.HierarchicalClassifier` is one flat bundle per level.  This module also
 checks that a table's or cube's features match the ones a bundle was trained on.
 """
 
@@ -13,9 +13,9 @@ from typing import Any
 
 import numpy as np
 
-from .errors import ModelError
-from .io import atomic_path, write_json
-from .models import ClassScheme, WetlandClassifier
+from ..errors import ModelError
+from ..inputs.io import atomic_path, write_json
+from .classifier import ClassScheme, WetlandClassifier
 from .hierarchy import HierarchicalClassifier, _Constant
 
 
@@ -24,7 +24,7 @@ def save_bundle(model: Any, folder: str | Path, *, features: list[str], scheme: 
     """Save the model in the estimator library's own format plus a JSON sidecar.
 
     A :class:`WetlandClassifier` gives ``model.ubj`` (XGBoost) or ``model.joblib`` (forest) and
-    ``bundle.json``.  A :class:`~wetlandflow.hierarchy.HierarchicalClassifier` gives one sub-folder per
+    ``bundle.json``.  A :class:`~wetlandflow.models.hierarchy.HierarchicalClassifier` gives one sub-folder per
     fitted level (``level_top/``, ``level_<parent>/``), each a flat bundle of that level's classifier, and a
     ``bundle.json`` (``"structure": "hierarchical"``) that records the tree: leaf classes, parents,
     top-level classes, the priors of every parent's children, the gate threshold, each level's folder and
@@ -141,7 +141,7 @@ def load_bundle(folder: str | Path) -> tuple[Any, dict]:
     sidecar's order), so a DataFrame given to ``predict_proba`` is aligned by
     name; bring a cube or a bare array into that order with
     :func:`align_features` first.  A hierarchical bundle gives a fitted
-    :class:`~wetlandflow.hierarchy.HierarchicalClassifier` whose levels are
+    :class:`~wetlandflow.models.hierarchy.HierarchicalClassifier` whose levels are
     loaded from their sub-folders (it reads its input by position: align a
     DataFrame with :func:`align_features` first).
     """

@@ -6,7 +6,7 @@ on held-out (ideally spatially held-out) predictions and refits a monotone map
 from raw to calibrated probabilities within spatial folds: either as a wrapped
 estimator (:class:`CalibratedWetlandClassifier`) or, on probabilities already
 predicted out of fold, as :class:`ProbabilityCalibrator` (used by
-:mod:`wetlandflow.compare` inside each training fold).
+:mod:`wetlandflow.models.compare` inside each training fold).
 
 Binning convention (all functions): ``n_bins`` equal-width bins on [0, 1],
 closed on the right, ``B_m = ((m-1)/M, m/M]``, with 0 in the first bin, as in
@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 from sklearn.base import BaseEstimator, ClassifierMixin, clone
 
-from .errors import ModelError, ParameterError
+from ..errors import ModelError, ParameterError
 
 __all__ = [
     "CalibratedWetlandClassifier",
@@ -173,7 +173,7 @@ def plot_reliability(table: pd.DataFrame, targets: Any = None) -> Any:
     """
     from matplotlib.figure import Figure
 
-    from .models import PALETTE
+    from .classifier import PALETTE
 
     fig = Figure(figsize=(9, 4), layout="constrained")
     ax, axn = fig.subplots(1, 2, width_ratios=[3, 2])
@@ -377,7 +377,7 @@ class CalibratedWetlandClassifier(ClassifierMixin, BaseEstimator):
         Isotonic regression (Zadrozny & Elkan 2002) needs more held-out samples
         per class than the two-parameter sigmoid (Platt 1999).
     cv : splitter
-        E.g. :class:`~wetlandflow.validation.SpatialBlockKFold` with ``coords``
+        E.g. :class:`~wetlandflow.validation.splitters.SpatialBlockKFold` with ``coords``
         aligned with the ``X`` given to :meth:`fit`.
 
     Notes

@@ -19,7 +19,7 @@ import pandas as pd
 from sklearn.base import BaseEstimator, ClassifierMixin
 from sklearn.utils.class_weight import compute_sample_weight
 
-from .errors import ModelError
+from ..errors import ModelError
 
 # Our own palette: muted, colour-blind-aware hues chosen for this project.
 PALETTE = {

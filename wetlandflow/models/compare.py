@@ -10,11 +10,11 @@ expected calibration error and reliability curves; optionally the
 probabilities are recalibrated (isotonic or sigmoid) inside each training
 fold.  :func:`write_comparison` writes the tables and figures into a folder,
 and :func:`compare_run` does both for a finished run folder (also
-``python -m wetlandflow.compare RUN_DIR``).
+``python -m wetlandflow.models.compare RUN_DIR``).
 
 Feature selection follows Meyer et al. (2018): forward selection scored by
 spatial CV.  With ``selection="nested"`` (the default) it runs inside each
-training fold (:func:`~wetlandflow.selection.forward_selection_within_folds`),
+training fold (:func:`~wetlandflow.models.selection.forward_selection_within_folds`),
 so the after-selection score includes the selection step and is not
 optimistic (Ambroise & McLachlan 2002).  One more selection on all folds gives
 the selection curve and the set written to ``selected_features.txt``.
@@ -53,6 +53,8 @@ import pandas as pd
 from sklearn.metrics import precision_recall_fscore_support
 from sklearn.model_selection import PredefinedSplit
 
+from ..errors import ModelError, ParameterError
+from ..inputs.io import write_figure, write_json, write_table
 from .calibration import (
     ProbabilityCalibrator,
     brier_score,
@@ -61,10 +63,8 @@ from .calibration import (
     plot_reliability_comparison,
     reliability_table,
 )
-from .errors import ModelError, ParameterError
+from .classifier import ClassScheme, WetlandClassifier, canonical_order
 from .hierarchy import HierarchicalClassifier
-from .io import write_figure, write_json, write_table
-from .models import ClassScheme, WetlandClassifier, canonical_order
 from .selection import (
     SelectionResult,
     forward_feature_selection,
@@ -146,7 +146,7 @@ class ComparisonResult:
         return "\n".join(lines + [""] + [f"- {n}" for n in self.notes])
 
     def reliability_tables(self, calibrated: bool = False, n_bins: int = 10) -> dict[str, pd.DataFrame]:
-        """:func:`~wetlandflow.calibration.reliability_table` of every configuration."""
+        """:func:`~wetlandflow.models.calibration.reliability_table` of every configuration."""
         probs = self.calibrated if calibrated else self.oof
         y = self.samples["class"].to_numpy()
         return {k: reliability_table(y, p, self.classes, n_bins=n_bins) for k, p in probs.items()}
@@ -342,7 +342,7 @@ def compare_models(
         Feature columns to use ("all features").
     folds : array-like of int, shape (n_samples,)
         Test-fold id of every sample (a run's ``validation/folds.parquet``),
-        e.g. from :func:`~wetlandflow.validation.assign_folds` with a spatial splitter.
+        e.g. from :func:`~wetlandflow.validation.splitters.assign_folds` with a spatial splitter.
     scheme : ClassScheme
         Class order of the probabilities; its ``parents`` give the
         hierarchical model's top level (e.g. upland, open_water, wetland).
@@ -367,7 +367,7 @@ def compare_models(
         model single-threaded, so the result does not depend on this number.
     seed : int
         Seed of every model (deterministic mode).  Samples are put in
-        :func:`~wetlandflow.models.canonical_order` first, so the result does
+        :func:`~wetlandflow.models.classifier.canonical_order` first, so the result does
         not depend on the row order of the input either.
     quick : bool
         Tiny models and a small selection (tests, smoke runs).
@@ -377,7 +377,7 @@ def compare_models(
     -------
     ComparisonResult
     """
-    from .progress import progress_bar
+    from ..progress import progress_bar
 
     kinds, structures = _choices("kinds", kinds, KINDS), _choices("structures", structures, STRUCTURES)
     _choices("selection", selection, SELECTIONS)
@@ -606,7 +606,7 @@ def compare_run(
     return result
 
 
-def main(argv: Sequence[str] | None = None, *, prog: str = "python -m wetlandflow.compare") -> int:
+def main(argv: Sequence[str] | None = None, *, prog: str = "python -m wetlandflow.models.compare") -> int:
     """Rerun the model comparison of a run folder: ``wetlandflow compare RUN_DIR [options]``."""
     import argparse
 

@@ -2,7 +2,7 @@
 
 Wetland classes that look alike (marsh, swamp, fen, bog) are often easier to
 separate from each other once the model already knows a sample is a wetland.
-:class:`HierarchicalClassifier` fits one :class:`~wetlandflow.models.WetlandClassifier`
+:class:`HierarchicalClassifier` fits one :class:`~wetlandflow.models.classifier.WetlandClassifier`
 over the top level (each parent group is one class, e.g. ``"wetland"``; a class
 under no parent stays itself, e.g. ``"upland"``) and one per parent over that
 parent's children, trained on that parent's samples only (a "local classifier
@@ -25,8 +25,8 @@ import numpy as np
 import pandas as pd
 from sklearn.base import BaseEstimator, ClassifierMixin
 
-from .errors import ModelError
-from .models import WetlandClassifier
+from ..errors import ModelError
+from .classifier import WetlandClassifier
 
 __all__ = ["HierarchicalClassifier"]
 
@@ -88,7 +88,7 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
         Parent group name to its child classes (``{"wetland": ("marsh", "swamp",
         "fen", "bog")}``).  Classes under no parent are top-level classes.
     base_params : dict, optional
-        Keyword arguments for every :class:`~wetlandflow.models.WetlandClassifier`
+        Keyword arguments for every :class:`~wetlandflow.models.classifier.WetlandClassifier`
         (``kind``, ``n_estimators``, ...); ``classes`` is set per level.
     gate_threshold : float, default 0.0
         The gate, in [0, 1).  The second level (a parent's child model) is

@@ -16,7 +16,7 @@ The score of the chosen set is optimistic, because the same folds chose it
 (Ambroise & McLachlan 2002).  :func:`forward_selection_within_folds` runs the
 whole selection inside each training fold (the held-out fold never takes part),
 so that a model refitted on each fold's own selection gives an honest
-after-selection score; :mod:`wetlandflow.compare` uses it.
+after-selection score; :mod:`wetlandflow.models.compare` uses it.
 
 References
 ----------
@@ -46,8 +46,8 @@ from sklearn.base import clone
 from sklearn.metrics import f1_score, make_scorer
 from sklearn.model_selection import PredefinedSplit, cross_val_score
 
-from .errors import ModelError, ParameterError
-from .io import atomic_path, write_json, write_table
+from ..errors import ModelError, ParameterError
+from ..inputs.io import atomic_path, write_json, write_table
 
 __all__ = [
     "SelectionResult",
@@ -252,7 +252,7 @@ def forward_feature_selection(
     groups : array-like of shape (n_samples,) or None
         Plot ids, handed to the splitter and to ``cross_val_score``.
     cv : splitter
-        E.g. :class:`~wetlandflow.validation.SpatialBlockKFold` with ``coords``
+        E.g. :class:`~wetlandflow.validation.splitters.SpatialBlockKFold` with ``coords``
         aligned with ``X``.  Run once; all candidates use its folds.
     scoring : {"accuracy", "f1_macro"}
     min_features : int, default 2
@@ -326,7 +326,7 @@ def forward_selection_within_folds(
         As in :func:`forward_feature_selection`.
     folds : array-like of int, shape (n_samples,)
         Test-fold id per sample (e.g. from
-        :func:`~wetlandflow.validation.assign_folds`); at least 3 folds, so
+        :func:`~wetlandflow.validation.splitters.assign_folds`); at least 3 folds, so
         that each training set still has 2 folds to score candidates on.
     n_jobs : int, default 1
         Folds selected in parallel worker processes (joblib).  The result does

@@ -19,17 +19,18 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from . import CAUTION, __version__
-from .errors import Cancelled, ProjectFileError
-from .features.cube import build_cube, open_cube, save_cube, season_coverage
-from .hierarchy import HierarchicalClassifier
-from .inputs import load_inputs, project_grid, read_aoi
-from .io import check_writable, sha256_file, write_figure, write_json, write_table
-from .mapping import AOA_LAYERS, LAYERS, class_areas, code_counts, predict_map
-from .models import ClassScheme, WetlandClassifier, data_hash, load_bundle, save_bundle
-from .preflight import preflight
-from .project import Project, check_model_section, config_hash, load_project, portable_dict, to_dict
-from .samples import (
+from .. import CAUTION, __version__
+from ..errors import Cancelled, ProjectFileError
+from ..features.cube import build_cube, open_cube, save_cube, season_coverage
+from ..inputs.io import check_writable, sha256_file, write_figure, write_json, write_table
+from ..inputs.layers import load_inputs, project_grid, read_aoi
+from ..inputs.preflight import preflight
+from ..inputs.project import Project, check_model_section, config_hash, load_project, portable_dict, to_dict
+from ..mapping.predict import AOA_LAYERS, LAYERS, class_areas, code_counts, predict_map
+from ..models.bundle import load_bundle, save_bundle
+from ..models.classifier import ClassScheme, WetlandClassifier, data_hash
+from ..models.hierarchy import HierarchicalClassifier
+from ..training.samples import (
     check_training_features,
     class_balance,
     drop_incomplete,
@@ -170,7 +171,7 @@ def make_splitter(project: Project, coords: np.ndarray):
     """The validation design from the project file, as a scikit-learn splitter."""
     from sklearn.model_selection import GroupKFold
 
-    from .validation import SpatialBlockKFold
+    from ..validation.splitters import SpatialBlockKFold
 
     v = project.validation
     if v.design == "blocks":
@@ -178,7 +179,7 @@ def make_splitter(project: Project, coords: np.ndarray):
                                  coords=coords)
     if v.design == "group":
         return GroupKFold(n_splits=v.n_folds)
-    from .validation import random_pixel_kfold
+    from ..validation.splitters import random_pixel_kfold
 
     return random_pixel_kfold(n_splits=v.n_folds, random_state=project.project.seed,
                               allow_random_pixels=v.allow_random_pixels)
@@ -188,7 +189,7 @@ def make_model(project: Project, *, random_state: int | None = None
                ) -> WetlandClassifier | HierarchicalClassifier:
     """The classifier of the project file, seeded with ``project.seed`` (or ``random_state``).
 
-    With ``model.hierarchical = true`` a :class:`~wetlandflow.hierarchy.HierarchicalClassifier` over
+    With ``model.hierarchical = true`` a :class:`~wetlandflow.models.hierarchy.HierarchicalClassifier` over
     ``[classes.parents]``, every level with the same estimator settings.  Class balance comes from
     :func:`training_weights` when plots are capped, and always for a hierarchy (balanced over the leaf
     classes, so that the levels estimate the same leaf priors as a flat model would).
@@ -214,7 +215,7 @@ def make_model(project: Project, *, random_state: int | None = None
 
 def training_weights(project: Project, samples: pd.DataFrame) -> np.ndarray | None:
     """Per-sample weights for a fit: classes balanced (``model.class_weighting``) and no plot above
-    ``model.max_plot_share`` of its class (see :func:`wetlandflow.weights.sample_weights`); ``None``
+    ``model.max_plot_share`` of its class (see :func:`wetlandflow.training.weights.sample_weights`); ``None``
     when the cap is off (the classifier then balances classes itself).
 
     A class with too few plots to meet the cap gets equal plot totals, the most even split possible;
@@ -230,7 +231,7 @@ def training_weights(project: Project, samples: pd.DataFrame) -> np.ndarray | No
     hierarchical_balance = project.model.hierarchical and project.model.class_weighting
     if not share and not hierarchical_balance:
         return None
-    from .weights import sample_weights
+    from ..training.weights import sample_weights
 
     return sample_weights(samples["class"].to_numpy(), samples["plot_id"].to_numpy(),
                           balance_classes=project.model.class_weighting, max_plot_share=share or None,
@@ -285,8 +286,8 @@ def cross_validate(project: Project, samples: pd.DataFrame, features: list[str],
                    progress: bool = True, check: Callable[[], None] | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Out-of-fold class probabilities for every sample, and each sample's test fold
     (``check`` is called before every fold: a cancel point)."""
-    from .progress import progress_bar
-    from .validation import assign_folds, check_folds
+    from ..progress import progress_bar
+    from ..validation.splitters import assign_folds, check_folds
 
     splitter = make_splitter(project, samples[["x", "y"]].to_numpy())
     X = samples[features].to_numpy(np.float32)
@@ -348,7 +349,7 @@ def run_project(project: Project | str | Path, *, progress: bool = True, control
 
     ``control`` is anything with a ``check()`` method that raises
     :class:`~wetlandflow.errors.Cancelled` on request (a notebook's
-    :class:`~wetlandflow.widgets.TaskControl`); it is called before every
+    :class:`~wetlandflow.ui.widgets.TaskControl`); it is called before every
     step, cross-validation fold and prediction window.  The step stopped is
     recorded as ``cancelled`` and the next run resumes from the steps done.
 
@@ -513,7 +514,7 @@ def _samples_step(project: Project, grid, cube, rec: dict[str, Any]) -> pd.DataF
 def _validation_step(project: Project, samples: pd.DataFrame, features: list[str], aoi, grid, vdir: Path,
                      rec: dict[str, Any], progress: bool,
                      check: Callable[[], None] | None) -> tuple[dict[str, Any], np.ndarray]:
-    from .accuracy import accuracy_measures, error_matrix
+    from ..accuracy.estimators import accuracy_measures, error_matrix
 
     oof, folds = cross_validate(project, samples, features, progress=progress, check=check)
     names = list(project.classes.names)
@@ -599,7 +600,12 @@ def prediction_points(aoi, grid, *, n: int, seed: int) -> np.ndarray:
 def write_fold_diagnostics(vdir: Path, samples: pd.DataFrame, folds: np.ndarray, aoi, grid, *,
                            block_size_m: float, seed: int) -> dict[str, Any]:
     """Folds, per-class fold counts, the fold map and the distance ECDFs, into ``validation/``."""
-    from .validation import cv_distance_diagnostics, fold_class_counts, plot_distance_ecdf, plot_folds
+    from ..validation.splitters import (
+        cv_distance_diagnostics,
+        fold_class_counts,
+        plot_distance_ecdf,
+        plot_folds,
+    )
 
     write_table(pd.DataFrame({"plot_id": samples["plot_id"], "x": samples["x"], "y": samples["y"],
                               "fold": folds}), vdir / "folds.parquet")
@@ -630,8 +636,8 @@ def _metrics_dict(measures: dict[str, Any]) -> dict[str, Any]:
 
 def plausibility_checks(project: Project, inputs) -> dict[str, Any]:
     """Reflectance offset/scale and SAR unit checks on a sample of each layer; raise on a likely mislabel."""
-    from .features.optical import check_reflectance
-    from .features.sar import check_sar_units
+    from ..features.optical import check_reflectance
+    from ..inputs.sar_units import check_sar_units
 
     out: dict[str, Any] = {}
     step = max(1, inputs.grid.height // 256)

@@ -1,6 +1,6 @@
 """The later steps of a run, each a composition of library functions that writes its outputs.
 
-:func:`wetlandflow.run.run_project` calls these after the model is fitted:
+:func:`wetlandflow.pipeline.run.run_project` calls these after the model is fitted:
 the area of applicability model, the inventory (minimum mapping unit and
 polygons) and the explanations.  Each returns the small record the manifest
 keeps; the tables and figures go into the run folder.
@@ -17,16 +17,16 @@ import numpy as np
 import pandas as pd
 import rasterio
 
-from .applicability import ApplicabilityModel, fit_applicability, xgb_importance_weights
-from .grid import Grid
-from .io import write_figure, write_table
+from ..inputs.grid import Grid
+from ..inputs.io import write_figure, write_table
+from ..mapping.applicability import ApplicabilityModel, fit_applicability, xgb_importance_weights
 
 
 # -- area of applicability ------------------------------------------------------------------------------------
 def importance_weights(model, features: list[str]) -> np.ndarray:
     """Importance weights for the AOA: gain for XGBoost, impurity decrease for a random forest.
 
-    For a :class:`~wetlandflow.hierarchy.HierarchicalClassifier` the weights combine its levels: each
+    For a :class:`~wetlandflow.models.hierarchy.HierarchicalClassifier` the weights combine its levels: each
     fitted level's importances (gain or impurity decrease, as for a flat model) are divided by their sum,
     so that every level's weights sum to 1 whatever the scale of its trees, and the levels are then
     averaged with weights equal to the number of training rows each level was fitted on (``level_rows_``:
@@ -34,10 +34,10 @@ def importance_weights(model, features: list[str]) -> np.ndarray:
     proportion to how much of the training data it separates, at whichever level.  A parent with a
     single child in training has no model (its priors are its probabilities) and takes no part; a level
     whose importances are all 0 (no split) adds zeros.  Only the ratios matter to the AOA
-    (:func:`~wetlandflow.applicability.fit_applicability`); the result sums to 1.
+    (:func:`~wetlandflow.mapping.applicability.fit_applicability`); the result sums to 1.
     """
-    from .hierarchy import HierarchicalClassifier
-    from .models import WetlandClassifier
+    from ..models.classifier import WetlandClassifier
+    from ..models.hierarchy import HierarchicalClassifier
 
     if isinstance(model, HierarchicalClassifier):
         levels = [("top", model.top_model_)] + [(p, m) for p, m in model.child_models_.items()
@@ -77,7 +77,7 @@ def _read(path: Path) -> np.ndarray:
 
 def _write_class_cog(values: np.ndarray, like: Path, dst: Path) -> Path:
     """Write a class raster with the profile of ``like`` (staged, then COG with mode overviews)."""
-    from .mapping import build_cog
+    from ..mapping.predict import build_cog
 
     stage = dst.with_name(f".{dst.stem}.stage.tif")
     with rasterio.open(like) as src:
@@ -100,7 +100,7 @@ def write_inventory_outputs(maps: dict[str, Path], run_dir: Path, grid: Grid, cl
     record for the manifest, including the check that polygon areas per class sum to the final
     raster's class areas.  Computes in memory (connected components are global).
     """
-    from .inventory import apply_mmu, area_summary, polygonize, write_inventory
+    from ..mapping.inventory import apply_mmu, area_summary, polygonize, write_inventory
 
     cm = _read(maps["class"])[0]
     proba = np.nan_to_num(_read(maps["probability"]), nan=0.0)
@@ -151,10 +151,10 @@ def write_explanations(model, samples: pd.DataFrame, features: list[str], cube, 
     ``stability_seeds - 1`` refits (``refit(seed)`` returns a model refitted, e.g. on a bootstrap of the
     plots, for that seed).
 
-    A :class:`~wetlandflow.hierarchy.HierarchicalClassifier` is explained as a whole for everything per
+    A :class:`~wetlandflow.models.hierarchy.HierarchicalClassifier` is explained as a whole for everything per
     class: the tables, figures, ``drivers.json``, the centre pixel's waterfall and the ranking stability
     use the combined SHAP values of its leaf probabilities
-    (:func:`~wetlandflow.explain.combined_shap_values`: probability scale, a permutation estimate with
+    (:func:`~wetlandflow.explain.attribution.combined_shap_values`: probability scale, a permutation estimate with
     ``n_permutations`` forward-and-backward permutations per row, or exact enumeration for 10 features
     or fewer, against ``n_background`` rows of the subsample, the same rows for every refit), so they
     keep their flat meaning (what drives the probability of each class).  Each level is also explained
@@ -169,7 +169,7 @@ def write_explanations(model, samples: pd.DataFrame, features: list[str], cube, 
     """
     import matplotlib.pyplot as plt
 
-    from .explain import (
+    from ..explain.attribution import (
         cluster_importance,
         combined_shap_values,
         domain_importance,
@@ -178,9 +178,9 @@ def write_explanations(model, samples: pd.DataFrame, features: list[str], cube, 
         shap_values,
         stratified_subsample,
     )
-    from .explain_plots import plot_beeswarm, plot_dependence, plot_domain_importance, plot_importance
-    from .explore import predictor_correlation, redundant_predictors
-    from .hierarchy import HierarchicalClassifier
+    from ..explain.plots import plot_beeswarm, plot_dependence, plot_domain_importance, plot_importance
+    from ..models.hierarchy import HierarchicalClassifier
+    from ..training.explore import predictor_correlation, redundant_predictors
 
     hierarchical = isinstance(model, HierarchicalClassifier)
     cube_attrs = {k: dict(v.attrs) for k, v in cube.data_vars.items()}
@@ -273,7 +273,7 @@ def _ranking_stability(refit: Callable[[int], Any], model, sub: pd.DataFrame, fe
                        final: pd.Series | None = None) -> dict[str, Any]:
     """Spearman's rho between importance rankings of the model and refits with other seeds
     (``final``: the model's overall importance, already computed, so it is not explained twice)."""
-    from .explain import ranking_stability
+    from ..explain.attribution import ranking_stability
 
     seeds = [seed + i for i in range(n_seeds)]
     table = ranking_stability(lambda X, y, s: model if s == seed else refit(s), sub[features],
@@ -316,8 +316,8 @@ def _explanation_maps(model, cube, features: list[str], feature_domains: dict[st
                       by_domain: dict[str, list[dict]], out_dir: Path, window_px: int,
                       base_value) -> tuple[dict, dict]:
     """SHAP maps of each class's leading domain over a window at the grid's centre, and its centre pixel."""
-    from .explain import contribution_map, window_contributions, write_shap_map
-    from .explain_plots import plot_waterfall
+    from ..explain.attribution import contribution_map, window_contributions, write_shap_map
+    from ..explain.plots import plot_waterfall
 
     window, r0, c0, h, w = _centre_window(cube, window_px)
     contrib = window_contributions(model, cube, features, window=window)
@@ -350,8 +350,8 @@ def _hierarchical_maps(model, cube, features: list[str], feature_domains: dict[s
     for the leading domain at that level (the level's own TreeSHAP domain shares, so that the map shows
     the domain that matters most to what it maps).
     """
-    from .explain import contribution_map, model_levels, window_contributions, write_shap_map
-    from .explain_plots import plot_waterfall
+    from ..explain.attribution import contribution_map, model_levels, window_contributions, write_shap_map
+    from ..explain.plots import plot_waterfall
 
     window, r0, c0, h, w = _centre_window(cube, window_px)
     levels = model_levels(model)

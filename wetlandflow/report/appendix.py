@@ -17,17 +17,16 @@ from __future__ import annotations
 
 from pathlib import Path
 
-
-from .io import atomic_path
-from .report import RunFolder
+from ..inputs.io import atomic_path
+from .run_folder import RunFolder
 
 REPORT_DIR = "report"
 
 
 # -- building and writing -----------------------------------------------------------------------------------------
 def build_report(run_dir: str | Path) -> list:
-    """The report's sections (:class:`wetlandflow.report_text.Section`), built from the run folder alone."""
-    from .report_text import build_sections
+    """The report's sections (:class:`wetlandflow.report.text.Section`), built from the run folder alone."""
+    from .text import build_sections
 
     return build_sections(RunFolder(run_dir))
 
@@ -57,8 +56,8 @@ def write_report(run_dir: str | Path, *, out_dir: str | Path | None = None) -> d
     Every file is written to a temporary name and renamed (the figures folder as a whole), so an
     interrupted report never leaves a half-written file under a final name.
     """
-    from .report_templates import render_html, render_markdown
-    from .report_text import build_sections
+    from .templates import render_html, render_markdown
+    from .text import build_sections
 
     run = RunFolder(run_dir)
     sections = build_sections(run)
@@ -79,6 +78,6 @@ def write_report(run_dir: str | Path, *, out_dir: str | Path | None = None) -> d
 
 
 def _figures(sections: list) -> list:
-    from .report_text import Figure
+    from .text import Figure
 
     return [b for s in sections for b in s.blocks if isinstance(b, Figure)]

@@ -1,6 +1,6 @@
 """The report's map figures, drawn from the COG overviews of a run folder (never the full-resolution rasters).
 
-Each ``*_png`` function takes a :class:`~wetlandflow.report.run_folder.RunFolder` and returns PNG bytes, or
+Each ``*_png`` function takes a :class:`~wetlandflow.report.appendix.run_folder.RunFolder` and returns PNG bytes, or
 ``None`` when the run has no such output; the text builder places them, the appendix writer saves them.
 """
 
@@ -11,8 +11,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import InputFileError
-from .report import RunFolder
+from ..errors import InputFileError
+from .run_folder import RunFolder
 
 PREVIEW_MAX_SIDE = 1024
 
@@ -50,7 +50,7 @@ def read_preview(path: str | Path, band: int = 1, *, max_side: int = PREVIEW_MAX
         if max(full) > max_side:
             raise InputFileError(f"the raster is {full[1]} x {full[0]} pixels and has no overviews; a preview "
                                  "would need the full resolution. Rebuild it as a COG with overviews "
-                                 "(wetlandflow.mapping.build_cog)", path=str(path))
+                                 "(wetlandflow.mapping.predict.build_cog)", path=str(path))
         level = None
     else:
         fitting = [i for i, f in enumerate(factors) if max(full) / f <= max_side]
@@ -89,7 +89,7 @@ def class_map_png(run: RunFolder, rel: str = "maps/class_final.tif") -> bytes | 
     from matplotlib.colors import ListedColormap
     from matplotlib.patches import Patch
 
-    from .models import ClassScheme
+    from ..models.classifier import ClassScheme
 
     if not run.exists(rel) or not run.class_names:
         return None
@@ -133,7 +133,7 @@ def applicability_png(run: RunFolder) -> bytes | None:
 
 def plots_png(run: RunFolder) -> bytes | None:
     """Map of the training plots (centre of each plot's sampled pixels) by class, over the mapped area."""
-    from .models import ClassScheme
+    from ..models.classifier import ClassScheme
 
     s = run.samples
     if s is None or s.empty:

@@ -246,7 +246,7 @@ class Citations:
 
     def add_method(self, method: str, used_for: str) -> list[Cited]:
         if method not in METHODS:
-            raise KeyError(f"method {method!r} has no entry in wetlandflow.references.METHODS; "
+            raise KeyError(f"method {method!r} has no entry in wetlandflow.report.references.METHODS; "
                            f"known: {sorted(METHODS)}")
         return [self.add(BIBLIOGRAPHY[k], used_for) for k in METHODS[method]]
 

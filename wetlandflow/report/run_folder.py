@@ -12,8 +12,8 @@ from typing import Any
 
 import pandas as pd
 
-from .errors import InputFileError
-from .features.cube import season_variable
+from ..errors import InputFileError
+from ..features.cube import season_variable
 from .references import Citations
 
 

@@ -14,7 +14,7 @@ from collections.abc import Sequence
 
 import pandas as pd
 
-from .report_text import Bullets, Callout, Code, Figure, Paragraph, Section, Table
+from .text import Bullets, Callout, Code, Figure, Paragraph, Section, Table
 
 STYLE = """
 body { font-family: Georgia, 'Times New Roman', serif; max-width: 60rem; margin: 2rem auto; padding: 0 1rem;

@@ -1,11 +1,11 @@
 """The text of the methods report, generated from a run folder's manifest and results.
 
-Each ``section_*`` function reads a :class:`wetlandflow.report.RunFolder` and
+Each ``section_*`` function reads a :class:`wetlandflow.report.run_folder.RunFolder` and
 returns a :class:`Section` of blocks (paragraphs, tables, figures).  The text
 states what the recorded numbers show and no more: the cross-validated
 accuracy serves model choice, and only a labelled probability sample gives
 the inventory's accuracy and areas.  Sources are cited through the run
-folder's :class:`~wetlandflow.references.Citations`, so the references section
+folder's :class:`~wetlandflow.report.references.Citations`, so the references section
 lists exactly what the sections cited.
 """
 
@@ -18,11 +18,11 @@ from typing import TYPE_CHECKING, Any
 
 import pandas as pd
 
-from . import CAUTION, __version__
+from .. import CAUTION, __version__
 from .references import cite_features
 
 if TYPE_CHECKING:
-    from .report import RunFolder
+    from .run_folder import RunFolder
 
 SECTIONS = (
     "Caution",
@@ -314,7 +314,7 @@ def section_training(run: RunFolder) -> Section:
             f"\"{cfg.get('missing', '?')}\": " + ("the model routes missing values natively, the same way when "
                                                   "mapping." if cfg.get("missing") == "keep" else
                                                   "pixels with any missing feature were dropped.")))
-    from .report import plots_png
+    from .figures import plots_png
 
     _figure(blocks, "training_plots.png", plots_png(run), "Training plots by class over the mapped area.")
     return Section("Training data", blocks)
@@ -500,7 +500,7 @@ def _area_accuracy_tables(run: RunFolder, s: dict[str, Any]) -> list:
 
 
 def section_maps(run: RunFolder) -> Section:
-    from .report import class_map_png, confidence_png
+    from .figures import class_map_png, confidence_png
 
     blocks: list = []
     a = run.areas
@@ -566,7 +566,7 @@ def section_applicability(run: RunFolder) -> Section:
     rec = run.step("mapping")
     if "share_outside_applicability" not in rec:
         return Section("Area of applicability", [Paragraph("The area of applicability was not computed.")])
-    from .report import applicability_png
+    from .figures import applicability_png
 
     share = rec["share_outside_applicability"]
     blocks: list = [Paragraph(

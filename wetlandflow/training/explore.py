@@ -44,7 +44,7 @@ from numpy.typing import ArrayLike
 from scipy.cluster.hierarchy import dendrogram, fcluster, linkage
 from scipy.spatial.distance import squareform
 
-from .errors import SamplesError
+from ..errors import SamplesError
 
 __all__ = [
     "RedundancyResult",

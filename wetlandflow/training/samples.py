@@ -16,9 +16,9 @@ import pandas as pd
 import xarray as xr
 from rasterio.features import rasterize
 
-from .errors import SamplesError
-from .grid import Grid
-from .io import read_vector
+from ..errors import SamplesError
+from ..inputs.grid import Grid
+from ..inputs.io import read_vector
 
 
 def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...], grid: Grid, aoi=None):

@@ -26,7 +26,7 @@ classes are found more often (higher producer's accuracy) at the cost of more
 false alarms, and the map's pixel counts overstate rare classes.  Neither the
 mapped shares nor the mean predicted probabilities are area estimates.  Class
 areas and their confidence intervals come from the error-adjusted estimators
-of an independent probability sample (:mod:`wetlandflow.accuracy`; Olofsson
+of an independent probability sample (:mod:`wetlandflow.accuracy.estimators`; Olofsson
 et al. 2014).  :func:`adjust_priors` moves probabilities to other priors when
 they are known, e.g. for a calibrated probability of a class at a site.
 
@@ -54,7 +54,7 @@ import numpy as np
 import pandas as pd
 from numpy.typing import ArrayLike
 
-from .errors import ParameterError, SamplesError
+from ..errors import ParameterError, SamplesError
 
 __all__ = ["PlotCapWarning", "adjust_priors", "sample_weights", "weight_summary", "weighted_priors"]
 
@@ -196,8 +196,8 @@ def sample_weights(
     ``compute_sample_weight("balanced", y)``, ``n / (K n_c)``.
 
     Weighting changes the class priors the model learns (module notes): use
-    the probability-sample estimators of :mod:`wetlandflow.accuracy`, not
-    the map's pixel counts, for class areas.  :class:`~wetlandflow.models.WetlandClassifier`
+    the probability-sample estimators of :mod:`wetlandflow.accuracy.estimators`, not
+    the map's pixel counts, for class areas.  :class:`~wetlandflow.models.classifier.WetlandClassifier`
     with ``class_weighting=True`` multiplies any ``sample_weight`` by balanced
     class weights again, which unbalances the totals set here; fit it with
     ``class_weighting=False`` when passing these weights.

@@ -10,13 +10,13 @@ import argparse
 import sys
 from pathlib import Path
 
-from . import CAUTION, __version__
-from .errors import WetlandflowError
+from .. import CAUTION, __version__
+from ..errors import WetlandflowError
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
-    from .inputs import input_inventory, project_grid
-    from .project import load_project
+    from ..inputs.layers import input_inventory, project_grid
+    from ..inputs.project import load_project
 
     project = load_project(args.project)
     grid = project_grid(project)
@@ -33,7 +33,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
-    from .run import run_project
+    from ..pipeline.run import run_project
 
     result = run_project(args.project, progress=not args.quiet)
     print(result.summary())
@@ -41,8 +41,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from .demo import make_demo
-    from .run import run_project
+    from ..demo.landscape import make_demo
+    from ..pipeline.run import run_project
 
     out = Path(args.dir)
     print(f"generating the demo landscape ({args.size} x {args.size} pixels) in {out} ...")
@@ -54,9 +54,9 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     print(result.summary())
     if args.no_assess:
         return 0
-    from .assessment import class_codes, design_sample, label_from_reference
-    from .demo import load_truth
-    from .project import load_project
+    from ..accuracy.assessment import class_codes, design_sample, label_from_reference
+    from ..demo.landscape import load_truth
+    from ..inputs.project import load_project
 
     project = load_project(project_file)
     sample = design_sample(project, overwrite=True)
@@ -69,8 +69,8 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
 
 def _cmd_sample(args: argparse.Namespace) -> int:
-    from .assessment import design_sample, sample_design_record
-    from .project import load_project
+    from ..accuracy.assessment import design_sample, sample_design_record
+    from ..inputs.project import load_project
 
     project = load_project(args.project)
     path = design_sample(project, target_se=args.target_se, allocation=args.allocation,
@@ -85,7 +85,7 @@ def _cmd_sample(args: argparse.Namespace) -> int:
 
 
 def _cmd_assess(args: argparse.Namespace) -> int:
-    from .project import load_project
+    from ..inputs.project import load_project
 
     project = load_project(args.project)
     print(format_assessment(project, args.labelled, design=args.design))
@@ -94,7 +94,7 @@ def _cmd_assess(args: argparse.Namespace) -> int:
 
 def format_assessment(project, labelled, *, design: str = "stratified") -> str:
     """Assess a labelled sample and format the error-adjusted areas and accuracy as text."""
-    from .assessment import assess
+    from ..accuracy.assessment import assess
 
     res = assess(project, labelled, design=design)
     table, acc = res["area_table"], res["accuracy_table"].set_index("class")
@@ -111,7 +111,7 @@ def format_assessment(project, labelled, *, design: str = "stratified") -> str:
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
-    from .report import write_report
+    from ..report.appendix import write_report
 
     paths = write_report(args.run_dir)
     print(f"report: {paths['html']} and {paths['markdown']}\nCAUTION: {CAUTION}")
@@ -119,7 +119,7 @@ def _cmd_report(args: argparse.Namespace) -> int:
 
 
 def _cmd_compare(args: argparse.Namespace) -> int:
-    from .compare import main as compare_main  # imported here: it loads scikit-learn and XGBoost
+    from ..models.compare import main as compare_main  # imported here: it loads scikit-learn and XGBoost
 
     return compare_main(args.rest, prog="wetlandflow compare")
 
@@ -200,7 +200,7 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args, rest = parser.parse_known_args(argv)
-    if rest and args.command != "compare":  # only compare passes its options on (to wetlandflow.compare)
+    if rest and args.command != "compare":  # only compare passes its options on (to wetlandflow.models.compare)
         parser.error(f"unrecognized arguments: {' '.join(rest)}")
     args.rest = rest
     try:

@@ -6,11 +6,11 @@ overview that still has at least ``max_px`` pixels on its longer side (GDAL's
 ``OVERVIEW_LEVEL``) and decimates it to at most ``max_px``, so a figure of a
 map of any size costs a screen's worth of pixels.  Inputs and the feature cube
 have no overviews of their own: :func:`preview_grid` is a coarse copy of the
-run's grid, and the library's own alignment (:func:`~wetlandflow.inputs.load_inputs`
+run's grid, and the library's own alignment (:func:`~wetlandflow.inputs.layers.load_inputs`
 on that grid, which averages reflectance and takes the mode of categorical
 layers) or a block mean of the cube brings them to screen size.
 
-Class maps use the class scheme's own palette (:attr:`~wetlandflow.models.ClassScheme.colours`)
+Class maps use the class scheme's own palette (:attr:`~wetlandflow.models.classifier.ClassScheme.colours`)
 with a legend; probabilities get a colour bar; map figures carry a scale bar
 and a north arrow (every grid is north-up).  Figures are
 :class:`matplotlib.figure.Figure` objects, never shown by this module; a notebook
@@ -31,9 +31,9 @@ import xarray as xr
 from affine import Affine
 from rasterio.enums import Resampling
 
-from .errors import OutputError, ParameterError
-from .grid import Grid
-from .models import ClassScheme
+from ..errors import OutputError, ParameterError
+from ..inputs.grid import Grid
+from ..models.classifier import ClassScheme
 
 DEFAULT_MAX_PX = 600
 PROBABILITY_CMAP = "YlGnBu"
@@ -450,8 +450,8 @@ def input_footprints(project: Any) -> Any:
     import geopandas as gpd
     from shapely.geometry import box
 
-    from .align import inspect_raster
-    from .inputs import project_grid
+    from ..inputs.align import inspect_raster
+    from ..inputs.layers import project_grid
 
     grid = project_grid(project)
     layers = (
@@ -475,7 +475,7 @@ def plot_footprints(project: Any, *, ax: Any = None) -> Any:
     """Input footprints (outlines by kind) over the AOI, in the grid CRS, with the grid's extent."""
     from matplotlib.lines import Line2D
 
-    from .inputs import project_grid, read_aoi
+    from ..inputs.layers import project_grid, read_aoi
 
     grid = project_grid(project)
     fig, ax = _map_axes(ax, (6.5, 5.5))
@@ -501,7 +501,7 @@ def plot_footprints(project: Any, *, ax: Any = None) -> Any:
 def preview_inputs(project: Any, *, max_px: int = 200) -> Any:
     """Every input aligned onto a coarse copy of the grid (:func:`preview_grid`) by the library's own
     alignment: a :class:`~wetlandflow.features.registry.FeatureInputs` at screen resolution."""
-    from .inputs import load_inputs, project_grid
+    from ..inputs.layers import load_inputs, project_grid
 
     return load_inputs(project, preview_grid(project_grid(project), max_px))
 
@@ -556,7 +556,7 @@ def clear_share_by_season(inputs: Any, seasons: dict[str, tuple[str, str]]) -> p
 
 def alignment_check(project: Any) -> pd.DataFrame:
     """Per input raster: does it cover the grid, share its CRS and pixel size, or need warping (and how)."""
-    from .inputs import input_inventory, project_grid
+    from ..inputs.layers import input_inventory, project_grid
 
     grid = project_grid(project)
     table = input_inventory(project, grid)
@@ -609,13 +609,13 @@ def shap_map_preview(
     domains: dict | None = None,
     max_px: int = 150,
 ) -> xr.DataArray:
-    """A SHAP map (:func:`~wetlandflow.explain.shap_map`) of the whole grid at preview resolution.
+    """A SHAP map (:func:`~wetlandflow.explain.attribution.shap_map`) of the whole grid at preview resolution.
 
     The model explains every ``k``-th pixel of the cube (a regular subsample, so the cost is that of
     ``max_px`` squared pixels, not of the grid), not a block mean: SHAP values of averaged features
     would explain pixels that do not exist.
     """
-    from .explain import shap_map
+    from ..explain.attribution import shap_map
 
     max_px = _check_max_px(max_px)
     k = max(1, math.ceil(max(cube.sizes["y"], cube.sizes["x"]) / max_px))

@@ -9,7 +9,7 @@ matching) should come much closer (Roberts et al. 2017; Ploton et al. 2020).
 
 Spatial CV serves to choose models and predictors.  The accuracy and the
 class areas of an inventory come from an independent probability sample
-(:mod:`wetlandflow.accuracy`), not from any cross-validation.
+(:mod:`wetlandflow.accuracy.estimators`), not from any cross-validation.
 
 References
 ----------
@@ -33,9 +33,9 @@ import pandas as pd
 from numpy.typing import ArrayLike
 from sklearn.base import clone
 
-from .errors import GridMismatchError, ParameterError
-from .grid import Grid
-from .validation import random_pixel_kfold
+from ..errors import GridMismatchError, ParameterError
+from ..inputs.grid import Grid
+from .splitters import random_pixel_kfold
 
 __all__ = ["cv_honesty", "map_accuracy_against_truth", "random_pixel_cv_predictions"]
 
@@ -62,7 +62,7 @@ def random_pixel_cv_predictions(
     X, y : array-like
         Features and labels, one row per pixel sample.
     n_splits, random_state
-        Passed to :func:`~wetlandflow.validation.random_pixel_kfold`.
+        Passed to :func:`~wetlandflow.validation.splitters.random_pixel_kfold`.
     sample_weight : array-like of shape (n,), optional
         Training weights per sample.
     allow_random_pixels : bool, default False
@@ -156,7 +156,7 @@ def map_accuracy_against_truth(
 
 def _run_model(run: Path) -> tuple[Any, list[str], list[str]]:
     """The run's classifier settings (unfitted), its features and class names, from ``model/bundle.json``."""
-    from .models import WetlandClassifier
+    from ..models.classifier import WetlandClassifier
 
     bundle = json.loads((run / "model" / "bundle.json").read_text())
     allowed = WetlandClassifier().get_params()

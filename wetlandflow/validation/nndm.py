@@ -47,7 +47,7 @@ from scipy.spatial.distance import cdist
 from scipy.stats import ks_2samp, wasserstein_distance
 from sklearn.model_selection import BaseCrossValidator
 
-from .errors import BudgetError, ValidationDesignError
+from ..errors import BudgetError, ValidationDesignError
 
 __all__ = [
     "KNNDM",
@@ -104,7 +104,7 @@ def _check_aligned(n: int, xy: np.ndarray, owner: str) -> None:
         raise ValidationDesignError(
             f"{owner}: X has {n} rows but coords has {xy.shape[0]}. The splitter's coords must be aligned "
             f"row for row with the X being split; for a subset use "
-            f"wetlandflow.validation.subset_splitter(cv, idx)."
+            f"wetlandflow.validation.splitters.subset_splitter(cv, idx)."
         )
 
 

@@ -20,9 +20,9 @@ Where things live
 -----------------
 Splitters, fold assignment and fold checks are defined here.  Distance
 matching (NNDM, kNNDM) and the distance diagnostics live in
-:mod:`wetlandflow.nndm`, the variogram block-size suggestion in
-:mod:`wetlandflow.variogram`, and nested tuning in :mod:`wetlandflow.nested`;
-all are re-exported here, so ``from wetlandflow.validation import ...`` keeps
+:mod:`wetlandflow.validation.nndm`, the variogram block-size suggestion in
+:mod:`wetlandflow.validation.variogram`, and nested tuning in :mod:`wetlandflow.validation.nested`;
+all are re-exported here, so ``from wetlandflow.validation.splitters import ...`` keeps
 one entry point for every design.
 
 All splitters follow scikit-learn's protocol: ``__init__`` stores its arguments
@@ -49,7 +49,7 @@ from numpy.typing import ArrayLike
 from scipy.spatial import cKDTree
 from sklearn.model_selection import BaseCrossValidator, GroupKFold, KFold, StratifiedGroupKFold
 
-from .errors import ValidationDesignError
+from ..errors import ValidationDesignError
 from .nested import NestedCVResult, spatial_early_stopping, spatial_grid_search, subset_splitter
 from .nndm import (
     KNNDM,

@@ -24,7 +24,7 @@ import pandas as pd
 from numpy.typing import ArrayLike
 from scipy.optimize import curve_fit
 
-from .errors import ValidationDesignError
+from ..errors import ValidationDesignError
 
 __all__ = ["BlockSizeSuggestion", "suggest_block_size", "variogram"]
 

@@ -1,6 +1,6 @@
 """Notebook controls: project settings panels and background tasks with progress and cancel.
 
-Every control maps to one field of the project file (:mod:`wetlandflow.project`):
+Every control maps to one field of the project file (:mod:`wetlandflow.inputs.project`):
 :class:`FeaturePicker` to ``[features]`` (``select`` and ``params``),
 :class:`ModelSettings`, :class:`ValidationSettings` and :class:`OutputSettings`
 to their sections.  :class:`ProjectPanel` gathers them, validates what they
@@ -15,7 +15,7 @@ project, :class:`CrossValidationPanel` cross-validates fold by fold, and
 :class:`MapViewer` redraws one map preview at a time.  :func:`run_notebook`
 executes a template notebook headless with new parameters.
 
-Everything is importable from ``wetlandflow.widgets``; the submodules are
+Everything is importable from ``wetlandflow.ui.widgets``; the submodules are
 :mod:`.tasks` (background tasks and their panel), :mod:`.settings` (controls and
 the project panel), :mod:`.jobs` (the heavy steps, composed from the library),
 :mod:`.panels` and :mod:`.headless`.

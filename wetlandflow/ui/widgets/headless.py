@@ -6,7 +6,7 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
-from ..errors import ParameterError, WetlandflowError
+from ...errors import ParameterError, WetlandflowError
 
 
 def parameters_source(parameters: Mapping[str, Any]) -> str:

@@ -4,7 +4,7 @@
   for cancel between folds; a cancel hands back what was finished
   (``Cancelled.partial``).  :func:`select_features` wraps the library's forward
   selection, which has no cancel point, and runs to its end.
-* :func:`run_with_control` runs :func:`~wetlandflow.run.run_project` and checks
+* :func:`run_with_control` runs :func:`~wetlandflow.pipeline.run.run_project` and checks
   for cancel before every dask task of the run (chunks of the feature cube,
   prediction windows): the manifest then records the interrupted step as failed
   and every earlier one as done; a rerun in the same folder reuses those and
@@ -28,8 +28,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ..errors import OutputError, ParameterError
-from ..project import CV_DESIGNS, Project
+from ...errors import OutputError, ParameterError
+from ...inputs.project import CV_DESIGNS, Project
 from .tasks import Cancelled, TaskControl
 
 
@@ -76,7 +76,7 @@ def _cv_loop(
     offset: int,
     total: int,
 ) -> CVResult:
-    from ..run import make_model
+    from ...pipeline.run import make_model
 
     X = samples[features].to_numpy(np.float32)
     y = samples["class"].to_numpy()
@@ -115,8 +115,8 @@ def design_folds(project: Project, samples: pd.DataFrame) -> np.ndarray:
 
     Plot ids go to the splitter as groups, except for random pixel folds, which ignore them by design.
     """
-    from ..run import make_splitter
-    from ..validation import assign_folds
+    from ...pipeline.run import make_splitter
+    from ...validation.splitters import assign_folds
 
     splitter = make_splitter(project, samples[["x", "y"]].to_numpy())
     return assign_folds(
@@ -129,7 +129,7 @@ def design_folds(project: Project, samples: pd.DataFrame) -> np.ndarray:
 
 def features_of(samples: pd.DataFrame) -> list[str]:
     """Feature columns of a samples table (everything but plot_id, class, x, y)."""
-    from ..run import feature_names
+    from ...pipeline.run import feature_names
 
     return feature_names(samples)
 
@@ -260,7 +260,7 @@ def tune(
 
 # -- jobs: a whole run with cancel points at its dask tasks --------------------------------------------------
 def run_steps(project: Project) -> list[str]:
-    """The steps :func:`~wetlandflow.run.run_project` runs for this project, in order."""
+    """The steps :func:`~wetlandflow.pipeline.run.run_project` runs for this project, in order."""
     steps = ["inputs", "features", "samples", "validation", "model", "mapping", "inventory"]
     return steps + (["explain"] if project.output.explain else [])
 
@@ -313,13 +313,13 @@ def _cancel_callback(control: TaskControl, progress: _ManifestProgress, n_steps:
 
 
 def run_with_control(project: Project | str | Path, control: TaskControl | None = None):
-    """:func:`~wetlandflow.run.run_project` with progress by step and cancel points at every dask task.
+    """:func:`~wetlandflow.pipeline.run.run_project` with progress by step and cancel points at every dask task.
 
-    Returns the :class:`~wetlandflow.run.RunResult`; a cancel raises :class:`Cancelled` after the manifest
+    Returns the :class:`~wetlandflow.pipeline.run.RunResult`; a cancel raises :class:`Cancelled` after the manifest
     recorded the interrupted step (earlier steps stay done and are reused by the next run).
     """
-    from ..project import load_project
-    from ..run import run_project
+    from ...inputs.project import load_project
+    from ...pipeline.run import run_project
 
     control = control or TaskControl()
     project = project if isinstance(project, Project) else load_project(project)
@@ -363,16 +363,16 @@ def select_features(
 ) -> Any:
     """Forward feature selection (Meyer et al. 2018) under the project's validation design.
 
-    A composition of :func:`~wetlandflow.selection.forward_feature_selection` with the project's model
+    A composition of :func:`~wetlandflow.models.selection.forward_feature_selection` with the project's model
     and splitter; the score of the chosen set is optimistic (the same folds chose it), see
-    :func:`~wetlandflow.compare.compare_models` for the nested estimate.
+    :func:`~wetlandflow.models.compare.compare_models` for the nested estimate.
 
     Returns
     -------
     SelectionResult
     """
-    from ..run import make_model, make_splitter
-    from ..selection import forward_feature_selection
+    from ...models.selection import forward_feature_selection
+    from ...pipeline.run import make_model, make_splitter
 
     features = list(features or features_of(samples))
     cv = make_splitter(project, samples[["x", "y"]].to_numpy())
@@ -391,10 +391,10 @@ def select_features(
 def require_run(project: Project, run_dir: str | Path = "", *, run_if_missing: bool = False) -> Path:
     """The run folder a notebook reads (default: the project's ``output_dir``), checked to be complete.
 
-    With ``run_if_missing`` an incomplete folder is completed by :func:`~wetlandflow.run.run_project`
+    With ``run_if_missing`` an incomplete folder is completed by :func:`~wetlandflow.pipeline.run.run_project`
     here, in the foreground (steps already done are reused); otherwise the error says how to make it.
     """
-    from ..run import run_project
+    from ...pipeline.run import run_project
 
     folder = Path(run_dir) if run_dir else project.run_dir
     needed = [folder / "manifest.json", folder / "samples.parquet", folder / "maps" / "class_final.tif"]

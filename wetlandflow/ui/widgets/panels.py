@@ -9,7 +9,7 @@ from typing import Any
 import ipywidgets as w
 import pandas as pd
 
-from ..project import Project, parse_project
+from ...inputs.project import Project, parse_project
 from .jobs import (
     CVResult,
     cross_validate_folds,
@@ -57,7 +57,7 @@ class RunPanel(TaskPanel):
     def _stopped(self, task: BackgroundTask) -> list[Any]:
         if self.saved is None:
             return []
-        from ..project import load_project
+        from ...inputs.project import load_project
 
         return [
             Html("<b>steps recorded in the manifest</b> (those done are reused by the next run)"),
@@ -104,7 +104,7 @@ class CrossValidationPanel(TaskPanel):
 
     def settings(self) -> Project:
         """The project with the panel's model and validation settings, validated by the project parser."""
-        from ..project import to_dict
+        from ...inputs.project import to_dict
 
         p = with_settings(
             with_settings(self.project, "model", **self.model.to_config()),
@@ -130,7 +130,7 @@ class CrossValidationPanel(TaskPanel):
         return self.results
 
     def _render(self, results: dict[str, CVResult]) -> list[Any]:
-        from ..validation import plot_folds
+        from ...validation.splitters import plot_folds
 
         first = next(iter(results.values()))
         per_fold = pd.concat([r.per_fold for r in results.values()], ignore_index=True)
@@ -152,7 +152,7 @@ class MapViewer(w.VBox):
 
     ``layer`` lists ``class_final``, ``class``, each class probability, each confidence band, and the
     dissimilarity index and applicability flag when the run wrote them.  Previews come from the COGs'
-    overviews (:mod:`wetlandflow.previews`).
+    overviews (:mod:`wetlandflow.ui.previews`).
     """
 
     def __init__(self, run_dir: str | Path, class_names: tuple[str, ...], *, max_px: int = 500) -> None:

@@ -1,7 +1,7 @@
 """Settings controls: one widget per field of the project file, and the panel that saves the file.
 
 Each control's initial value is the file's value or the schema's default
-(:mod:`wetlandflow.project`); :class:`ProjectPanel` rebuilds the TOML mapping
+(:mod:`wetlandflow.inputs.project`); :class:`ProjectPanel` rebuilds the TOML mapping
 from the controls, validates it with the library's own parser (errors name the
 key) and writes it.
 """
@@ -18,8 +18,8 @@ from typing import Any
 import ipywidgets as w
 import pandas as pd
 
-from ..errors import ProjectFileError, WetlandflowError
-from ..project import (
+from ...errors import ProjectFileError, WetlandflowError
+from ...inputs.project import (
     CV_DESIGNS,
     MODEL_KINDS,
     ModelSection,
@@ -117,7 +117,7 @@ class FeaturePicker(w.VBox):
         select: Sequence[str] = ("optical", "sar", "terrain"),
         params: Mapping[str, Mapping[str, Any]] | None = None,
     ) -> None:
-        from ..features.registry import registry_table, resolve_selection
+        from ...features.registry import registry_table, resolve_selection
 
         self.table = registry_table()
         chosen = {d.name for d in resolve_selection(tuple(select))}

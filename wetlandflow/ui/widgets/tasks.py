@@ -24,7 +24,7 @@ import ipywidgets as w
 import numpy as np
 import pandas as pd
 
-from ..errors import Cancelled, WetlandflowError  # noqa: F401  (Cancelled re-exported)
+from ...errors import Cancelled, WetlandflowError  # noqa: F401  (Cancelled re-exported)
 
 
 # -- progress and cancel -------------------------------------------------------------------------------------
