@@ -622,7 +622,7 @@ def _write_project(out: Path, seed: int, px: float, optical: list, sar: list) ->
     import tomli_w
 
     head = (f"# {PLACE}: synthetic demo project (a fictional place; synthetic data).\n"
-            "# Written by wetlandflow.demo.landscape.make_demo; paths are relative to this file.\n\n")
+            "# Written by wetlandflow.demo.make_demo; paths are relative to this file.\n\n")
     path = out / "project.toml"
     path.write_text(head + tomli_w.dumps(_project_doc(seed, px, optical, sar)), encoding="utf-8")
     return path
@@ -778,7 +778,7 @@ def load_truth(out_dir) -> xr.DataArray:
     path = Path(out_dir) / "truth.tif"
     if not path.exists():
         raise InputFileError("no truth.tif here; generate the demo first with "
-                             "wetlandflow.demo.landscape.make_demo(out_dir)", path=str(path))
+                             "wetlandflow.demo.make_demo(out_dir)", path=str(path))
     with rasterio.open(path) as src:
         data, grid = src.read(1), Grid(src.crs.to_string(), src.transform, src.width, src.height)
     da = xr.DataArray(data, dims=("y", "x"), coords=grid.coords())
