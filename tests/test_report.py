@@ -256,3 +256,123 @@ def test_matching_recorded_reference_strings():
     assert [e.used_for for e in entries] == [["feature a", "feature b"], ["aoa"]]
     with pytest.raises(KeyError, match="known"):
         c.add_method("no_such_method", "x")
+
+
+# -- print-ready outputs: the PDF appendix, the summary sheet, map pages with their cartographic elements ----------
+def _pdf_text(path: Path) -> list[str]:
+    import pypdfium2 as pdfium
+
+    doc = pdfium.PdfDocument(str(path))
+    try:
+        return [doc[i].get_textpage().get_text_range() for i in range(len(doc))]
+    finally:
+        doc.close()
+
+
+def _pdf_images(path: Path) -> int:
+    import pypdfium2 as pdfium
+    import pypdfium2.raw as pdfium_c
+
+    doc = pdfium.PdfDocument(str(path))
+    try:
+        return sum(1 for i in range(len(doc)) for _ in doc[i].get_objects(filter=(pdfium_c.FPDF_PAGEOBJ_IMAGE,)))
+    finally:
+        doc.close()
+
+
+def test_pdf_appendix_renders_with_text_and_figures(run_dir, report):
+    """Every page renders to PNG; the text holds the caution, every section title and the totals; figures are
+    embedded images."""
+    import pypdfium2 as pdfium
+
+    pdf = run_dir / "report" / "methods.pdf"
+    doc = pdfium.PdfDocument(str(pdf))
+    try:
+        assert len(doc) >= 3
+        for i in range(3):  # the first pages render to non-blank images
+            image = np.asarray(doc[i].render(scale=0.5).to_pil().convert("L"))
+            assert image.shape[0] > 300 and image.min() < 100 and image.max() > 200
+    finally:
+        doc.close()
+    text = fold(" ".join(_pdf_text(pdf)).replace("\r", " ").replace("\n", " "))
+    assert fold(CAUTION)[:60] in text
+    for title in SECTIONS:
+        assert fold(title) in text, title
+    assert "total wetland area" in text
+    assert _pdf_images(pdf) >= len([f for f in report["figures"] if f.endswith(".png")]) - 1
+
+
+def test_summary_leads_with_totals_and_fits_one_page(run_dir, report):
+    summary = section(report["md"], "Summary")
+    first = summary.split("\n\n")[1]
+    assert first.startswith("Total wetland area"), first
+    grouped = pd.read_csv(run_dir / "accuracy" / "grouped_area_table.csv").set_index("class")
+    w = grouped.loc["wetland"]
+    for v in (w["estimated_area_ha"], w["ci_low_ha"], w["ci_high_ha"]):
+        assert f"{v:,.1f}" in first
+    pages = _pdf_text(run_dir / "report" / "summary.pdf")
+    assert len(pages) == 1
+    assert "Total wetland area" in pages[0] and "Caution" in pages[0]
+    assert _pdf_images(run_dir / "report" / "summary.pdf") == 1  # the class map
+
+
+def test_class_definitions_and_full_labels_in_report(report):
+    text = section(report["md"], "Classes mapped")
+    for label in ("Shallow open water", "Marsh", "Swamp", "Fen", "Bog"):
+        assert f"| {label} |" in text
+    assert "Canadian Wetland Classification System" in text
+    assert "ISBN 0-662-25857-6" in text
+
+
+@pytest.mark.reference
+def test_map_page_is_a4_and_its_printed_scale_is_true(run_dir, report):
+    """The standalone map page is A4 landscape and its stated 1:N holds on paper.
+
+    Sources: ISO 216 (A4 = 210 mm x 297 mm); the scale is measured on the PDF itself, as the distance on the
+    page between two easting tick labels whose ground distance is known, read with PDFium (pypdfium2).
+    """
+    import pypdfium2 as pdfium
+
+    pdf = run_dir / "report" / "maps" / "class_map.pdf"
+    doc = pdfium.PdfDocument(str(pdf))
+    try:
+        page = doc[0]
+        w_pt, h_pt = page.get_size()
+        assert abs(w_pt / 72 * 25.4 - 297) < 0.5 and abs(h_pt / 72 * 25.4 - 210) < 0.5
+        tp = page.get_textpage()
+        text = tp.get_text_range()
+        stated = int(re.search(r"Scale 1:([\d,]+) when printed", text).group(1).replace(",", ""))
+        ticks = {}
+        for m in re.finditer(r"\b(\d{6})\b", text):  # easting labels of a UTM grid: six digits
+            value = int(m.group(1))
+            left, _, right, _ = tp.get_charbox(m.start())
+            ticks.setdefault(value, (left + tp.get_charbox(m.end() - 1)[2]) / 2)
+    finally:
+        doc.close()
+    eastings = sorted(v for v in ticks if v < 1_000_000)
+    a, b = eastings[0], eastings[-1]
+    paper_m = abs(ticks[b] - ticks[a]) / 72 * 0.0254
+    measured = (b - a) / paper_m
+    assert abs(measured - stated) / stated < 0.01, (measured, stated)
+
+
+@pytest.mark.reference
+def test_north_arrow_turns_by_the_meridian_convergence():
+    """True north against grid north on UTM zone 33N.
+
+    References: pyproj's ``Proj.get_factors(...).meridian_convergence`` (PROJ), with the opposite sign
+    convention; and the first-order transverse Mercator convergence, gamma = (lon - lon0) sin(lat), of
+    Snyder, J. P. (1987). Map Projections: A Working Manual. USGS Professional Paper 1395.
+    """
+    import math
+
+    from pyproj import Proj, Transformer
+
+    from wetlandflow.report.cartography import true_north_angle
+
+    to_utm = Transformer.from_crs(4326, 32633, always_xy=True)
+    for lon, lat in [(17.0, 60.0), (13.0, 45.0), (15.0, 50.0), (17.0, -30.0)]:
+        x, y = to_utm.transform(lon, lat)
+        angle = true_north_angle(32633, x, y)
+        assert angle == pytest.approx(-Proj(32633).get_factors(lon, lat).meridian_convergence, abs=1e-3)
+        assert angle == pytest.approx(-(lon - 15.0) * math.sin(math.radians(lat)), abs=0.01)

@@ -1,7 +1,7 @@
 """The model bundle: a fitted classifier saved in its library's own format plus a JSON sidecar, and loaded again.
 
-A flat :class:`~wetlandflow.models.classifier.classifier.WetlandClassifier` is one estimator file and ``bundle.json``; a
-:class:`~wetlandflow.models.classifier.hierarchy.HierarchicalClassifier` is one flat bundle per level.  This module also
+A flat :class:`~wetlandflow.models.classifier.WetlandClassifier` is one estimator file and ``bundle.json``; a
+:class:`~wetlandflow.models.hierarchy.HierarchicalClassifier` is one flat bundle per level.  This module also
 checks that a table's or cube's features match the ones a bundle was trained on.
 """
 

@@ -27,6 +27,7 @@ if TYPE_CHECKING:
 SECTIONS = (
     "Caution",
     "Summary",
+    "Classes mapped",
     "Study area and grid",
     "Inputs",
     "Features",
@@ -122,26 +123,140 @@ def section_caution(run: RunFolder) -> Section:
 
 
 def section_summary(run: RunFolder) -> Section:
+    """The answer first: total wetland area and each class's area (mapped and error-adjusted), then accuracy."""
     m, p = run.manifest, run.project
     name = p.get("project", {}).get("name", "(unnamed)")
+    totals = area_totals(run)
+    blocks: list = []
+    if totals is not None:
+        blocks.append(Paragraph(_totals_text(run, totals)))
+        blocks.append(Table(_totals_display(totals), "Areas of the inventory: groups of classes first, then each "
+                                                     "class"))
+    blocks.append(Paragraph(_headline_accuracy(run)))
+    if run.areas is not None and run.class_names:
+        blocks.append(Paragraph(
+            f"The run maps {len(run.class_names)} classes ({', '.join(_label(n) for n in run.class_names)}) on "
+            f"{run.pixel_size_m:g} m pixels over {ha(run.areas['mapped_area_ha'].sum())} ha."))
     finished = f", finished {m['finished']}" if m.get("finished") else " (no finish time recorded)"
-    blocks: list = [Paragraph(
+    blocks.append(Paragraph(
         f"This appendix documents the run of project \"{name}\" recorded in this folder: wetlandflow "
         f"{m.get('wetlandflow', '?')}, started {m.get('started', '?')}{finished}, seed {m.get('seed', '?')}, "
         f"resolved configuration SHA-256 `{m.get('config_sha256', '?')}`. It was generated from the run "
-        f"folder alone by wetlandflow {__version__}.")]
+        f"folder alone by wetlandflow {__version__}."))
     steps = m.get("steps", {})
     unfinished = [f"{k} ({v.get('status')})" for k, v in steps.items() if v.get("status") != "done"]
     if unfinished:
         blocks.append(Paragraph(f"Not every step finished: {', '.join(unfinished)}. Sections that depend on "
                                 "these steps say what is missing; other outputs in the folder may be left from an "
                                 "earlier run and need not match this manifest."))
-    if run.areas is not None and run.class_names:
-        blocks.append(Paragraph(
-            f"The run maps {len(run.class_names)} classes ({', '.join(run.class_names)}) on "
-            f"{run.pixel_size_m:g} m pixels over {ha(run.areas['mapped_area_ha'].sum())} ha."))
-    blocks.append(Paragraph(_headline_accuracy(run)))
     return Section("Summary", blocks)
+
+
+def section_classes(run: RunFolder) -> Section:
+    """What each mapped class means, as the interpreters and the model were told."""
+    from ..inputs.class_definitions import SOURCE, class_definition
+
+    defs = [class_definition(n) for n in run.class_names]
+    rows = pd.DataFrame({"class": [d.label for d in defs], "code name": run.class_names,
+                         "definition": [d.definition or "(no definition given in the project file)" for d in defs]})
+    return Section("Classes mapped", [
+        Paragraph("The classes of the inventory, with the definitions the plots were labelled by. The wetland "
+                  f"classes follow the five classes of the Canadian Wetland Classification System ({SOURCE}), "
+                  "described here in short; a project's own definitions replace these."),
+        Table(rows, "Class definitions")])
+
+
+def _label(name: str) -> str:
+    from ..inputs.class_definitions import class_label
+
+    return class_label(name)
+
+
+def class_groups(run: RunFolder) -> dict[str, list[str]]:
+    """The groups of classes whose totals lead the summary: ``[classes.parents]`` of the project.
+
+    Without parents, a scheme with an ``upland`` class gets one group ``wetland`` of all the other classes,
+    said as such in the text.
+    """
+    parents = {k: list(v) for k, v in (run.project.get("classes", {}).get("parents") or {}).items()}
+    if parents:
+        return parents
+    names = run.class_names
+    return {"wetland": [n for n in names if n != "upland"]} if "upland" in names and len(names) > 1 else {}
+
+
+def area_totals(run: RunFolder) -> pd.DataFrame | None:
+    """Per group of classes, then per class: mapped area and, once a sample is assessed, the error-adjusted
+    area with its interval and the user's and producer's accuracies.
+
+    Columns ``name``, ``kind`` (``group``/``class``), ``members``, ``mapped_ha``, ``adjusted_ha``, ``ci_low_ha``,
+    ``ci_high_ha``, ``users``, ``producers`` (NaN where not estimated).
+    """
+    mapped = run.areas
+    if mapped is None or not run.class_names:
+        return None
+    mapped_ha = dict(zip(mapped["class"], mapped["mapped_area_ha"], strict=True))
+    est = run.csv("accuracy/area_table.csv")
+    grouped = run.csv("accuracy/grouped_area_table.csv")
+    accs = run.csv("accuracy/accuracy_table.csv")
+    by_class = {} if est is None else est.set_index("class").to_dict("index")
+    by_group = {} if grouped is None else grouped.set_index("class").to_dict("index")
+    by_acc = {} if accs is None else accs.set_index("class").to_dict("index")
+    nan = float("nan")
+    rows = []
+    for group, members in class_groups(run).items():
+        g = by_group.get(group, {})
+        rows.append({"name": group, "kind": "group", "members": ", ".join(members),
+                     "mapped_ha": float(sum(mapped_ha.get(n, 0.0) for n in members)),
+                     "adjusted_ha": g.get("estimated_area_ha", nan), "ci_low_ha": g.get("ci_low_ha", nan),
+                     "ci_high_ha": g.get("ci_high_ha", nan), "users": nan, "producers": nan})
+    for n in run.class_names:
+        c, a = by_class.get(n, {}), by_acc.get(n, {})
+        rows.append({"name": n, "kind": "class", "members": n, "mapped_ha": float(mapped_ha.get(n, 0.0)),
+                     "adjusted_ha": c.get("estimated_area_ha", nan), "ci_low_ha": c.get("ci_low_ha", nan),
+                     "ci_high_ha": c.get("ci_high_ha", nan), "users": a.get("users", nan),
+                     "producers": a.get("producers", nan)})
+    return pd.DataFrame(rows)
+
+
+def _totals_text(run: RunFolder, totals: pd.DataFrame) -> str:
+    s = run.accuracy_summary
+    conf = _conf(s) if s else "95 %"
+    parts = []
+    for r in totals[totals["kind"] == "group"].itertuples():
+        members = ", ".join(_label(n).lower() for n in r.members.split(", "))
+        if pd.notna(r.adjusted_ha):
+            parts.append(f"Total {r.name} area ({members}): {ha(r.adjusted_ha)} ha error-adjusted, {conf} "
+                         f"confidence interval {ha(r.ci_low_ha)} to {ha(r.ci_high_ha)} ha; the map itself shows "
+                         f"{ha(r.mapped_ha)} ha.")
+        else:
+            parts.append(f"Total {r.name} area ({members}) on the map: {ha(r.mapped_ha)} ha. {NO_SAMPLE}, so "
+                         "this is a pixel count that carries the map's classification errors, without an "
+                         "interval.")
+    if not parts:
+        parts.append(f"Mapped area of all classes: {ha(totals['mapped_ha'].sum())} ha.")
+    if s is None and len(parts) and not any(NO_SAMPLE in x for x in parts):
+        parts.append(f"{NO_SAMPLE}: the areas below are pixel counts of the map, without intervals.")
+    return " ".join(parts)
+
+
+def _totals_display(totals: pd.DataFrame) -> pd.DataFrame:
+    def fmt(v: float, f) -> str:
+        return "" if pd.isna(v) else f(v)
+
+    names = [f"{_label(n)}" if k == "class" else f"{n} (total)"
+             for n, k in zip(totals["name"], totals["kind"], strict=True)]
+    if totals["adjusted_ha"].isna().all():  # no sample assessed: pixel counts only, nothing to adjust them by
+        return pd.DataFrame({"": names, "mapped ha": [ha(v) for v in totals["mapped_ha"]]})
+    return pd.DataFrame({
+        "": names,
+        "mapped ha": [ha(v) for v in totals["mapped_ha"]],
+        "error-adjusted ha": [fmt(v, ha) for v in totals["adjusted_ha"]],
+        "95 % interval ha": ["" if pd.isna(lo) else f"{ha(lo)} to {ha(hi)}"
+                             for lo, hi in zip(totals["ci_low_ha"], totals["ci_high_ha"], strict=True)],
+        "user's accuracy": [fmt(v, acc) for v in totals["users"]],
+        "producer's accuracy": [fmt(v, acc) for v in totals["producers"]],
+    })
 
 
 def _headline_accuracy(run: RunFolder) -> str:
@@ -419,7 +534,7 @@ def section_model(run: RunFolder) -> Section:
 def section_cv_accuracy(run: RunFolder) -> Section:
     m = run.metrics
     if m is None:
-        return Section(SECTIONS[8], [Paragraph("The validation step wrote no metrics.")])
+        return Section(_title(section_cv_accuracy), [Paragraph("The validation step wrote no metrics.")])
     per = pd.DataFrame(m["per_class"])
     text = (f"Out-of-fold predictions of the {m['n']:,} training pixels give an overall accuracy of "
             f"{acc(m['overall_accuracy'])} (plus or minus {acc(m['overall_accuracy_ci95_half_width'])}, 95 %), "
@@ -435,7 +550,7 @@ def section_cv_accuracy(run: RunFolder) -> Section:
     matrix = run.csv("validation/error_matrix.csv")
     if matrix is not None:
         blocks.append(Table(matrix, "Cross-validated error matrix (pixel counts; rows map, columns reference)"))
-    return Section(SECTIONS[8], blocks)
+    return Section(_title(section_cv_accuracy), blocks)
 
 
 def _round(df: pd.DataFrame) -> pd.DataFrame:
@@ -444,7 +559,7 @@ def _round(df: pd.DataFrame) -> pd.DataFrame:
 
 def section_inventory_accuracy(run: RunFolder) -> Section:
     s, design = run.accuracy_summary, run.sample_design
-    title = SECTIONS[9]
+    title = _title(section_inventory_accuracy)
     if s is None:
         text = (f"{NO_SAMPLE}. The accuracy and the class areas of the inventory are therefore not estimated; "
                 "the cross-validated accuracy above does not stand in for them. To estimate them, design a "
@@ -704,10 +819,15 @@ def _uses(used_for: list[str]) -> str:
     return "; ".join(parts)
 
 
-BUILDERS = (section_caution, section_summary, section_study_area, section_inputs, section_features,
+BUILDERS = (section_caution, section_summary, section_classes, section_study_area, section_inputs, section_features,
             section_training, section_validation_design, section_model, section_cv_accuracy,
             section_inventory_accuracy, section_maps, section_drivers, section_applicability, section_limitations,
             section_versions, section_reproduce, section_references)
+
+
+def _title(builder) -> str:
+    """A section's title, by its builder's place in :data:`BUILDERS` (titles and builders stay in step)."""
+    return SECTIONS[BUILDERS.index(builder)]
 
 
 def build_sections(run: RunFolder) -> list[Section]:
