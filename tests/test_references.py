@@ -127,6 +127,6 @@ def test_reference_section_marks_unverified_and_unmatched_sources():
     cite_features(citations, {"b": {"reference": "Nobody (1901) An unlisted work"}}, {})
     lines = _references_text(citations).splitlines()
     doe = next(line for line in lines if line.startswith("Doe"))
-    assert "https://doi.org/10.1000/182 [not verified in the original] Used for: feature a." in doe
+    assert "doi:10.1000/182 [not verified in the original] Used for: feature a." in doe
     nobody = next(line for line in lines if line.startswith("Nobody"))
     assert "[as recorded with the feature; not verified in the original]" in nobody

@@ -55,8 +55,12 @@ class Reference:
         return self.authors.split(",")[0].strip()
 
     def stable_id(self) -> str:
-        """The DOI as a resolver link, else the other stable identifier (ISBN, report number), else ''."""
-        return f"https://doi.org/{self.doi}" if self.doi else self.identifier
+        """``doi:<DOI>``, else the other stable identifier (ISBN, report number), else ''.
+
+        The ``doi:`` form, not a resolver link, keeps the report free of web addresses (its HTML is
+        self-contained and works offline).
+        """
+        return f"doi:{self.doi}" if self.doi else self.identifier
 
     def citation(self) -> str:
         """The full citation: authors (year). Title. Source. Identifier."""
@@ -141,10 +145,10 @@ BIBLIOGRAPHY: dict[str, Reference] = {r.key: r for r in (
     _ref("linnenbrink2024", "Linnenbrink, J., Milà, C., Ludwig, M., Meyer, H.", 2024,
          "kNNDM CV: k-fold nearest-neighbour distance matching cross-validation for map accuracy estimation",
          "Geoscientific Model Development 17(15), 5897-5912", "verified", doi="10.5194/gmd-17-5897-2024"),
-    # lists: 12(9), 1620-1633 and DOI agree across reference lists (incl. the authors' own package docs).
+    # record: the publisher's article page (Wiley; Volume 12, Issue 9, pp. 1620-1633; authors; DOI).
     _ref("meyer2021", "Meyer, H., Pebesma, E.", 2021,
          "Predicting into unknown space? Estimating the area of applicability of spatial prediction models",
-         "Methods in Ecology and Evolution 12(9), 1620-1633", "secondary", doi="10.1111/2041-210X.13650"),
+         "Methods in Ecology and Evolution 12(9), 1620-1633", "verified", doi="10.1111/2041-210X.13650"),
     # -- models and explanations
     # lists: pages 785-794 and DOI agree across reference lists; the paper's ACM front matter (KDD '16)
     # quoted.
