@@ -235,10 +235,11 @@ def test_bibliography_entries_match_the_published_citations():
     assert BIBLIOGRAPHY["olofsson2014"].citation() == (
         "Olofsson, P., Foody, G. M., Herold, M., Stehman, S. V., Woodcock, C. E., Wulder, M. A. (2014). Good "
         "practices for estimating area and assessing accuracy of land change. Remote Sensing of Environment 148, "
-        "42-57.")
+        "42-57. doi:10.1016/j.rse.2014.02.015")
     assert BIBLIOGRAPHY["meyer2021"].citation() == (
         "Meyer, H., Pebesma, E. (2021). Predicting into unknown space? Estimating the area of applicability of "
-        "spatial prediction models. Methods in Ecology and Evolution 12(9), 1620-1633.")
+        "spatial prediction models. Methods in Ecology and Evolution 12(9), 1620-1633. "
+        "doi:10.1111/2041-210X.13650")
     assert BIBLIOGRAPHY["otsu1979"].short() == "Otsu (1979)"
     assert BIBLIOGRAPHY["meyer2021"].short(parenthetical=True) == "Meyer & Pebesma 2021"
     assert BIBLIOGRAPHY["olofsson2014"].short() == "Olofsson et al. (2014)"

@@ -86,7 +86,7 @@ _SYSTEMATIC_NOTE = (
     "Systematic sample analysed as if it were a simple random sample (post-stratified by map class). "
     "No unbiased variance estimator exists for a single systematic sample; the simple-random formula "
     "is usually conservative (overstates the variance) on spatially autocorrelated maps (Cochran 1977, "
-    "ch. 8; from memory)."
+    "ch. 8; not verified in the original)."
 )
 
 

@@ -6,7 +6,7 @@ one date and writes it as tiled GeoTIFF.  Scenes are rendered by blocks of rows,
 so no scene is ever held whole in memory.
 
 The spectra, phenology and backscatter levels are illustrative values chosen
-from memory to be physically plausible (green vegetation bright in the NIR and
+(common practice, no source) to be physically plausible (green vegetation bright in the NIR and
 dark in the red, water dark in the NIR and SWIR, peat and moss brighter in the
 SWIR than green canopies, calm water near -20 dB VV, double bounce brightening
 flooded trees); they are not measurements and must not be used as check values.

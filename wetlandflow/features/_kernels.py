@@ -39,7 +39,7 @@ def batcher_pairs(n: int) -> np.ndarray:
     are dropped, which is exact because padding behaves as +inf (already the
     largest, so such a comparator never exchanges).  Batcher, K. E. (1968),
     Sorting networks and their applications, AFIPS Spring Joint Computer
-    Conference 32, 307-314 (citation from memory; correctness of the network
+    Conference 32, 307-314 (citation not verified in the original; correctness of the network
     is checked exhaustively on 0/1 inputs in the tests, the 0-1 principle).
     """
     size = 1

@@ -24,7 +24,7 @@ from ._kernels import nanmedian_time
 
 _OFFSET_HINT = (
     "reflectance = (DN + offset_dn) * scale; Sentinel-2 L2A products from processing baseline 04.00 "
-    "(2022) on carry offset_dn = -1000, earlier ones 0 (from memory; check the product metadata "
+    "(2022) on carry offset_dn = -1000, earlier ones 0 (not verified in the product specification; check the product metadata "
     "BOA_ADD_OFFSET)"
 )
 

@@ -6,7 +6,7 @@ areas (ridge tops).  Both are global, multi-scale operations: they compute in
 memory and return an array chunked like the input when that was dask-backed.
 
 Algorithm as implemented (the structure is verified in secondary sources; the
-step details marked *from memory* still need checking against the paper's
+step details listed at the end are not verified against the paper's
 equations):
 
 * ``N(x; t, p) = 1 / (1 + (x / t)^p)``.
@@ -27,9 +27,14 @@ equations):
   per factor 3 of resolution: ``t1 = 16 (25 / r)^(ln 2 / ln 3)`` (verified in a
   secondary source quoting the paper).
 
-From memory: shape parameters 4, 3, 4, 6; thresholds 0.4, 0.3, 0.35; radii 3
-and 6; the combination rule; the smoothing kernel (here a Gaussian of
-``smoothing_sigma`` cells, a design choice) and the bilinear interpolation.
+Provenance of the step parameters.  As documented for SAGA GIS's MRVBF tool
+(ta_morphometry 8, tool documentation): initial slope threshold 16, lowness
+threshold 0.4 (``t_pctl``), upness threshold 0.35, slope shape parameter 4,
+elevation-percentile shape parameter 3.  Not verified against the original:
+the VF threshold 0.3 and its shape 4, the weight threshold 0.4 and shape 6,
+the radii 3 and 6, and the combination rule.  Design choices of this
+implementation: the smoothing kernel (a Gaussian of ``smoothing_sigma``
+cells) and the bilinear interpolation.
 """
 
 from __future__ import annotations
@@ -184,7 +189,11 @@ def _run(dem, *, ridge, t_slope, t_pctl, steps, smoothing_sigma, cellsize):
         "coarsening_factor": 3,
         "smoothing_sigma_cells": smoothing_sigma,
         "interpolation": "bilinear",
-        "from_memory": "shape parameters, thresholds 0.3/0.4/0.35, radii, combination rule, smoothing",
+        "source": "t_slope 16, t_pctl 0.4 (0.35 for MRRTF), shapes 4 (slope) and 3 (percentile) as "
+        "documented for SAGA GIS's MRVBF tool (ta_morphometry 8)",
+        "not_verified_in_original": "VF threshold 0.3 and shape 4, weight 0.4 and shape 6, radii 3 and 6, "
+        "combination rule",
+        "design_choice": "Gaussian smoothing, bilinear interpolation",
         "cellsize": cs,
     }
     return _wrap(dem, out), params
@@ -255,7 +264,7 @@ def mrrtf(
     """Multiresolution ridge top flatness (Gallant & Dowling 2003).
 
     As :func:`mrvbf` with "upness" ``1 - PCTL`` in place of the elevation
-    percentile and threshold 0.35 (from memory).  Computed in memory.
+    percentile and threshold 0.35 (as documented for SAGA GIS's MRVBF tool).  Computed in memory.
 
     Parameters
     ----------

@@ -235,9 +235,9 @@ _ND_SPECS: dict[str, tuple[str, str, str, str]] = {
     ),
     "ndre1": (
         "nir", "re1", "Normalized difference red-edge index (B08, B05)",
-        "Gitelson & Merzlyak (1994) Spectral reflectance changes associated with autumn senescence of "
-        "Aesculus hippocastanum L. and Acer platanoides L. leaves, Journal of Photochemistry and "
-        "Photobiology B 22, 247-252",
+        "Gitelson & Merzlyak (1994) Quantitative estimation of chlorophyll-a using reflectance spectra: "
+        "experiments with autumn chestnut and maple leaves, Journal of Photochemistry and "
+        "Photobiology B 22(3), 247-252",
     ),
     "ndre2": (
         "nir", "re2", "Normalized difference red-edge index (B08, B06)",
@@ -552,7 +552,7 @@ def reip(reflectance: xr.DataArray, *, centres: str = "S2A", clip: bool = False)
     ----------
     Guyot, G., Baret, F. (1988). Utilisation de la haute resolution spectrale pour suivre l'etat
     des couverts vegetaux. Proc. 4th Int. Colloquium on Spectral Signatures of Objects in Remote
-    Sensing, ESA SP-287, 279-286 (formula from memory, not checked in the original).
+    Sensing, ESA SP-287, 279-286 (formula not verified in the original).
     Frampton, W. J., Dash, J., Watmough, G., Milton, E. J. (2013). Evaluating the capabilities of
     Sentinel-2 for quantitative estimation of biophysical variables in vegetation. ISPRS Journal
     of Photogrammetry and Remote Sensing 82, 83-92.

@@ -323,7 +323,7 @@ def lee_filter(
         x_hat  = m + k * (z - m)
 
     This is the minimum-mean-square-error form of the paper's multiplicative
-    case as summarised from memory (not checked against the original); the
+    case as summarised here (not verified against the original); the
     simpler ``k = 1 - C_u**2 / C_z**2`` variant differs by the ``1 + 1/ENL``
     factor.  A constant field is returned unchanged; pure speckle (k about 0)
     is replaced by the local mean.
@@ -337,7 +337,7 @@ def lee_filter(
         Odd window size in pixels.
     enl : float
         Equivalent number of looks of the input (4.4 is a commonly quoted
-        figure for Sentinel-1 IW GRD high-resolution products; from memory).
+        figure for Sentinel-1 IW GRD high-resolution products; common practice, no source).
     edge : {"truncate", "symmetric"}
         Border policy: cut the window at the image edge, or mirror the image.
 
@@ -382,8 +382,9 @@ def temporal_ratio_filter(stack: xr.DataArray, window: int = 7, *, edge: str = "
     speckle reduced by averaging over dates (uncorrelated speckle: about M
     times the input ENL); multiplying by each date's local mean restores that
     date's level.  This is the multichannel filter form usually attributed to
-    Quegan & Yu (2001, IEEE TGRS); the form is written from memory and the
-    attribution was not checked, hence the descriptive name.  Filtering is
+    Quegan & Yu (2001, IEEE TGRS 39(11), 2373-2379); the citation is checked
+    in published reference lists, the form was not verified against the
+    original, hence the descriptive name.  Filtering is
     done per ``pol`` (and any other leading dim) independently.
 
     Parameters
@@ -415,6 +416,7 @@ def temporal_ratio_filter(stack: xr.DataArray, window: int = 7, *, edge: str = "
         domain="sar",
         method="J_k = E_k * mean_i(I_i / E_i), E = boxcar local mean, NaN ignored",
         reference="form usually attributed to Quegan & Yu (2001) Filtering of multichannel SAR images, "
-        "IEEE Transactions on Geoscience and Remote Sensing 39(11) (from memory, not checked)",
+        "IEEE Transactions on Geoscience and Remote Sensing 39(11), 2373-2379 "
+        "(form not verified in the original)",
         parameters={"window": int(window), "edge": edge},
     )

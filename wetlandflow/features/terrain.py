@@ -373,7 +373,7 @@ def topographic_position_index(
     References
     ----------
     Guisan, A., Weiss, S. B., Weiss, A. D. (1999) GLM versus CCA spatial modeling of plant species
-    distribution. Plant Ecology 143, 107-122 (TPI as elevation minus neighbourhood mean; from memory).
+    distribution. Plant Ecology 143, 107-122 (TPI as elevation minus neighbourhood mean; not verified in the original).
     """
     dx, dy = grid_spacing(dem, cellsize)
     if abs(dx - dy) > 1e-6 * dx:

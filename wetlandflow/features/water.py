@@ -237,8 +237,8 @@ def water_masks(
     Each date gets its own threshold from the histogram of ``pol`` in dB
     (inside ``aoi_mask``), accepted when :func:`bimodality` finds a clear
     split; otherwise the fixed ``fallback_db`` is used (VV < -18 dB is a
-    literature rule of thumb quoted in the range -15 to -18 dB; from memory,
-    no source checked).  Water is the dark class, ``dB <= threshold``.
+    rule of thumb quoted in the range -15 to -18 dB: common practice, no
+    source).  Water is the dark class, ``dB <= threshold``.
 
     The thresholds are global per date and are computed at call time on a
     strided subsample of at most ``max_pixels`` pixels per date; the masks

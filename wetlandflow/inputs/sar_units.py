@@ -18,7 +18,7 @@ from ..errors import DataQualityError
 UNITS = ("linear", "amplitude", "db")
 
 
-# Typical ranges, from memory (not checked in a source): linear power of land
+# Typical ranges (common practice, no source): linear power of land
 # and water mostly in (0, 1.5] with a scene median of about 0.01-0.3
 # (-20 to -5 dB); dB mostly negative within about [-35, 5]; amplitude is the
 # square root of power, so its median sits at about 0.1-0.55.
@@ -79,7 +79,7 @@ def check_sar_units(
 
     Computes on a strided subsample.  Linear power is mostly in (0, 1.5] with
     a median of about 0.01-0.3; dB values are mostly negative within about
-    [-35, 5]; amplitude is ``sqrt(power)`` (ranges from memory, see
+    [-35, 5]; amplitude is ``sqrt(power)`` (ranges: common practice, no source; see
     :data:`SAR_UNIT_LIMITS`).
 
     Parameters

@@ -10,18 +10,18 @@ DI.  A pixel is inside the AOA when its DI is at most the threshold.
 
 Recipe used here (steps labelled as the project's check-value notes label them):
 
-1. standardise each predictor by the training mean and SD (from memory);
+1. standardise each predictor by the training mean and SD (not verified in the original);
 2. multiply by the predictor's importance weight (abstract, verified);
 3. ``d_k`` = Euclidean distance to the nearest training point; for a training
-   point only points in other CV folds count (abstract, verified; details from
-   memory);
+   point only points in other CV folds count (abstract, verified; details not
+   verified in the original);
 4. ``DI_k = d_k / d_bar`` with ``d_bar`` the **mean of all pairwise distances
-   between training points** (each unordered pair once).  From memory;
+   between training points** (each unordered pair once).  Not verified in the original;
    secondary descriptions differ (some describe the mean nearest-neighbour
    distance instead), so this normaliser is a stated choice;
 5. threshold = the largest training DI not above the upper whisker
    ``Q3 + 1.5 IQR`` (the "outlier-removed maximum", abstract verified; the
-   whisker rule is from memory).  Quartiles are numpy's default linear
+   whisker rule is common practice, no source).  Quartiles are numpy's default linear
    interpolation; Tukey's hinges (used by some boxplot implementations) can
    give a slightly different whisker on small samples.
 
@@ -137,7 +137,10 @@ def _cv_nearest(Z: np.ndarray, folds: np.ndarray) -> np.ndarray:
 
 
 def aoa_threshold(train_di: np.ndarray) -> float:
-    """Largest training DI not above the upper boxplot whisker ``Q3 + 1.5 IQR`` (rule from memory)."""
+    """Largest training DI not above the upper boxplot whisker ``Q3 + 1.5 IQR``.
+
+    The whisker rule is common practice, no source.
+    """
     q1, q3 = np.quantile(train_di, [0.25, 0.75])
     whisker = q3 + 1.5 * (q3 - q1)
     return float(train_di[train_di <= whisker].max())

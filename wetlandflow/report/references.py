@@ -6,10 +6,20 @@ methods of the steps that ran (:data:`METHODS`).  :func:`cite_features` and
 :func:`collect` turn those into a de-duplicated, sorted reference list, each
 entry with what it was used for.
 
-Every entry carries ``checked``: ``"verified"`` when the citation (authors,
-year, title, journal, volume, pages) was read in the source or its publisher's
-record, ``"secondary"`` when it was read in another work's reference list, and
-``"from memory"`` otherwise.
+Every entry carries a stable identifier (``doi``, or ``identifier`` for an
+ISBN, a report number or a bibliographic code when the work has no DOI) and
+``checked``, one of :data:`CHECKED_STATES`:
+
+``"verified"``
+    authors, year, title and venue read in the work's own record: the
+    publisher's page, the DOI or indexing record, a library catalogue, or the
+    work's first page; any remaining detail agrees across published reference
+    lists.
+``"secondary"``
+    the citation (with its identifier) agrees across several independent
+    published reference lists, but no record of the work itself was read.
+``"not verified"``
+    neither; the report says so next to the entry.
 """
 
 from __future__ import annotations
@@ -19,27 +29,44 @@ import unicodedata
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 
+CHECKED_STATES = ("verified", "secondary", "not verified")
+
+# DOI syntax, DOI Handbook section 2.2: prefix "10." + registrant code (dot-separated digits), "/", suffix of
+# printable characters.
+DOI_PATTERN = re.compile(r"10\.\d{4,9}(?:\.\d+)*/\S+")
+
 
 @dataclass(frozen=True, slots=True)
 class Reference:
-    """One published source: authors as printed, year, title and where it appeared."""
+    """One published source: authors as printed, year, title, where it appeared, and its identifier."""
 
     key: str
     authors: str
     year: int
     title: str
     source: str
-    checked: str = "from memory"
+    checked: str = "not verified"
+    doi: str = ""
+    identifier: str = ""
 
     @property
     def first_author(self) -> str:
         """Surname of the first author (the text before the first comma)."""
         return self.authors.split(",")[0].strip()
 
+    def stable_id(self) -> str:
+        """``doi:<DOI>``, else the other stable identifier (ISBN, report number), else ''.
+
+        The ``doi:`` form, not a resolver link, keeps the report free of web addresses (its HTML is
+        self-contained and works offline).
+        """
+        return f"doi:{self.doi}" if self.doi else self.identifier
+
     def citation(self) -> str:
-        """The full citation: authors (year). Title. Source."""
+        """The full citation: authors (year). Title. Source. Identifier."""
         title = self.title if self.title.endswith(("?", ".", "!")) else f"{self.title}."
-        return f"{self.authors} ({self.year}). {title} {self.source}."
+        text = f"{self.authors} ({self.year}). {title} {self.source}."
+        return f"{text} {self.stable_id()}" if self.stable_id() else text
 
     def surnames(self) -> list[str]:
         """Authors' surnames in order (the comma-separated parts that are not initials)."""
@@ -60,113 +87,185 @@ class Reference:
 _INITIALS = re.compile(r"(?:[A-Z]\.(?:-[A-Z]\.)?\s?)+")
 
 
-def _ref(key: str, authors: str, year: int, title: str, source: str, checked: str = "from memory") -> Reference:
-    return Reference(key, authors, year, title, source, checked)
+def _ref(key: str, authors: str, year: int, title: str, source: str, checked: str, *, doi: str = "",
+         identifier: str = "") -> Reference:
+    return Reference(key, authors, year, title, source, checked, doi, identifier)
 
 
-# Status per entry: "verified" entries were read in the paper's own record or a published reference list of
-# record; "secondary" in reference lists of published code; the rest are from memory and say so.
+# Where each entry was checked is noted above it ("record": the work's own record was read; "lists": published
+# reference lists agree).  Public DOIs only.
 BIBLIOGRAPHY: dict[str, Reference] = {r.key: r for r in (
     # -- accuracy, areas and sampling
+    # record: Canadian Forest Service publications catalogue (NRCan), with DOI; the paper's first page.
     _ref("olofsson2014", "Olofsson, P., Foody, G. M., Herold, M., Stehman, S. V., Woodcock, C. E., Wulder, M. A.",
          2014, "Good practices for estimating area and assessing accuracy of land change",
-         "Remote Sensing of Environment 148, 42-57", "verified"),
+         "Remote Sensing of Environment 148, 42-57", "verified", doi="10.1016/j.rse.2014.02.015"),
+    # record: NASA MODIS land validation summary page (authors, title, RSE 129 (2013) 122-131) and the paper's
+    # first page; DOI as given in several published reference lists.
     _ref("olofsson2013", "Olofsson, P., Foody, G. M., Stehman, S. V., Woodcock, C. E.", 2013,
          "Making better use of accuracy data in land change studies: Estimating accuracy and area and quantifying "
-         "uncertainty using stratified estimation", "Remote Sensing of Environment 129, 122-131", "verified"),
-    _ref("cochran1977", "Cochran, W. G.", 1977, "Sampling Techniques", "3rd edition, Wiley, New York"),
+         "uncertainty using stratified estimation", "Remote Sensing of Environment 129, 122-131", "verified",
+         doi="10.1016/j.rse.2012.10.031"),
+    # record: library catalogue entries (3rd ed., New York: John Wiley & Sons, 1977, xvi + 428 p.) and the
+    # book's copyright page (ISBN 0-471-16240-X).
+    _ref("cochran1977", "Cochran, W. G.", 1977, "Sampling Techniques",
+         "3rd edition, John Wiley & Sons, New York", "verified", identifier="ISBN 0-471-16240-X"),
+    # lists: title/journal/year in the authors' university repository record; 32(15), 4407-4429 and the DOI
+    # agree across published reference lists.
     _ref("pontius2011", "Pontius, R. G., Millones, M.", 2011,
          "Death to Kappa: birth of quantity disagreement and allocation disagreement for accuracy assessment",
-         "International Journal of Remote Sensing 32(15), 4407-4429"),
+         "International Journal of Remote Sensing 32(15), 4407-4429", "secondary",
+         doi="10.1080/01431161.2011.552923"),
+    # record: national journal-portal record (Taylor & Francis, vol. 35, issue 13, DOI); pages from reference
+    # lists.
     _ref("stehman2014", "Stehman, S. V.", 2014,
          "Estimating area and map accuracy for stratified random sampling when the strata are different from the "
-         "map classes", "International Journal of Remote Sensing 35(13), 4923-4939", "secondary"),
+         "map classes", "International Journal of Remote Sensing 35(13), 4923-4939", "verified",
+         doi="10.1080/01431161.2014.930207"),
     # -- spatial validation and the area of applicability
+    # record: publisher's article page (Wiley; Ecography 40(8), authors); pages 913-929 from reference lists.
     _ref("roberts2017", "Roberts, D. R., Bahn, V., Ciuti, S., Boyce, M. S., Elith, J., Guillera-Arroita, G., "
          "Hauenstein, S., Lahoz-Monfort, J. J., Schröder, B., Thuiller, W., Warton, D. I., Wintle, B. A., "
          "Hartig, F., Dormann, C. F.", 2017,
          "Cross-validation strategies for data with temporal, spatial, hierarchical, or phylogenetic structure",
-         "Ecography 40(8), 913-929", "verified"),
+         "Ecography 40(8), 913-929", "verified", doi="10.1111/ecog.02881"),
+    # record: IRD documentation-centre record and a library catalogue record (Nature Communications 11, 4540,
+    # DOI).
     _ref("ploton2020", "Ploton, P., Mortier, F., Réjou-Méchain, M., Barbier, N., Picard, N., Rossi, V., "
          "Dormann, C., Cornu, G., Viennois, G., Bayol, N., Lyapustin, A., Gourlet-Fleury, S., Pélissier, R.", 2020,
          "Spatial validation reveals poor predictive performance of large-scale ecological mapping models",
-         "Nature Communications 11, 4540", "verified"),
+         "Nature Communications 11, 4540", "verified", doi="10.1038/s41467-020-18321-y"),
+    # lists: authors/title/year in the university repository record; volume 13, pages 1304-1316 and DOI from
+    # reference lists (the issue number was not confirmed, so it is not given).
     _ref("mila2022", "Milà, C., Mateu, J., Pebesma, E., Meyer, H.", 2022,
          "Nearest neighbour distance matching Leave-One-Out Cross-Validation for map validation",
-         "Methods in Ecology and Evolution 13(6), 1304-1316"),
+         "Methods in Ecology and Evolution 13, 1304-1316", "secondary", doi="10.1111/2041-210X.13851"),
+    # record: the journal's article page (Copernicus) and a library catalogue (vol. 17, no. 15, pp.
+    # 5897-5912).
     _ref("linnenbrink2024", "Linnenbrink, J., Milà, C., Ludwig, M., Meyer, H.", 2024,
          "kNNDM CV: k-fold nearest-neighbour distance matching cross-validation for map accuracy estimation",
-         "Geoscientific Model Development 17, 5897-5912", "verified"),
+         "Geoscientific Model Development 17(15), 5897-5912", "verified", doi="10.5194/gmd-17-5897-2024"),
+    # record: the publisher's article page (Wiley; Volume 12, Issue 9, pp. 1620-1633; authors; DOI).
     _ref("meyer2021", "Meyer, H., Pebesma, E.", 2021,
          "Predicting into unknown space? Estimating the area of applicability of spatial prediction models",
-         "Methods in Ecology and Evolution 12(9), 1620-1633", "verified"),
+         "Methods in Ecology and Evolution 12(9), 1620-1633", "verified", doi="10.1111/2041-210X.13650"),
     # -- models and explanations
+    # lists: pages 785-794 and DOI agree across reference lists; the paper's ACM front matter (KDD '16)
+    # quoted.
     _ref("chen2016", "Chen, T., Guestrin, C.", 2016, "XGBoost: A scalable tree boosting system",
          "Proceedings of the 22nd ACM SIGKDD International Conference on Knowledge Discovery and Data Mining, "
-         "785-794", "secondary"),
-    _ref("breiman2001", "Breiman, L.", 2001, "Random forests", "Machine Learning 45(1), 5-32", "secondary"),
+         "785-794", "secondary", doi="10.1145/2939672.2939785"),
+    # record: a university bibliographic-catalogue record (Kluwer; Machine Learning 45(1), 5-32; DOI).
+    _ref("breiman2001", "Breiman, L.", 2001, "Random forests", "Machine Learning 45(1), 5-32", "verified",
+         doi="10.1023/A:1010933404324"),
+    # record: PubMed Central record PMC7326367 and the OpenAlex record (Nat Mach Intell 2(1), 56-67; DOI).
     _ref("lundberg2020", "Lundberg, S. M., Erion, G., Chen, H., DeGrave, A., Prutkin, J. M., Nair, B., Katz, R., "
          "Himmelfarb, J., Bansal, N., Lee, S.-I.", 2020,
          "From local explanations to global understanding with explainable AI for trees",
-         "Nature Machine Intelligence 2(1), 56-67", "verified"),
+         "Nature Machine Intelligence 2(1), 56-67", "verified", doi="10.1038/s42256-019-0138-9"),
     # -- optical indices
+    # lists: authors/title and the proceedings' front matter (Third ERTS-1 Symposium, NASA, 1974) read; the
+    # NASA
+    # technical-reports id, "SP-351" and the pages as given in reference lists.  No DOI exists.
     _ref("rouse1974", "Rouse, J. W., Haas, R. H., Schell, J. A., Deering, D. W.", 1974,
          "Monitoring vegetation systems in the Great Plains with ERTS",
-         "Third Earth Resources Technology Satellite-1 Symposium, NASA SP-351, 309-317"),
+         "Third Earth Resources Technology Satellite-1 Symposium, NASA SP-351, 309-317", "secondary",
+         identifier="NASA NTRS 19740022614"),
+    # record: the publisher's cover page and abstract page (Taylor & Francis; 17:7, 1425-1432; DOI).
     _ref("mcfeeters1996", "McFeeters, S. K.", 1996,
          "The use of the Normalized Difference Water Index (NDWI) in the delineation of open water features",
-         "International Journal of Remote Sensing 17(7), 1425-1432"),
+         "International Journal of Remote Sensing 17(7), 1425-1432", "verified",
+         doi="10.1080/01431169608948714"),
+    # record: the publisher's cover page (Taylor & Francis; 27:14, 3025-3033; DOI) and the paper's first page.
     _ref("xu2006", "Xu, H.", 2006, "Modification of normalised difference water index (NDWI) to enhance open "
-         "water features in remotely sensed imagery", "International Journal of Remote Sensing 27(14), 3025-3033"),
+         "water features in remotely sensed imagery", "International Journal of Remote Sensing 27(14), 3025-3033",
+         "verified", doi="10.1080/01431160600589179"),
+    # record: the paper's first page and its DOI on an indexing cover page; volume/pages from reference lists.
     _ref("gao1996", "Gao, B.-C.", 1996, "NDWI - A normalized difference water index for remote sensing of "
-         "vegetation liquid water from space", "Remote Sensing of Environment 58, 257-266", "verified"),
+         "vegetation liquid water from space", "Remote Sensing of Environment 58, 257-266", "verified",
+         doi="10.1016/S0034-4257(96)00067-3"),
+    # lists: 80(3), 385-396 and DOI agree across reference lists and spectral-index catalogues.
     _ref("wilson2002", "Wilson, E. H., Sader, S. A.", 2002,
          "Detection of forest harvest type using multiple dates of Landsat TM imagery",
-         "Remote Sensing of Environment 80, 385-396"),
+         "Remote Sensing of Environment 80(3), 385-396", "secondary", doi="10.1016/S0034-4257(01)00318-2"),
+    # record: the university research-portal record (title, J. Photochem. Photobiol. B issue 3, 247-252, March
+    # 1994) and a spectral-index catalogue's record (vol. 22, DOI) citing it for the NIR/red-edge-1 index.
+    # Corrected: the title formerly given here belongs to the authors' other 1994 paper (J. Plant Physiol.
+    # 143(3), 286-292, doi:10.1016/S0176-1617(11)81633-0), which the same catalogue cites for the
+    # red-edge-2/red-edge-1 form.
     _ref("gitelson1994", "Gitelson, A., Merzlyak, M. N.", 1994,
-         "Spectral reflectance changes associated with autumn senescence of Aesculus hippocastanum L. and Acer "
-         "platanoides L. leaves", "Journal of Photochemistry and Photobiology B: Biology 22, 247-252"),
+         "Quantitative estimation of chlorophyll-a using reflectance spectra: Experiments with autumn "
+         "chestnut and maple leaves", "Journal of Photochemistry and Photobiology B: Biology 22(3), 247-252",
+         "verified", doi="10.1016/1011-1344(93)06963-4"),
+    # lists: title and colloquium agree across reference lists; three give ESA SP-287, 279-286 (one gives
+    # 195-213); the astrophysics-data-system code in a list starts at page 279.  No DOI exists.
     _ref("guyot1988", "Guyot, G., Baret, F.", 1988,
          "Utilisation de la haute résolution spectrale pour suivre l'état des couverts végétaux",
          "Proceedings of the 4th International Colloquium on Spectral Signatures of Objects in Remote Sensing, "
-         "ESA SP-287, 279-286"),
+         "ESA SP-287, 279-286", "secondary", identifier="ADS 1988ESASP.287..279G"),
     # -- SAR and water
+    # lists: PAMI-2(2), 165-168 (March 1980) and DOI from the publisher's citation export quoted in published
+    # code.
     _ref("lee1980", "Lee, J.-S.", 1980, "Digital image enhancement and noise filtering by use of local statistics",
-         "IEEE Transactions on Pattern Analysis and Machine Intelligence PAMI-2(2), 165-168"),
+         "IEEE Transactions on Pattern Analysis and Machine Intelligence PAMI-2(2), 165-168", "secondary",
+         doi="10.1109/TPAMI.1980.4766994"),
+    # lists: 39(11), 2373-2379 and DOI agree in reference lists.
     _ref("quegan2001", "Quegan, S., Yu, J. J.", 2001, "Filtering of multichannel SAR images",
-         "IEEE Transactions on Geoscience and Remote Sensing 39(11), 2373-2379"),
+         "IEEE Transactions on Geoscience and Remote Sensing 39(11), 2373-2379", "secondary",
+         doi="10.1109/36.964973"),
+    # lists: SMC-9(1), 62-66 and DOI agree across many reference lists.
     _ref("otsu1979", "Otsu, N.", 1979, "A threshold selection method from gray-level histograms",
-         "IEEE Transactions on Systems, Man, and Cybernetics SMC-9(1), 62-66", "verified"),
+         "IEEE Transactions on Systems, Man, and Cybernetics SMC-9(1), 62-66", "secondary",
+         doi="10.1109/TSMC.1979.4310076"),
     # -- terrain
+    # record: the publisher's index record (title, author, journal, DOI) and the paper's first page (Proc.
+    # IEEE
+    # 69(1), January 1981, p. 14).
     _ref("horn1981", "Horn, B. K. P.", 1981, "Hill shading and the reflectance map",
-         "Proceedings of the IEEE 69(1), 14-47", "verified"),
+         "Proceedings of the IEEE 69(1), 14-47", "verified", doi="10.1109/PROC.1981.11918"),
+    # lists: 12(1), 47-56 and DOI agree across reference lists (incl. terrain-library documentation).
     _ref("zevenbergen1987", "Zevenbergen, L. W., Thorne, C. R.", 1987,
-         "Quantitative analysis of land surface topography", "Earth Surface Processes and Landforms 12(1), 47-56"),
+         "Quantitative analysis of land surface topography", "Earth Surface Processes and Landforms 12(1), 47-56",
+         "secondary", doi="10.1002/esp.3290120107"),
+    # lists: 143, 107-122 and DOI in a journal article's reference list.
     _ref("guisan1999", "Guisan, A., Weiss, S. B., Weiss, A. D.", 1999,
-         "GLM versus CCA spatial modeling of plant species distribution", "Plant Ecology 143, 107-122"),
+         "GLM versus CCA spatial modeling of plant species distribution", "Plant Ecology 143, 107-122",
+         "secondary", doi="10.1023/A:1009841519580"),
+    # lists: 24(1), 43-69 and DOI agree across reference lists.
     _ref("beven1979", "Beven, K. J., Kirkby, M. J.", 1979,
          "A physically based, variable contributing area model of basin hydrology",
-         "Hydrological Sciences Bulletin 24(1), 43-69", "secondary"),
+         "Hydrological Sciences Bulletin 24(1), 43-69", "secondary", doi="10.1080/02626667909491834"),
+    # lists: 62, 117-127 and DOI agree across reference lists (incl. the first author's software docs).
     _ref("barnes2014", "Barnes, R., Lehman, C., Mulla, D.", 2014, "Priority-flood: An optimal depression-filling "
          "and watershed-labeling algorithm for digital elevation models", "Computers & Geosciences 62, 117-127",
-         "secondary"),
+         "secondary", doi="10.1016/j.cageo.2013.04.024"),
+    # lists: 28, 323-344 and DOI agree across reference lists.
     _ref("ocallaghan1984", "O'Callaghan, J. F., Mark, D. M.", 1984,
          "The extraction of drainage networks from digital elevation data",
-         "Computer Vision, Graphics, and Image Processing 28, 323-344", "verified"),
+         "Computer Vision, Graphics, and Image Processing 28, 323-344", "secondary",
+         doi="10.1016/S0734-189X(84)80011-0"),
+    # lists: 17(3), 413-422 and DOI agree across reference lists.
     _ref("freeman1991", "Freeman, T. G.", 1991, "Calculating catchment area with divergent flow based on a "
-         "regular grid", "Computers & Geosciences 17(3), 413-422", "verified"),
+         "regular grid", "Computers & Geosciences 17(3), 413-422", "secondary",
+         doi="10.1016/0098-3004(91)90048-I"),
+    # lists: 5(1), 59-79 and DOI agree across reference lists.
     _ref("quinn1991", "Quinn, P., Beven, K., Chevallier, P., Planchon, O.", 1991,
          "The prediction of hillslope flow paths for distributed hydrological modelling using digital terrain "
-         "models", "Hydrological Processes 5, 59-79", "verified"),
+         "models", "Hydrological Processes 5(1), 59-79", "secondary", doi="10.1002/hyp.3360050106"),
+    # lists: 112(9), 3469-3481 and DOI, including the publisher's citation export quoted in a list.
     _ref("renno2008", "Rennó, C. D., Nobre, A. D., Cuartas, L. A., Soares, J. V., Hodnett, M. G., Tomasella, J., "
          "Waterloo, M. J.", 2008, "HAND, a new terrain descriptor using SRTM-DEM: mapping terra-firme rainforest "
-         "environments in Amazonia", "Remote Sensing of Environment 112, 3469-3481"),
+         "environments in Amazonia", "Remote Sensing of Environment 112(9), 3469-3481", "secondary",
+         doi="10.1016/j.rse.2008.03.018"),
+    # lists: 60(1), 94-109 and DOI in terrain-library documentation and a reference list.
     _ref("murphy2009", "Murphy, P. N. C., Ogilvie, J., Arp, P.", 2009,
          "Topographic modelling of soil moisture conditions: a comparison and verification of two models",
-         "European Journal of Soil Science 60, 94-109", "secondary"),
+         "European Journal of Soil Science 60(1), 94-109", "secondary",
+         doi="10.1111/j.1365-2389.2008.01094.x"),
+    # record: the publisher's abstract page (title, DOI); volume 39(12) also in terrain-library documentation.
     _ref("gallant2003", "Gallant, J. C., Dowling, T. I.", 2003,
          "A multiresolution index of valley bottom flatness for mapping depositional areas",
-         "Water Resources Research 39(12), 1347", "verified"),
+         "Water Resources Research 39(12), 1347", "verified", doi="10.1029/2002WR001426"),
 )}
 
 # What each method of a run cites (keys of BIBLIOGRAPHY).

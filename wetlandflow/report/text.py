@@ -803,12 +803,22 @@ def section_references(run: RunFolder) -> Section:
         return Section("References", [Paragraph("The run used no method with a published source.")])
     items = []
     for c in entries:
-        mark = " [citation details from memory]" if c.reference is not None and c.reference.checked == \
-            "from memory" else ""
-        recorded = "" if c.reference is not None else " [as recorded with the feature]"
-        items.append(f"{c.text}{mark}{recorded} Used for: {_uses(c.used_for)}.")
-    return Section("References", [Paragraph("Sources of the methods this run used, as cited above."),
-                                  Bullets(tuple(items))])
+        mark = _RECORDED_MARK if c.reference is None else \
+            _CHECK_MARKS.get(c.reference.checked, _CHECK_MARKS["not verified"])
+        items.append(f"{c.text}{mark} Used for: {_uses(c.used_for)}.")
+    return Section("References", [Paragraph(_REFERENCES_NOTE), Bullets(tuple(items))])
+
+
+# How each reference's ``checked`` status reads in the list (see wetlandflow.report.references).
+_CHECK_MARKS = {
+    "verified": "",
+    "secondary": " [not verified in the original; details as given in published reference lists]",
+    "not verified": " [not verified in the original]",
+}
+_RECORDED_MARK = " [as recorded with the feature; not verified in the original]"
+_REFERENCES_NOTE = (
+    "Sources of the methods this run used, as cited above. Unmarked entries were checked in the work's own "
+    "record (publisher, DOI or catalogue record); marked entries say how far they were checked.")
 
 
 def _uses(used_for: list[str]) -> str:

@@ -8,7 +8,7 @@ Conventions
 -----------
 * Jeffries-Matusita (JM) is returned on the **[0, 2] scale**,
   ``JM = 2 (1 - exp(-B))``, the form many remote-sensing texts use (where
-  JM > 1.9 is read as good separability, a reading from memory).  The square
+  JM > 1.9 is read as good separability: common practice, no source).  The square
   root form ``sqrt(2 (1 - exp(-B)))`` ranges over [0, sqrt(2)]; ask for it with
   ``jm_scale="0-sqrt2"``.
 * Transformed divergence is on [0, 2000]: ``TD = 2000 (1 - exp(-D / 8))``.
@@ -22,15 +22,15 @@ References
 ----------
 Swain, P. H., Davis, S. M. (eds.) (1978). Remote Sensing: The Quantitative
 Approach. McGraw-Hill (transformed divergence; the D and TD formulas here are
-from memory of that source).
+not verified against that source).
 Kaufman, Y. J., Remer, L. A. (1994). Detection of forests using mid-IR
 reflectance: an application for aerosol studies. IEEE Transactions on
 Geoscience and Remote Sensing 32(3), 672-683 (M statistic; citation details
-from memory).
+not verified in the original).
 
 The Bhattacharyya formula for Gaussians and the sqrt JM form were checked in a
-source; the [0, 2] JM form and the usual cut-offs (JM 1.9, TD 1900 / 1700) are
-from memory.
+source; the [0, 2] JM form is not verified in a source, and the usual cut-offs
+(JM 1.9, TD 1900 / 1700) are common practice, no source.
 """
 
 from __future__ import annotations
@@ -285,7 +285,7 @@ def separability_by_feature(
 
 
 def _default_threshold(sep: pd.DataFrame) -> float:
-    """Usual 'good separability' cut-offs (readings from memory, see the module notes).
+    """Usual 'good separability' cut-offs (common practice, no source; see the module notes).
 
     JM 1.9 on [0, 2] (sqrt(1.9) on [0, sqrt 2]); TD 1900; M 1; for B, ln 20,
     the B at which JM = 1.9.
@@ -302,7 +302,7 @@ def hard_pairs(sep_matrix: pd.DataFrame, threshold: float | None = None) -> list
     """Class pairs scoring below ``threshold``, hardest first.
 
     ``threshold`` defaults to the measure's usual "good separability" cut-off
-    (readings from memory): JM 1.9 on [0, 2] (sqrt 1.9 on [0, sqrt 2]), TD
+    (common practice, no source): JM 1.9 on [0, 2] (sqrt 1.9 on [0, sqrt 2]), TD
     1900, M 1, and for B ln 20 (the B at which JM = 1.9).  Pairs with NaN
     scores are not listed.
 

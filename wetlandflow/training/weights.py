@@ -34,11 +34,11 @@ References
 ----------
 King, G., Zeng, L. (2001). Logistic regression in rare events data.
 Political Analysis 9(2), 137-163 (the "balanced" weights n / (K n_c), as
-in scikit-learn's ``compute_sample_weight``; citation from memory).
+in scikit-learn's ``compute_sample_weight``; citation not verified in the original).
 
 Saerens, M., Latinne, P., Decaestecker, C. (2002). Adjusting the outputs of a
 classifier to new a priori probabilities: a simple procedure. Neural
-Computation 14(1), 21-41 (citation from memory).
+Computation 14(1), 21-41 (citation not verified in the original).
 
 Olofsson, P., Foody, G. M., Herold, M., Stehman, S. V., Woodcock, C. E.,
 Wulder, M. A. (2014). Good practices for estimating area and assessing
@@ -295,7 +295,7 @@ def weight_summary(y: ArrayLike, plots: ArrayLike | None, weights: ArrayLike) ->
     """Per class: samples, plots, weight share, the largest plot's share and the effective number of plots.
 
     The effective number of plots is Kish's ``(sum W_p)^2 / sum W_p^2`` over
-    plot totals ``W_p`` (Kish 1965, Survey Sampling; from memory): it equals
+    plot totals ``W_p`` (Kish 1965, Survey Sampling; not verified in the original): it equals
     the plot count when plots weigh the same and drops towards 1 when one
     plot dominates.
 

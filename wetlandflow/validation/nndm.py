@@ -16,16 +16,16 @@ References
 ----------
 Milà, C., Mateu, J., Pebesma, E., Meyer, H. (2022). Nearest neighbour distance
 matching Leave-One-Out Cross-Validation for map validation. Methods in Ecology
-and Evolution 13(6), 1304-1316. doi:10.1111/2041-210X.13851 (volume, pages
-and DOI from memory; the matching idea and the min_train = 0.5 default are as
+and Evolution 13, 1304-1316. doi:10.1111/2041-210X.13851 (volume, pages
+and DOI checked in published reference lists; the matching idea and the min_train = 0.5 default are as
 the paper describes them).
 Linnenbrink, J., Milà, C., Ludwig, M., Meyer, H. (2024). kNNDM CV: k-fold
 nearest-neighbour distance matching cross-validation for map accuracy
 estimation. Geoscientific Model Development 17, 5897-5912.
 doi:10.5194/gmd-17-5897-2024
 
-Details not taken from the papers' text but from memory of their reference
-implementation, and marked so where used: the step rule of the NNDM loop, the
+Details not taken from the papers' text but recalled from their reference
+implementation (not verified against it), and marked so where used: the step rule of the NNDM loop, the
 log-spaced grid of candidate cluster numbers, the merging of clusters into
 folds along the first principal axis, and the Kolmogorov-Smirnov shortcut to
 random k-fold when the training data are not clustered.
@@ -193,7 +193,7 @@ def _nndm_kernel(sorted_d, gij_sorted, phi, min_train):
     """Grow each unit's exclusion radius until the NN-distance ECDFs match.
 
     Follows the iteration described by Milà et al. (2022) (details of the loop
-    from memory of the reference implementation): visit the unit with the
+    recalled from the reference implementation, not verified): visit the unit with the
     smallest current CV distance r; if the CV ECDF at r exceeds the prediction
     ECDF at r, exclude that unit's nearest remaining neighbour(s) from its
     training set (keeping more than ``min_train`` of the units), otherwise move
@@ -403,8 +403,8 @@ def _merge_clusters(labels: np.ndarray, xy: np.ndarray, sizes: np.ndarray, k: in
 
     Clusters holding at least 1/k of the samples keep a fold of their own; the
     rest are dealt round-robin, in order of their centroid on the first
-    principal axis, to the remaining folds (merging rule from memory of the
-    kNNDM reference implementation).  None when no valid merge exists.
+    principal axis, to the remaining folds (merging rule recalled from the
+    kNNDM reference implementation, not verified).  None when no valid merge exists.
     """
     _, lab = np.unique(labels, return_inverse=True)
     n_cl = lab.max() + 1
@@ -474,7 +474,7 @@ def knndm_folds(
         If a one-sided Kolmogorov-Smirnov test does not find the training
         NN distances stochastically smaller than the prediction distances
         (p >= 0.05), return random k-fold instead, as the reference
-        implementation does (from memory).
+        implementation does (recalled, not verified).
     random_state : int, optional
     max_points : int, default 3000
 

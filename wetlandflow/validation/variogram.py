@@ -137,7 +137,7 @@ def suggest_block_size(
     """Block size from the autocorrelation range of a variable.
 
     Roberts et al. (2017) advise blocks larger than the range of spatial
-    autocorrelation of the model residuals (block-size advice from memory).
+    autocorrelation of the model residuals (block-size advice not verified in the original).
     Fit the variogram of the residuals of a first model where you can; before
     modelling, a key feature or the first principal component of the features
     is a proxy.
