@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import contextlib
 import datetime as dt
+import errno
 import json
 import os
 import socket
@@ -144,7 +145,9 @@ def run_folder_lock(run_dir: str | Path, command: str) -> Iterator[dict[str, str
         names the folder, the holder (host, PID, command, start time) and what to do.
     """
     folder = Path(run_dir).resolve()
-    folder.mkdir(parents=True, exist_ok=True)
+    if not folder.is_dir():  # nothing to protect yet: the command reports the missing folder itself
+        yield {}
+        return
     me = threading.get_ident()
     with _held_guard:
         owner = _held.get(folder)
@@ -164,7 +167,15 @@ def run_folder_lock(run_dir: str | Path, command: str) -> Iterator[dict[str, str
                 _held[folder] = (thread, depth - 1)
         return
 
-    record = _acquire(folder, command)
+    try:
+        record = _acquire(folder, command)
+    except OSError as exc:
+        if isinstance(exc, RunFolderLocked) or exc.errno not in (errno.EACCES, errno.EPERM, errno.EROFS):
+            raise
+        record = None
+    if record is None:  # a read-only run folder: nobody can write it, so there is nothing to lock
+        yield {}
+        return
     with _held_guard:
         _held[folder] = (me, 1)
     try:
