@@ -257,6 +257,41 @@ def disk_full_error(exc: BaseException, folder: str | Path | None, *, path: str 
     return error
 
 
+def file_size_limit() -> int | None:
+    """This process's limit on the size of a file it writes (``ulimit -f``, RLIMIT_FSIZE), or None."""
+    try:
+        import resource
+    except ImportError:  # pragma: no cover - not POSIX
+        return None
+    soft, _ = resource.getrlimit(resource.RLIMIT_FSIZE)
+    return None if soft == resource.RLIM_INFINITY else int(soft)
+
+
+def check_file_size_limit(folder: str | Path, sizes: dict[str, int], *, step: str) -> None:
+    """Refuse, before writing, a file that would outgrow the file-size limit (``ulimit -f``).
+
+    GDAL reports a failed block write of a GeoTIFF only on standard error, not to the caller, so a map
+    cut short by the limit would otherwise pass unseen: the run checks its largest rasters first.
+    ``sizes`` maps each file (relative to ``folder``) to the bytes it needs.
+    """
+    limit = file_size_limit()
+    if limit is None:
+        return
+    over = {name: n for name, n in sizes.items() if n > limit}
+    if not over:
+        return
+    name, needed = max(over.items(), key=lambda kv: kv[1])
+    folder = Path(folder)
+    error = OutputError(
+        f"could not write {folder / name} in step '{step}': it needs about {needed / 1e6:.1f} MB, above the "
+        f"file-size limit of this process ({limit / 1e6:.1f} MB, `ulimit -f`); {_free_space(folder)} free on "
+        f"the disk of {folder}. Raise the file-size limit (`ulimit -f unlimited` in the shell that starts "
+        f"the run), or write the run folder from a process without that limit; steps already finished are kept and a rerun resumes after them", path=str(folder / name))
+    error.disk_full = {"path": str(folder / name), "folder": str(folder), "step": step,
+                       "reason": "file-size limit", "free": _free_space(folder)}
+    raise error
+
+
 def check_disk_space(folder: str | Path, needed_bytes: int) -> None:
     """Refuse to start writing when the disk has less room than the outputs need."""
     free = shutil.disk_usage(Path(folder)).free

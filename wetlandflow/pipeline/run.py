@@ -24,6 +24,7 @@ from .. import CAUTION, __version__
 from ..errors import Cancelled, ProjectFileError
 from ..features.cube import build_cube, open_cube, save_cube, season_coverage
 from ..inputs.io import (
+    check_file_size_limit,
     check_writable,
     disk_full_error,
     fingerprint,
@@ -528,6 +529,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     map_uses = [model_dir, zarr_path] + ([vdir] if applicability else [])
     if not manifest.reusable("mapping", k_map, list(map_paths.values()), uses=map_uses):
         with manifest.step("mapping", k_map, outputs=list(map_paths.values()), uses=map_uses) as rec:
+            check_file_size_limit(run_dir, staged_map_sizes(grid, len(project.classes.names)), step="mapping")
             aoa_model = None
             if applicability:
                 aoa_model = applicability_model(model, samples, features, folds)
@@ -711,6 +713,13 @@ def _set_aside_stale_assessment(run_dir: Path) -> str | None:
     target = run_dir / f"accuracy_stale_{stamp}"
     acc.rename(target)
     return target.name
+
+
+def staged_map_sizes(grid, n_classes: int) -> dict[str, int]:
+    """Bytes of the largest staged map files (uncompressed 256 x 256 tiles: probability and confidence)."""
+    tiles = -(-grid.height // 256) * -(-grid.width // 256) * 256 * 256
+    return {"maps/.stage/probability.tif": tiles * n_classes * 4 + (1 << 16),
+            "maps/.stage/confidence.tif": tiles * 3 * 4 + (1 << 16)}
 
 
 def raster_data_sha256(path: Path) -> str:
