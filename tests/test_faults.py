@@ -184,3 +184,45 @@ def read_grid(run_dir: Path):
     from wetlandflow.inputs.grid import Grid
 
     return Grid.from_dict(json.loads((run_dir / "manifest.json").read_text())["steps"]["inputs"]["grid"])
+
+
+# -- a disk that fills: the file-size limit (ulimit -f) in a subprocess -------------------------------------
+def _limited_run(folder: Path, project: str, limit_bytes: int) -> subprocess.CompletedProcess:
+    """``wetlandflow run`` in a child whose files may not grow beyond ``limit_bytes`` (RLIMIT_FSIZE).
+
+    SIGXFSZ is ignored in the child (as CPython does by default), so that a write beyond the limit fails
+    with ``OSError: [Errno 27] File too large`` instead of killing the process, as on a full disk (ENOSPC).
+    """
+    import resource
+
+    def limit() -> None:
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+        resource.setrlimit(resource.RLIMIT_FSIZE, (limit_bytes, limit_bytes))
+
+    return subprocess.run([sys.executable, "-m", "wetlandflow.ui.cli", "run", "--quiet", project], cwd=folder,
+                          preexec_fn=limit, capture_output=True, text=True, timeout=600)
+
+
+@pytest.mark.skipif(not hasattr(signal, "SIGXFSZ"), reason="needs POSIX resource limits")
+def test_a_full_disk_names_the_file_the_step_and_the_free_space(tmp_path):
+    from test_lock import light_copy
+
+    project = light_copy(tmp_path)
+    run_dir = tmp_path / "runs" / "light"
+
+    # 100 kB: the cube's chunks fit, the samples table (about 330 kB) does not; pyarrow raises EFBIG.
+    # 400 kB (rerun): the samples fit now; the map stage (uncompressed 256 x 256 tiles) would not, and
+    # GDAL only prints a failed block write, so the run refuses before writing it.
+    for limit, step, file in ((100_000, "samples", "samples.parquet"),
+                              (400_000, "mapping", "maps/.stage/probability.tif")):
+        proc = _limited_run(tmp_path, project.name, limit)
+        message = proc.stderr.strip()
+        assert proc.returncode == 2, message
+        assert message.count("\n") == 0 and "Traceback" not in message and "unexpected" not in message
+        assert f"could not write {run_dir / file} in step '{step}'" in message, message
+        assert "free on the disk of" in message and "ulimit -f" in message
+        record = json.loads((run_dir / "manifest.json").read_text())["steps"][step]
+        assert record["status"] == "failed" and record["error"].startswith("OutputError: could not write")
+    assert not (run_dir / "maps" / "probability.tif").exists() and not leftovers(run_dir)
+    steps = json.loads((run_dir / "manifest.json").read_text())["steps"]
+    assert steps["samples"]["status"] == "done" and steps["features"].get("reused")

@@ -65,7 +65,22 @@ class ModelError(WetlandflowError, ValueError):
 
 
 class OutputError(WetlandflowError, OSError):
-    """Outputs cannot be written (folder not writable, not enough disk)."""
+    """Outputs cannot be written (folder not writable, not enough disk).
+
+    ``path`` names the file or folder concerned when known.
+    """
+
+    def __init__(self, message: str, *, path: str | None = None):
+        self.path = path
+        super().__init__(message)
+
+
+class RunFolderLocked(OutputError):
+    """Another command holds the run folder's lock (``holder``: its host, PID, command and start time)."""
+
+    def __init__(self, message: str, *, path: str | None = None, holder=None):
+        self.holder = holder
+        super().__init__(message, path=path)
 
 
 class BudgetError(WetlandflowError, MemoryError):

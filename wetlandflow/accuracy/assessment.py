@@ -39,6 +39,60 @@ ACCURACY_DIR = "accuracy"
 # these defaults are a rule of thumb: common practice, no source).
 DEFAULT_EXPECTED_USERS = 0.8
 
+# The columns of the run's areas.csv, in order, before and after an assessment: a script reading it by
+# column works at every stage.  The mapped columns come from the final map's pixel counts (biased by the
+# map's errors); the error-adjusted ones (Olofsson et al. 2014) stay empty until `assess` fills them.
+MAPPED_AREA_COLUMNS = ("class", "pixels", "mapped_area_ha", "mapped_share")
+ADJUSTED_AREA_COLUMNS = ("estimated_proportion", "se_proportion", "estimated_area_ha", "se_area_ha",
+                         "ci_low_ha", "ci_high_ha", "ci_half_width_ha", "confidence")
+AREAS_COLUMNS = MAPPED_AREA_COLUMNS + ADJUSTED_AREA_COLUMNS
+
+
+def areas_table(mapped: pd.DataFrame, adjusted: pd.DataFrame | None = None, *,
+                confidence: float | None = None) -> pd.DataFrame:
+    """The run's ``areas.csv``: the columns :data:`AREAS_COLUMNS`, the same before and after an assessment.
+
+    Parameters
+    ----------
+    mapped : pandas.DataFrame
+        ``class``, ``pixels``, ``mapped_area_ha``, ``mapped_share`` per class of the final map
+        (:func:`wetlandflow.mapping.predict.class_areas`).
+    adjusted : pandas.DataFrame, optional
+        An assessment's area table (``accuracy/area_table.csv``); without it the error-adjusted columns
+        are empty (NaN).
+    confidence : float, optional
+        The confidence level of the assessment's intervals (filled only with ``adjusted``).
+
+    Raises
+    ------
+    ValidationDesignError
+        When ``adjusted`` does not list the same classes as ``mapped``.
+    """
+    table = mapped.loc[:, list(MAPPED_AREA_COLUMNS)].reset_index(drop=True)
+    for col in ADJUSTED_AREA_COLUMNS:
+        table[col] = np.nan
+    if adjusted is None:
+        return table
+    adj = adjusted.set_index("class")
+    if set(adj.index.astype(str)) != set(table["class"].astype(str)):
+        raise ValidationDesignError(
+            f"the assessment's area table lists the classes {sorted(map(str, adj.index))}, the final map "
+            f"{sorted(map(str, table['class']))}; assess the sample against this run's final map again")
+    adj = adj.reindex(table["class"])
+    for col in ADJUSTED_AREA_COLUMNS[:-1]:
+        table[col] = adj[col].to_numpy(np.float64)
+    table["confidence"] = np.nan if confidence is None else float(confidence)
+    return table
+
+
+def mapped_areas(class_map: xr.DataArray, codes: Mapping[int, str], pixel_area_m2: float) -> pd.DataFrame:
+    """``class``, ``pixels``, ``mapped_area_ha``, ``mapped_share`` of a class map (codes 1..K, 0 = no data),
+    computed as :func:`wetlandflow.mapping.predict.class_areas` computes them from the file."""
+    values = np.asarray(class_map.values).astype(np.int64).ravel()
+    px = np.bincount(values[(values >= 0) & (values <= max(codes))], minlength=max(codes) + 1)[1:]
+    return pd.DataFrame({"class": [codes[c] for c in sorted(codes)], "pixels": px,
+                         "mapped_area_ha": px * pixel_area_m2 / 1e4, "mapped_share": px / max(px.sum(), 1)})
+
 
 def _project(project: Project | str | Path) -> Project:
     return project if isinstance(project, Project) else load_project(project)
@@ -132,8 +186,8 @@ def assess(project: Project | str | Path, labelled: str | Path, *, design: str =
     Writes ``accuracy/area_table.csv``, ``accuracy/accuracy_table.csv`` (user's, producer's, F1 with SE
     and CI), ``accuracy/proportion_matrix.csv``, ``accuracy/summary.json`` (overall accuracy, disagreement,
     notes, caution), the same tables at the level of the scheme's parent groups (``accuracy/grouped_*``),
-    figures ``error_matrix.png`` and ``areas.png``, and rewrites the run's ``areas.csv`` with mapped and
-    error-adjusted areas and their confidence intervals.
+    figures ``error_matrix.png`` and ``areas.png``, and fills the error-adjusted columns of the run's
+    ``areas.csv`` (its columns stay :data:`AREAS_COLUMNS`; see :func:`areas_table`).
     """
     from .estimators import plot_areas, plot_error_matrix
     from .sampling import estimates_from_sample, read_labelled_sample
@@ -160,7 +214,9 @@ def assess(project: Project | str | Path, labelled: str | Path, *, design: str =
                       ("areas.png", plot_areas(result))):
         write_figure(fig, out / name)
         plt.close(fig)
-    write_table(result.area_table, p.run_dir / "areas.csv")
+    dx, dy = (float(v) for v in cmap.rio.resolution())
+    mapped = mapped_areas(cmap, codes, abs(dx * dy))
+    write_table(areas_table(mapped, result.area_table, confidence=result.confidence), p.run_dir / "areas.csv")
     return {"n": int(len(gdf)), "overall_accuracy": result.overall.value, "overall_se": result.overall.se,
             "folder": str(out), "area_table": result.area_table, "accuracy_table": result.accuracy_table}
 

@@ -9,9 +9,10 @@ from __future__ import annotations
 
 import datetime as dt
 import platform
+import sys
 import time
-from collections.abc import Callable
-from contextlib import contextmanager
+from collections.abc import Callable, Sequence
+from contextlib import contextmanager, suppress
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -22,7 +23,16 @@ import pandas as pd
 from .. import CAUTION, __version__
 from ..errors import Cancelled, ProjectFileError
 from ..features.cube import build_cube, open_cube, save_cube, season_coverage
-from ..inputs.io import check_writable, sha256_file, write_figure, write_json, write_table
+from ..inputs.io import (
+    check_file_size_limit,
+    check_writable,
+    disk_full_error,
+    fingerprint,
+    sha256_file,
+    write_figure,
+    write_json,
+    write_table,
+)
 from ..inputs.layers import load_inputs, project_grid, read_aoi
 from ..inputs.preflight import preflight
 from ..inputs.project import Project, check_model_section, config_hash, load_project, portable_dict, to_dict
@@ -39,6 +49,7 @@ from ..training.samples import (
     plot_pixels,
     read_plots,
 )
+from .lock import run_folder_lock
 from .steps import applicability_model, write_explanations, write_inventory_outputs
 
 
@@ -57,10 +68,17 @@ class RunResult:
 
 
 class Manifest:
-    """The run's account of itself, rewritten after every step."""
+    """The run's account of itself, rewritten after every step.
+
+    A step done by an earlier run in the folder is reused only when its key (everything it depends on) is
+    the same and its outputs and the upstream outputs it used still have the fingerprints recorded when it
+    finished (:func:`~wetlandflow.inputs.io.fingerprint`); otherwise it reruns, and the reason is printed
+    and kept in the step's record (``rerun_because``).
+    """
 
     def __init__(self, run_dir: Path, project: Project, check: Callable[[], None] | None = None):
         self.path = run_dir / "manifest.json"
+        self.run_dir = run_dir
         self.check = check or (lambda: None)
         self.data: dict[str, Any] = {
             "wetlandflow": __version__,
@@ -76,32 +94,81 @@ class Manifest:
             "caution": CAUTION,
         }
         self.previous = _previous_manifest(self.path)
+        self._fingerprints: dict[str, str] = {}
+        self._rerun: dict[str, list[str]] = {}
 
-    def reusable(self, name: str, key: str, outputs: list[Path]) -> bool:
-        """True, with the earlier record carried over, when the last run finished this step with the same key
-        and its outputs are all there; the step is then not recomputed."""
+    def _rel(self, path: Path) -> str:
+        return Path(path).relative_to(self.run_dir).as_posix()
+
+    def fingerprints(self, paths: list[Path], *, fresh: bool = False) -> dict[str, str]:
+        """Fingerprints of run-folder outputs by relative path (computed once per run unless ``fresh``)."""
+        out = {}
+        for p in paths:
+            rel = self._rel(p)
+            if fresh or rel not in self._fingerprints:
+                self._fingerprints[rel] = fingerprint(p)
+            out[rel] = self._fingerprints[rel]
+        return out
+
+    def reusable(self, name: str, key: str, outputs: list[Path], *, uses: Sequence[Path] = (),
+                 verify: Callable[[], list[str]] | None = None) -> bool:
+        """True, with the earlier record carried over, when the last run finished this step with the same
+        key and its ``outputs`` and the upstream ``uses`` still have their recorded fingerprints (and
+        ``verify()``, when given, finds nothing wrong); the step is then not recomputed.  A done step that
+        fails these checks reruns: the reason is printed and recorded."""
         prev = self.previous.get("steps", {}).get(name, {})
-        if prev.get("status") != "done" or prev.get("key") != key or not all(Path(o).exists() for o in outputs):
+        if prev.get("status") != "done" or prev.get("key") != key:
+            return False
+        reasons = [f"{self._rel(o)} is missing" for o in outputs if not Path(o).exists()]
+        recorded = prev.get("fingerprints")
+        if not reasons and not isinstance(recorded, dict):
+            reasons.append("the earlier run recorded no fingerprints of its outputs to check them against")
+        if not reasons:
+            paths = [*outputs, *(u for u in uses if Path(u).exists())]
+            for rel, fp in self.fingerprints(paths).items():
+                if recorded.get(rel) != fp:
+                    what = "output" if rel in {self._rel(o) for o in outputs} else "input"
+                    reasons.append(f"its {what} {rel} changed since the step wrote or used it "
+                                   f"(fingerprint {str(recorded.get(rel))[:19]}..., now {fp[:19]}...)")
+        if not reasons and verify is not None:
+            reasons += verify()
+        if reasons:
+            self._rerun[name] = reasons
+            print(f"wetlandflow: rerunning step '{name}' instead of reusing it: {'; '.join(reasons)}",
+                  file=sys.stderr, flush=True)
             return False
         self.data["steps"][name] = {**prev, "reused": True}
         self.save()
         return True
 
     @contextmanager
-    def step(self, name: str, key: str = ""):
-        """Record a step: running, then done, failed or cancelled (with the error), with its seconds."""
+    def step(self, name: str, key: str = "", *, outputs: Sequence[Path] = (), uses: Sequence[Path] = ()):
+        """Record a step: running, then done, failed or cancelled (with the error), with its seconds.
+
+        On success the fingerprints of ``outputs`` (and of the upstream ``uses``) are recorded, for the
+        check before a later run reuses the step.  A disk that fills (or a file-size limit) becomes one
+        :class:`~wetlandflow.errors.OutputError` naming the file, this step and the free space.
+        """
         self.check()  # a cancel point: between steps nothing is half-written
-        rec = {"status": "running", "started": time.time(), "key": key}
+        rec: dict[str, Any] = {"status": "running", "started": time.time(), "key": key}
+        if name in self._rerun:
+            rec["rerun_because"] = self._rerun.pop(name)
         self.data["steps"][name] = rec
         self.save()
         t0 = time.perf_counter()
         try:
             yield rec
+            rec["fingerprints"] = {**self.fingerprints([u for u in uses if Path(u).exists()]),
+                                   **self.fingerprints(list(outputs), fresh=True)}
         except BaseException as exc:
+            error = disk_full_error(exc, self.run_dir, step=name)
             rec.update(status="cancelled" if isinstance(exc, Cancelled) else "failed",
-                       error=f"{type(exc).__name__}: {exc}")
+                       error=f"{type(error or exc).__name__}: {error or exc}")
             rec["seconds"] = round(time.perf_counter() - t0, 3)
-            self.save()
+            with suppress(OSError):  # a full disk may refuse the manifest too; the error still says what
+                self.save()
+            if error is not None:
+                raise error from None
             raise
         rec.update(status="done", seconds=round(time.perf_counter() - t0, 3))
         self.save()
@@ -360,8 +427,9 @@ def run_project(project: Project | str | Path, *, progress: bool = True, control
     """
     if not isinstance(project, Project):
         project = load_project(project)
-    with compute_context(project) as client:
-        result = _run(project, progress=progress, check=None if control is None else control.check)
+    run_dir = check_writable(project.run_dir)
+    with run_folder_lock(run_dir, f"run {project.file.name}") as lock, compute_context(project) as client:
+        result = _run(project, progress=progress, check=None if control is None else control.check, lock=lock)
         import os
 
         result.manifest["compute"] = {
@@ -373,10 +441,16 @@ def run_project(project: Project | str | Path, *, progress: bool = True, control
         return result
 
 
-def _run(project: Project, *, progress: bool = True, check: Callable[[], None] | None = None) -> RunResult:
-    """The steps of a run; each is skipped when an earlier run in the folder finished it with the same key."""
+def _run(project: Project, *, progress: bool = True, check: Callable[[], None] | None = None,
+         lock: dict[str, str] | None = None) -> RunResult:
+    """The steps of a run; each is skipped when an earlier run in the folder finished it with the same key
+    and its outputs check out (see :class:`Manifest`)."""
     run_dir = check_writable(project.run_dir)
     manifest = Manifest(run_dir, project, check)
+    if lock:
+        manifest.data["lock"] = lock
+        if "stale_lock_removed" in lock:
+            print(f"wetlandflow: {lock['stale_lock_removed']}", file=sys.stderr, flush=True)
     cfg = portable_dict(project)
     seed = project.project.seed
 
@@ -397,7 +471,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
         cube = open_cube(zarr_path)
         manifest.data["preflight"] = preflight(project, grid, n_features=len(cube.data_vars), cube_written=True)
     else:
-        with manifest.step("features", k_feat) as rec:
+        with manifest.step("features", k_feat, outputs=[zarr_path]) as rec:
             cube = build_cube(inputs, project.features.select, project.features.params)
             # the lazy cube tells the number of layers: refuse now, not half-way, if disk or memory is short
             manifest.data["preflight"] = preflight(project, grid, n_features=len(cube.data_vars))
@@ -407,10 +481,10 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
 
     k_samples = step_key(k_feat, cfg["plots"], cfg["classes"], cfg["samples"], seed, hashes["plots"])
     samples_path = run_dir / "samples.parquet"
-    if manifest.reusable("samples", k_samples, [samples_path]):
+    if manifest.reusable("samples", k_samples, [samples_path], uses=[zarr_path]):
         samples = pd.read_parquet(samples_path)
     else:
-        with manifest.step("samples", k_samples) as rec:
+        with manifest.step("samples", k_samples, outputs=[samples_path], uses=[zarr_path]) as rec:
             samples = _samples_step(project, grid, cube, rec)
             write_table(samples, samples_path)
     features = model_features(project, samples)
@@ -418,27 +492,31 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
 
     k_val = step_key(k_samples, cfg["validation"], cfg["model"], seed)
     vdir = run_dir / "validation"
-    if manifest.reusable("validation", k_val, [vdir / "metrics.json", vdir / "oof_predictions.parquet"]):
+    if manifest.reusable("validation", k_val, [vdir], uses=[samples_path],
+                          verify=lambda: _missing(vdir, ("metrics.json", "oof_predictions.parquet"))):
         import json
 
         metrics = json.loads((vdir / "metrics.json").read_text())
         folds = pd.read_parquet(vdir / "oof_predictions.parquet", columns=["fold"])["fold"].to_numpy()
     else:
-        with manifest.step("validation", k_val) as rec:
+        with manifest.step("validation", k_val, outputs=[vdir], uses=[samples_path]) as rec:
             metrics, folds = _validation_step(project, samples, features, inputs.aoi, grid, vdir, rec, progress,
                                               check)
 
     k_model = step_key(k_samples, cfg["model"], seed)
-    if manifest.reusable("model", k_model, [run_dir / "model" / "bundle.json"]):
-        model, _ = load_bundle(run_dir / "model")
+    model_dir = run_dir / "model"
+    training_hash = data_hash(samples, features)
+    if manifest.reusable("model", k_model, [model_dir], uses=[samples_path],
+                         verify=lambda: _bundle_mismatch(model_dir, training_hash, features)):
+        model, _ = load_bundle(model_dir)
     else:
-        with manifest.step("model", k_model) as rec:
+        with manifest.step("model", k_model, outputs=[model_dir], uses=[samples_path]) as rec:
             w = training_weights(project, samples)
             model = make_model(project).fit(samples[features].to_numpy(np.float32), samples["class"].to_numpy(),
                                             sample_weight=w)
-            save_bundle(model, run_dir / "model", features=features,
+            save_bundle(model, model_dir, features=features,
                         scheme=ClassScheme(project.classes.names, project.classes.parents),
-                        training_hash=data_hash(samples, features),
+                        training_hash=training_hash,
                         extra={"config_sha256": manifest.data["config_sha256"]})
             rec["n_features"] = len(features)
             rec["weights"] = _weights_record(project, samples, w)
@@ -448,8 +526,10 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     k_map = step_key(k_model, k_val if applicability else None, applicability, cfg["output"]["chunk_size"])
     layers = LAYERS + (AOA_LAYERS if applicability else ())
     map_paths = {n: run_dir / "maps" / f"{n}.tif" for n in layers}
-    if not manifest.reusable("mapping", k_map, list(map_paths.values())):
-        with manifest.step("mapping", k_map) as rec:
+    map_uses = [model_dir, zarr_path] + ([vdir] if applicability else [])
+    if not manifest.reusable("mapping", k_map, list(map_paths.values()), uses=map_uses):
+        with manifest.step("mapping", k_map, outputs=list(map_paths.values()), uses=map_uses) as rec:
+            check_file_size_limit(run_dir, staged_map_sizes(grid, len(project.classes.names)), step="mapping")
             aoa_model = None
             if applicability:
                 aoa_model = applicability_model(model, samples, features, folds)
@@ -465,25 +545,34 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
 
     k_inv = step_key(k_map, cfg["output"]["mmu_pixels"], cfg["output"]["connectivity"])
     final_path = run_dir / "maps" / "class_final.tif"
-    if not manifest.reusable("inventory", k_inv, [final_path, run_dir / "inventory.gpkg", run_dir / "areas.csv"]):
-        with manifest.step("inventory", k_inv) as rec:
+    inv_outputs = [final_path, run_dir / "inventory.gpkg", run_dir / "inventory_areas.csv"]
+    inv_uses = list(map_paths.values())
+    areas_path = run_dir / "areas.csv"
+    if manifest.reusable("inventory", k_inv, inv_outputs, uses=inv_uses,
+                         verify=lambda: _areas_mismatch(areas_path, final_path, project, grid)):
+        areas = pd.read_csv(areas_path)  # it may hold an assessment's error-adjusted areas by now
+    else:
+        previous_final = manifest.previous.get("steps", {}).get("inventory", {}).get("data_sha256", {})
+        with manifest.step("inventory", k_inv, outputs=inv_outputs, uses=inv_uses) as rec:
             rec.update(write_inventory_outputs(map_paths, run_dir, grid, project.classes.names,
                                                mmu_pixels=project.output.mmu_pixels,
                                                connectivity=project.output.connectivity))
             rec["data_sha256"] = {"class_final": raster_data_sha256(final_path)}
-            areas = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
-            write_table(areas, run_dir / "areas.csv")
-            stale = _set_aside_stale_assessment(run_dir)
-            if stale:
-                rec["stale_assessment_moved_to"] = stale
-    else:  # areas.csv may hold an assessment's adjusted areas by now: read the mapped areas off the map
-        areas = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
+            mapped = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
+            if previous_final.get("class_final") != rec["data_sha256"]["class_final"]:
+                stale = _set_aside_stale_assessment(run_dir)
+                if stale:
+                    rec["stale_assessment_moved_to"] = stale
+            areas = _areas_with_assessment(run_dir, mapped)
+            write_table(areas, areas_path)
 
     if project.output.explain:
         explain_cfg = [cfg["output"][k] for k in ("explain_rows", "explain_window", "explain_seeds")]
         k_exp = step_key(k_model, k_feat, explain_cfg, cfg["validation"]["block_size_m"], seed)
-        if not manifest.reusable("explain", k_exp, [run_dir / "explain" / "drivers.json"]):
-            with manifest.step("explain", k_exp) as rec:
+        exp_dir, exp_uses = run_dir / "explain", [model_dir, zarr_path, samples_path]
+        if not manifest.reusable("explain", k_exp, [exp_dir], uses=exp_uses,
+                                 verify=lambda: _missing(exp_dir, ("drivers.json",))):
+            with manifest.step("explain", k_exp, outputs=[exp_dir], uses=exp_uses) as rec:
                 rec.update(write_explanations(model, samples, features, cube, run_dir / "explain",
                                               n_rows=project.output.explain_rows, seed=seed,
                                               block_size_m=project.validation.block_size_m,
@@ -494,6 +583,64 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     manifest.data["finished"] = dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")
     manifest.save()
     return RunResult(run_dir, manifest.data, areas, metrics, balance)
+
+
+def _missing(folder: Path, names: tuple[str, ...]) -> list[str]:
+    return [f"{folder.name}/{n} is missing" for n in names if not (folder / n).exists()]
+
+
+def _bundle_mismatch(model_dir: Path, training_hash: str, features: list[str]) -> list[str]:
+    """Why the model bundle in the run folder is not the one this run's samples would train (empty if it is):
+    its ``training_data_sha256`` must equal the samples' hash, its features the model's features."""
+    import json
+
+    try:
+        bundle = json.loads((model_dir / "bundle.json").read_text())
+    except (OSError, ValueError):
+        return ["model/bundle.json is missing or unreadable"]
+    reasons = []
+    if bundle.get("training_data_sha256") != training_hash:
+        reasons.append(f"the model bundle was trained on other data (its training_data_sha256 "
+                       f"{str(bundle.get('training_data_sha256'))[:12]}... is not the hash of this run's "
+                       f"samples, {training_hash[:12]}...)")
+    if list(bundle.get("features", [])) != list(features):
+        reasons.append("the model bundle's features are not this run's model features")
+    return reasons
+
+
+def _areas_mismatch(areas_path: Path, final_path: Path, project: Project, grid) -> list[str]:
+    """Why ``areas.csv`` does not hold the final map's areas in the fixed columns (empty if it does)."""
+    from ..accuracy.assessment import AREAS_COLUMNS, MAPPED_AREA_COLUMNS
+
+    try:
+        table = pd.read_csv(areas_path)
+    except (OSError, ValueError):
+        return ["areas.csv is missing or unreadable"]
+    if tuple(table.columns) != AREAS_COLUMNS:
+        return [f"areas.csv has the columns {list(table.columns)}, not {list(AREAS_COLUMNS)}"]
+    mapped = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
+    same = (table["class"].astype(str).tolist() == mapped["class"].tolist()
+            and np.array_equal(table["pixels"].to_numpy(), mapped["pixels"].to_numpy())
+            and all(np.allclose(table[c].to_numpy(np.float64), mapped[c].to_numpy(np.float64), rtol=1e-9,
+                                atol=0) for c in MAPPED_AREA_COLUMNS[2:]))
+    return [] if same else ["the mapped areas in areas.csv differ from the final map's pixel counts"]
+
+
+def _areas_with_assessment(run_dir: Path, mapped: pd.DataFrame) -> pd.DataFrame:
+    """``areas.csv`` for the final map: with the error-adjusted areas of the assessment in ``accuracy/`` when
+    one of this very map is there (a new map sets an earlier assessment aside first), else empty."""
+    import json
+
+    from ..accuracy.assessment import ACCURACY_DIR, areas_table
+
+    table = run_dir / ACCURACY_DIR / "area_table.csv"
+    if not table.exists():
+        return areas_table(mapped)
+    try:
+        confidence = json.loads((run_dir / ACCURACY_DIR / "summary.json").read_text()).get("confidence")
+    except (OSError, ValueError):
+        confidence = None
+    return areas_table(mapped, pd.read_csv(table), confidence=confidence)
 
 
 def _samples_step(project: Project, grid, cube, rec: dict[str, Any]) -> pd.DataFrame:
@@ -566,6 +713,13 @@ def _set_aside_stale_assessment(run_dir: Path) -> str | None:
     target = run_dir / f"accuracy_stale_{stamp}"
     acc.rename(target)
     return target.name
+
+
+def staged_map_sizes(grid, n_classes: int) -> dict[str, int]:
+    """Bytes of the largest staged map files (uncompressed 256 x 256 tiles: probability and confidence)."""
+    tiles = -(-grid.height // 256) * -(-grid.width // 256) * 256 * 256
+    return {"maps/.stage/probability.tif": tiles * n_classes * 4 + (1 << 16),
+            "maps/.stage/confidence.tif": tiles * 3 * 4 + (1 << 16)}
 
 
 def raster_data_sha256(path: Path) -> str:

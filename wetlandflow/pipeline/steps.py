@@ -8,7 +8,6 @@ keeps; the tables and figures go into the run folder.
 
 from __future__ import annotations
 
-import json
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -18,7 +17,7 @@ import pandas as pd
 import rasterio
 
 from ..inputs.grid import Grid
-from ..inputs.io import write_figure, write_table
+from ..inputs.io import write_figure, write_json, write_table
 from ..mapping.applicability import ApplicabilityModel, fit_applicability, xgb_importance_weights
 
 
@@ -258,7 +257,7 @@ def write_explanations(model, samples: pd.DataFrame, features: list[str], cube, 
     if refit is not None and stability_seeds >= 2:
         record["ranking_stability"] = _ranking_stability(refit, model, sub, features, seed, stability_seeds,
                                                          out_dir, explain=explain_fn, final=imp["overall"])
-    (out_dir / "drivers.json").write_text(json.dumps(record, indent=2))
+    write_json(record, out_dir / "drivers.json")
     return record
 
 

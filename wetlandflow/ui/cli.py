@@ -59,13 +59,21 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     from ..inputs.project import load_project
 
     project = load_project(project_file)
-    sample = design_sample(project, overwrite=True)
-    # The demo's "photo-interpreter" is its hidden truth raster; with real data people label the sample.
-    labelled = label_from_reference(sample, load_truth(out), class_codes(project),
-                                    sample.with_name("sample_labelled.gpkg"))
-    print("")
-    print(format_assessment(project, labelled))
+    with _locked(project.run_dir, "demo"):
+        sample = design_sample(project, overwrite=True)
+        # The demo's "photo-interpreter" is its hidden truth raster; with real data people label the sample.
+        labelled = label_from_reference(sample, load_truth(out), class_codes(project),
+                                        sample.with_name("sample_labelled.gpkg"))
+        print("")
+        print(format_assessment(project, labelled))
     return 0
+
+
+def _locked(run_dir, command: str):
+    """Hold the run folder's lock (refused, with the holder named, while another command writes it)."""
+    from ..pipeline.lock import run_folder_lock
+
+    return run_folder_lock(run_dir, command)
 
 
 def _cmd_sample(args: argparse.Namespace) -> int:
@@ -73,8 +81,10 @@ def _cmd_sample(args: argparse.Namespace) -> int:
     from ..inputs.project import load_project
 
     project = load_project(args.project)
-    path = design_sample(project, target_se=args.target_se, allocation=args.allocation,
-                         min_per_class=args.min_per_class, exclude_buffer_m=args.buffer_m, overwrite=args.overwrite)
+    with _locked(project.run_dir, f"sample {Path(args.project).name}"):
+        path = design_sample(project, target_se=args.target_se, allocation=args.allocation,
+                             min_per_class=args.min_per_class, exclude_buffer_m=args.buffer_m,
+                             overwrite=args.overwrite)
     rec = sample_design_record(project.run_dir)
     print(f"validation sample: {rec['n_total']} points (formula: {rec['n_from_formula']} for a standard error of "
           f"{rec['target_se']:g} in overall accuracy), {args.allocation} allocation:")
@@ -88,7 +98,9 @@ def _cmd_assess(args: argparse.Namespace) -> int:
     from ..inputs.project import load_project
 
     project = load_project(args.project)
-    print(format_assessment(project, args.labelled, design=args.design))
+    with _locked(project.run_dir, f"assess {Path(args.project).name}"):
+        text = format_assessment(project, args.labelled, design=args.design)
+    print(text)
     return 0
 
 
@@ -113,7 +125,8 @@ def format_assessment(project, labelled, *, design: str = "stratified") -> str:
 def _cmd_report(args: argparse.Namespace) -> int:
     from ..report.appendix import write_report
 
-    paths = write_report(args.run_dir)
+    with _locked(args.run_dir, "report"):
+        paths = write_report(args.run_dir)
     print(f"report: {paths['html']} and {paths['markdown']}\nCAUTION: {CAUTION}")
     return 0
 
@@ -121,7 +134,27 @@ def _cmd_report(args: argparse.Namespace) -> int:
 def _cmd_compare(args: argparse.Namespace) -> int:
     from ..models.compare import main as compare_main  # imported here: it loads scikit-learn and XGBoost
 
-    return compare_main(args.rest, prog="wetlandflow compare")
+    run_dir = _compare_run_dir(args.rest)
+    if run_dir is None:  # help, or arguments compare itself will refuse
+        return compare_main(args.rest, prog="wetlandflow compare")
+    with _locked(run_dir, "compare"):
+        return compare_main(args.rest, prog="wetlandflow compare")
+
+
+def _compare_run_dir(rest: list[str]) -> str | None:
+    """The run folder among ``wetlandflow compare``'s own arguments (None when they do not name one)."""
+    p = argparse.ArgumentParser(add_help=False, exit_on_error=False)
+    p.add_argument("run_dir")
+    for option in ("--out", "--selection", "--calibration"):
+        p.add_argument(option)
+    for option in ("--kinds", "--structures"):
+        p.add_argument(option, nargs="+")
+    if any(a in ("-h", "--help") for a in rest):
+        return None
+    try:
+        return p.parse_known_args(rest)[0].run_dir
+    except (argparse.ArgumentError, SystemExit):
+        return None
 
 
 def _cmd_doctor(args: argparse.Namespace) -> int:
@@ -216,6 +249,12 @@ def main(argv: list[str] | None = None) -> int:
     except Exception as exc:  # an unexpected failure: still one message, the traceback behind --debug
         if args.debug:
             raise
+        from ..inputs.io import disk_full_error
+
+        full = disk_full_error(exc, None)  # a full disk outside a run's steps (assess, report, ...)
+        if full is not None:
+            print(f"error: {full}", file=sys.stderr)
+            return 2
         print(f"error: unexpected {type(exc).__name__}: {exc} (rerun with --debug for the traceback)",
               file=sys.stderr)
         return 1
