@@ -268,8 +268,9 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
         Xa = _check_matrix(X, type(self).__name__)
         if Xa.shape[1] != self.n_features_in_:
             raise ModelError(f"X has {Xa.shape[1]} features, but {type(self).__name__} is expecting "
-                             f"{self.n_features_in_} features as input (array of shape {Xa.shape}); pass "
-                             "the features the model was trained on (see align_features)")
+                             f"{self.n_features_in_} features as input: expected {self.n_features_in_} "
+                             f"features, got an array of shape {Xa.shape}; pass the features the model was "
+                             "trained on (see align_features)")
         check_no_sentinels(Xa, list(names) if names is not None else _column_names(Xa, Xa.shape[1]))
         return Xa
 
