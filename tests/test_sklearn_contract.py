@@ -46,8 +46,8 @@ def aligned(model, X):
 # Checks that do not apply, each with its reason; everything else must pass.
 _WEIGHTS = ("with class_weighting=True the balancing weights are recomputed from the class counts, so "
             "repeating a row is not the same as doubling its weight (intended: rare classes keep their say)")
-_BOOTSTRAP = ("random-forest bootstrap draws rows, not weights; scikit-learn lists the same exception for its "
-              "own RandomForestClassifier")
+_BOOTSTRAP = ("random-forest bootstrap draws rows, not weights; scikit-learn lists the same exception for "
+              "its own RandomForestClassifier")
 
 
 def _expected_failures(estimator):
@@ -166,7 +166,8 @@ def test_scheme_proba_maps_any_classifier_by_name():
     lr = LogisticRegression(max_iter=500).fit(X, y)
     p = scheme_proba(lr, X[:5], ["bog", *SCHEME])
     np.testing.assert_array_equal(p[:, 0], 0)
+    ref = lr.predict_proba(X[:5])
     for c in SCHEME:
-        np.testing.assert_array_equal(p[:, 1 + SCHEME.index(c)], lr.predict_proba(X[:5])[:, list(lr.classes_).index(c)])
+        np.testing.assert_array_equal(p[:, 1 + SCHEME.index(c)], ref[:, list(lr.classes_).index(c)])
     with pytest.raises(ModelError, match="not in the scheme"):
         scheme_proba(lr, X[:5], ["upland"])

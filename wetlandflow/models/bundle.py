@@ -157,7 +157,8 @@ def load_bundle(folder: str | Path) -> tuple[Any, dict]:
         params["classes"] = tuple(params["classes"])
     clf = WetlandClassifier(**params)
     # a model fitted without a scheme (classes=None) has the sorted training labels as its scheme
-    clf.scheme_ = np.array(params["classes"] if params.get("classes") is not None else side["present_classes"])
+    own = params.get("classes")
+    clf.scheme_ = np.array(own if own is not None else side["present_classes"])
     clf.classes_ = np.unique(clf.scheme_)
     clf.present_ = np.array(side["present_classes"])
     clf.n_features_in_ = len(side["features"])

@@ -20,8 +20,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from sklearn.base import BaseEstimator, ClassifierMixin
-from sklearn.utils.class_weight import compute_sample_weight
 from sklearn.exceptions import NotFittedError
+from sklearn.utils.class_weight import compute_sample_weight
 from sklearn.utils.validation import _check_sample_weight
 
 from ..errors import ModelError
@@ -301,7 +301,7 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
         return self.predict_scheme_proba(X)[:, _positions(self.scheme_, self.classes_)]
 
     def predict_frame(self, X: Any) -> pd.DataFrame:
-        """Scheme-order probabilities as a DataFrame whose columns are the class names (index follows ``X``)."""
+        """Scheme-order probabilities as a DataFrame, columns named by class (index follows ``X``)."""
         index = X.index if isinstance(X, pd.DataFrame) else None
         return pd.DataFrame(self.predict_scheme_proba(X), columns=list(self.scheme_), index=index)
 
@@ -334,7 +334,7 @@ def _positions(order: np.ndarray, labels: np.ndarray) -> np.ndarray:
 
 
 def _check_matrix(X: Any, owner: str) -> np.ndarray:
-    """A 2-D float32 matrix (NaN allowed, inf, complex, sparse and empty refused), as scikit-learn checks it."""
+    """A 2-D float32 matrix (NaN allowed; inf, complex, sparse, empty refused), checked as scikit-learn does."""
     from sklearn.utils.validation import check_array
 
     try:
@@ -370,10 +370,10 @@ def _scheme_labels(classes: Any, y: np.ndarray) -> np.ndarray:
         raise ModelError(f"the class scheme {scheme.tolist()} names a class twice; list each class once.")
     unknown = sorted(set(y.tolist()) - set(scheme.tolist()), key=str)
     if unknown:
-        hint = (" Integer labels against a scheme of names usually come from scikit-learn encoding the labels "
-                "(cross_val_predict with method='predict_proba'); use WetlandClassifier(classes=None) there, "
-                "or compute out-of-fold probabilities fold by fold." if y.dtype.kind in "iu" and
-                scheme.dtype.kind == "U" else "")
+        encoded = y.dtype.kind in "iu" and scheme.dtype.kind == "U"
+        hint = (" Integer labels against a scheme of names usually come from scikit-learn encoding the "
+                "labels (cross_val_predict with method='predict_proba'); use WetlandClassifier(classes=None) "
+                "there, or compute out-of-fold probabilities fold by fold." if encoded else "")
         raise ModelError(f"labels {unknown} are not in the class scheme {scheme.tolist()}; add them to "
                          "the scheme ([classes] names in the project file) or correct the labels." + hint)
     return scheme
