@@ -113,8 +113,8 @@ def format_assessment(project, labelled, *, design: str = "stratified") -> str:
                      f"{r['ci_low_ha']:>10,.1f}-{r['ci_high_ha']:<10,.1f}{mark}{a['users']:>6.2f} "
                      f"{a['producers']:>9.2f}")
     if notes:
-        lines += ["", "  * no error of this kind was observed in the sample; the interval comes from the "
-                  "unobserved error rate:", *notes]
+        lines += ["", "  * an error rate observed as zero in the sample: the interval comes from the "
+                  "interval of that rate, not from a zero standard error:", *notes]
     lines += ["", f"Tables and figures: {res['folder']}; areas.csv updated.", "", f"CAUTION: {CAUTION}"]
     return "\n".join(lines)
 
