@@ -603,3 +603,18 @@ def test_zero_error_note_reaches_report_table_and_figure():
     assert accs.frame["user's"].iloc[0].startswith("1.00") and " to " in accs.frame["user's"].iloc[0]
     fig = plot_areas(res)
     assert fig.axes[0].get_xticklabels()[0].get_text() == "fen*"
+
+
+def test_zero_error_note_reaches_the_assess_summary(monkeypatch):
+    import wetlandflow.accuracy.assessment as assessment
+    from wetlandflow.ui.cli import format_assessment
+
+    res = stratified_estimates(_frame(ZERO_ERROR, list(ZERO_AREAS)), ZERO_AREAS)
+    monkeypatch.setattr(assessment, "assess", lambda project, labelled, design: {
+        "n": int(ZERO_ERROR.sum()), "overall_accuracy": res.overall.value, "overall_se": res.overall.se,
+        "folder": "accuracy", "area_table": res.area_table, "accuracy_table": res.accuracy_table})
+    text = format_assessment(None, "sample.gpkg")
+    fen = next(line for line in text.splitlines() if line.strip().startswith("fen "))
+    assert "*" in fen and "353.5-515.2" in fen
+    assert "* fen: no commission error among 60 sample units" in text
+    assert not any(line.strip().startswith("bog ") and "*" in line for line in text.splitlines())
