@@ -42,7 +42,8 @@ def _model(quick: bool):
         booster = XGBClassifier()
         booster.load_model(path)
         clf.model_ = booster
-        clf.classes_ = clf.present_ = np.array(CLASSES)
+        clf.classes_ = np.unique(CLASSES)
+        clf.scheme_ = clf.present_ = np.array(CLASSES)
         clf.n_features_in_ = N_FEATURES
         return clf
     clf.fit(X, y)

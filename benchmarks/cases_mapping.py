@@ -332,7 +332,7 @@ def _report_gate_error(model, cube, features: list[str], grid, valid) -> None:
             continue
         levels = model.set_params(gate_threshold=GATE).predict_proba_levels(X)
         gated = levels["leaf"].to_numpy()
-        exact = model.set_params(gate_threshold=0.0).predict_proba(X)
+        exact = model.set_params(gate_threshold=0.0).predict_scheme_proba(X)
         diff = np.abs(gated - exact)
         total, worst = total + float(diff.sum()), max(worst, float(diff.max()))
         n, n_open = n + X.shape[0], n_open + int((levels["top"]["wetland"].to_numpy() > GATE).sum())
@@ -392,7 +392,7 @@ def _plain_script(src_path: Path, model, out: Path) -> None:
     bands, h, w = stack.shape
     X = stack.reshape(bands, -1).T
     ok = ~np.isnan(X[:, 0])
-    p = model.predict_proba(X[ok])
+    p = model.predict_scheme_proba(X[ok])  # bands in scheme order
     proba = np.full((p.shape[1], h * w), np.nan, np.float32)
     proba[:, ok] = p.T
     classes = np.zeros(h * w, np.uint8)

@@ -19,6 +19,7 @@ from wetlandflow.accuracy.estimators import (
     error_matrix,
     plot_areas,
     plot_error_matrix,
+    proportion_interval,
     simple_random_estimates,
     stratified_estimates,
     write_area_table,
@@ -498,3 +499,122 @@ def test_write_area_table(tmp_path, olofsson2014):
     np.testing.assert_allclose(back["estimated_area_ha"], olofsson2014.area_table["estimated_area_ha"])
     named = write_area_table(olofsson2014, tmp_path / "out" / "wetland_areas.csv")
     assert named.exists()
+
+
+# -- strata without observed errors: intervals that do not collapse ----------------------------------------
+# References: Wilson, E. B. (1927). Probable inference, the law of succession, and statistical inference.
+# JASA 22(158), 209-212.  Clopper, C. J., Pearson, E. S. (1934). The use of confidence or fiducial limits
+# illustrated in the case of the binomial. Biometrika 26(4), 404-413.  Outside implementation of both:
+# scipy.stats.binomtest(...).proportion_ci(method="wilson" | "exact").
+
+
+@pytest.mark.reference
+@pytest.mark.parametrize("method", ["wilson", "exact"])
+@pytest.mark.parametrize("k,n", [(50, 50), (0, 50), (7, 50), (2, 2), (119, 120)])
+def test_proportion_interval_matches_scipy(method, k, n):
+    from scipy.stats import binomtest
+
+    ref = binomtest(k, n).proportion_ci(confidence_level=0.95, method=method)
+    low, high = proportion_interval(k, n, 0.95, method)
+    assert float(low) == pytest.approx(ref.low, abs=1e-9)
+    assert float(high) == pytest.approx(ref.high, abs=1e-9)
+
+
+ZERO_ERROR = np.array([[60, 0, 0], [0, 40, 5], [0, 2, 45]])  # class "fen": no error in its row or column
+ZERO_AREAS = {"fen": 376.12, "bog": 1000.0, "swamp": 800.0}
+
+
+@pytest.mark.reference
+@pytest.mark.parametrize("method", ["wilson", "exact"])
+def test_zero_error_class_gets_a_non_collapsing_interval(method):
+    """A class with no off-diagonal count: the normal approximation gives UA = PA = 1 +/- 0 and an area
+    interval of zero width.  The user's accuracy gets the score / exact interval for 60 of 60 (scipy's
+    binomtest as the outside reference), the area's lower bound the commission that interval allows, the
+    upper bound the omission that 0 of n_h in each other stratum allows, and a note beside the figure."""
+    from scipy.stats import binomtest
+
+    res = stratified_estimates(_frame(ZERO_ERROR, list(ZERO_AREAS)), ZERO_AREAS, zero_error=method)
+    area, acc = res.area_table.set_index("class"), res.accuracy_table.set_index("class")
+    ua_low = binomtest(60, 60).proportion_ci(method=method).low
+    high0 = {n: binomtest(0, n).proportion_ci(method=method).high for n in (45, 47)}
+    assert acc.loc["fen", "users"] == 1.0 and acc.loc["fen", "users_se"] == 0.0
+    assert acc.loc["fen", "users_ci_low"] == pytest.approx(ua_low, abs=1e-9)
+    assert acc.loc["fen", "users_ci_high"] == 1.0
+    est = area.loc["fen", "estimated_area_ha"]
+    assert est == pytest.approx(376.12)
+    assert area.loc["fen", "ci_low_ha"] == pytest.approx(est - 376.12 * (1 - ua_low), rel=1e-9)
+    omission = 1000.0 * high0[45] + 800.0 * high0[47]
+    assert area.loc["fen", "ci_high_ha"] == pytest.approx(est + omission, rel=1e-9)
+    assert acc.loc["fen", "producers_ci_low"] == pytest.approx(est / (est + omission), rel=1e-9)
+    assert area.loc["fen", "ci_high_ha"] - area.loc["fen", "ci_low_ha"] > 100.0
+    assert "no commission error among 60" in area.loc["fen", "note"]
+    assert "no omission error" in acc.loc["fen", "note"]
+    assert any("fen (commission and omission)" in n for n in res.notes)
+    # classes with observed errors keep their normal-approximation intervals and an empty note
+    assert (area.loc[["bog", "swamp"], "note"] == "").all()
+    rest = area.loc[["bog", "swamp"]]
+    width = rest["ci_high_ha"] - rest["ci_low_ha"]
+    np.testing.assert_allclose(width, 2 * rest["ci_half_width_ha"], rtol=1e-12)
+
+
+def test_zero_commission_only_widens_the_lower_bound():
+    counts = np.array([[60, 0, 0], [4, 40, 5], [3, 2, 45]])  # fen: no commission, but omission observed
+    res = stratified_estimates(_frame(counts, list(ZERO_AREAS)), ZERO_AREAS)
+    plain = res.area_table.set_index("class").loc["fen"]
+    assert plain["se_area_ha"] > 0 and "no commission error" in plain["note"]
+    assert "omission" not in plain["note"]
+    est, half = plain["estimated_area_ha"], 1.959963984540054 * plain["se_area_ha"]  # z of 95 %
+    assert plain["ci_high_ha"] == pytest.approx(est + half, rel=1e-9)
+    assert plain["ci_low_ha"] < est - half
+
+
+def test_zero_error_in_collapsed_classes():
+    """Collapsed to two groups, every stratum of the wetland group has all its units in the group: the group's
+    commission interval is the area-weighted mean of its strata's bounds (Wilson 1927)."""
+    from scipy.stats import binomtest
+
+    counts = np.array([[60, 0, 0], [0, 40, 5], [0, 2, 45]])
+    res = stratified_estimates(_frame(counts, list(ZERO_AREAS)), ZERO_AREAS,
+                               collapse={"dry": ["fen"], "wet": ["bog", "swamp"]})
+    acc = res.accuracy_table.set_index("class")
+    lows = {n: binomtest(n, n).proportion_ci(method="wilson").low for n in (45, 47)}
+    expected = (1000.0 * lows[45] + 800.0 * lows[47]) / 1800.0
+    assert acc.loc["wet", "users_ci_low"] == pytest.approx(expected, rel=1e-9)
+    assert "no commission error among 92" in acc.loc["wet", "note"]
+
+
+def test_zero_error_method_is_checked():
+    with pytest.raises(ValidationDesignError, match="zero_error must be one of"):
+        stratified_estimates(_frame(ZERO_ERROR, list(ZERO_AREAS)), ZERO_AREAS, zero_error="normal")
+
+
+def test_zero_error_note_reaches_report_table_and_figure():
+    from wetlandflow.report.text import _area_accuracy_tables
+
+    res = stratified_estimates(_frame(ZERO_ERROR, list(ZERO_AREAS)), ZERO_AREAS)
+
+    class Run:  # the two tables as the report reads them back from CSV (empty notes become NaN)
+        def csv(self, name):
+            t = res.area_table if "area" in name else res.accuracy_table
+            return t.replace({"note": {"": np.nan}})
+
+    areas, accs = _area_accuracy_tables(Run(), {"confidence": 0.95})
+    assert "no commission error" in areas.frame["note"].iloc[0] and areas.frame["note"].iloc[1] == ""
+    assert accs.frame["user's"].iloc[0].startswith("1.00") and " to " in accs.frame["user's"].iloc[0]
+    fig = plot_areas(res)
+    assert fig.axes[0].get_xticklabels()[0].get_text() == "fen*"
+
+
+def test_zero_error_note_reaches_the_assess_summary(monkeypatch):
+    import wetlandflow.accuracy.assessment as assessment
+    from wetlandflow.ui.cli import format_assessment
+
+    res = stratified_estimates(_frame(ZERO_ERROR, list(ZERO_AREAS)), ZERO_AREAS)
+    monkeypatch.setattr(assessment, "assess", lambda project, labelled, design: {
+        "n": int(ZERO_ERROR.sum()), "overall_accuracy": res.overall.value, "overall_se": res.overall.se,
+        "folder": "accuracy", "area_table": res.area_table, "accuracy_table": res.accuracy_table})
+    text = format_assessment(None, "sample.gpkg")
+    fen = next(line for line in text.splitlines() if line.strip().startswith("fen "))
+    assert "*" in fen and "353.5-515.2" in fen
+    assert "* fen: no commission error among 60 sample units" in text
+    assert not any(line.strip().startswith("bog ") and "*" in line for line in text.splitlines())

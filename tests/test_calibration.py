@@ -128,8 +128,10 @@ def test_calibrated_classifier_keeps_scheme_order(method):
     X, y, groups, xy = landscape()
     cv = SpatialBlockKFold(3, block_size_m=1000, random_state=0, coords=xy, on_class_missing="ignore")
     m = CalibratedWetlandClassifier(base(), method=method, cv=cv).fit(X, y, groups)
-    p = m.predict_proba(X)
-    assert list(m.classes_) == list(CLASSES) and p.shape == (len(y), len(CLASSES))
+    p = m.predict_scheme_proba(X)
+    assert list(m.scheme_) == list(CLASSES) and p.shape == (len(y), len(CLASSES))
+    assert list(m.classes_) == sorted(CLASSES)
+    np.testing.assert_array_equal(m.predict_proba(X), p[:, [CLASSES.index(c) for c in m.classes_]])
     np.testing.assert_allclose(p.sum(axis=1), 1.0, atol=1e-9)
     np.testing.assert_array_equal(p[:, [1, 3]], 0.0)  # open_water, swamp: absent from training
     splits = list(cv.split(X, y, groups))
@@ -143,7 +145,7 @@ def test_binary_scheme_in_unsorted_order():
     classes = ("upland", "marsh")  # scheme order is not alphabetical
     X, y, groups, xy = landscape(classes=classes)
     cv = SpatialBlockKFold(3, block_size_m=1000, random_state=0, coords=xy)
-    p = CalibratedWetlandClassifier(base(classes), cv=cv).fit(X, y, groups).predict_proba(X)
+    p = CalibratedWetlandClassifier(base(classes), cv=cv).fit(X, y, groups).predict_scheme_proba(X)
     assert p[y == "marsh", 1].mean() > p[y == "upland", 1].mean() + 0.3
     np.testing.assert_allclose(p.sum(axis=1), 1.0, atol=1e-9)
 
@@ -175,11 +177,10 @@ def test_probability_calibrator_matches_scikit_learn(method, classes):
     make = lambda: base(present)  # noqa: E731  sklearn's calibrator needs sorted classes
     test = folds == 3
     Xtr, ytr, ftr = X[~test], y[~test], folds[~test]
-    # cross_val_predict (inside ensemble=False) integer-encodes labels in sorted order: give the
-    # reference model those codes as its class names.
-    codes = tuple(str(i) for i in range(len(present)))
-    ref = CalibratedClassifierCV(base(codes), method=method, cv=PredefinedSplit(ftr), ensemble=False)
-    expected = ref.fit(Xtr, np.searchsorted(present, ytr).astype(str)).predict_proba(X[test])
+    # cross_val_predict (inside ensemble=False) integer-encodes labels in sorted order: the reference
+    # model learns its classes from those codes (classes=None).
+    ref = CalibratedClassifierCV(base(None), method=method, cv=PredefinedSplit(ftr), ensemble=False)
+    expected = ref.fit(Xtr, np.searchsorted(present, ytr)).predict_proba(X[test])
     raw = make().fit(Xtr, ytr).predict_proba(X[test])
     cal = ProbabilityCalibrator(present, method).fit(_inner_oof(make, Xtr, ytr, ftr), ytr)
     np.testing.assert_allclose(cal.transform(raw), expected, atol=1e-6 if method == "isotonic" else 2e-4)

@@ -135,7 +135,7 @@ def test_hierarchical_rows_are_the_chain_rule_model_per_fold(demo, comparison):
     m = HierarchicalClassifier(scheme.names, dict(scheme.parents), base_params={
         "kind": "xgboost", "n_estimators": 10, "max_depth": 3, "learning_rate": 0.3, "n_threads": 1,
         "random_state": 0}).fit(train[NESTED].to_numpy(np.float32), train["class"])
-    np.testing.assert_allclose(p[test], m.predict_proba(samples.loc[test, NESTED].to_numpy(np.float32)),
+    np.testing.assert_allclose(p[test], m.predict_scheme_proba(samples.loc[test, NESTED].to_numpy(np.float32)),
                                atol=1e-6)
 
 

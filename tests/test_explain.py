@@ -91,7 +91,7 @@ def test_local_accuracy_random_forest_probability(rf_model, data):
     sv = shap_values(rf_model, data[0], features=FEATURES)
     recon = (sv["base_value"] + sv["values"].sum("feature")).transpose("sample", "class").values
     assert sv.attrs["output_scale"] == "probability"
-    np.testing.assert_allclose(recon, rf_model.predict_proba(data[0].to_numpy()), atol=1e-5)
+    np.testing.assert_allclose(recon, rf_model.predict_scheme_proba(data[0].to_numpy()), atol=1e-5)
 
 
 @pytest.mark.reference
@@ -412,9 +412,9 @@ def test_combined_values_add_up_to_the_leaf_probabilities(hier, method):
     recon = (sv["base_value"] + sv["values"].sum("feature")).transpose("sample", "class").values
     assert sv.attrs["output_scale"] == "probability" and sv.attrs["explainer"] == method
     assert list(sv["class"].values) == list(SCHEME)
-    np.testing.assert_allclose(recon, model.predict_proba(rows), atol=1e-6)
+    np.testing.assert_allclose(recon, model.predict_scheme_proba(rows), atol=1e-6)
     bg = X.iloc[100:120].to_numpy(np.float32)
-    np.testing.assert_allclose(sv["base_value"].values, model.predict_proba(bg).mean(axis=0), atol=1e-9)
+    np.testing.assert_allclose(sv["base_value"].values, model.predict_scheme_proba(bg).mean(axis=0), atol=1e-9)
     # open_water never trained: probability 0 everywhere, nothing to attribute
     assert not bool(sv["present"].sel({"class": "open_water"}))
     np.testing.assert_array_equal(sv["values"].sel({"class": "open_water"}).values, 0.0)
@@ -431,7 +431,7 @@ def test_combined_exact_values_match_the_shapley_formula(hier):
     rows = X.iloc[:3].to_numpy(np.float32)
     sv = combined_shap_values(model, rows, features=FEATURES, background=bg, method="exact")
     for r in range(len(rows)):
-        expected = _interventional_shapley(model.predict_proba, rows[r].astype(np.float64),
+        expected = _interventional_shapley(model.predict_scheme_proba, rows[r].astype(np.float64),
                                            bg.astype(np.float64))
         np.testing.assert_allclose(sv["values"].values[r], expected, atol=1e-6)
 
@@ -452,7 +452,7 @@ def test_per_level_values_add_up_to_each_level_output(kind):
     assert set(out) == {"top", "wetland"}
     for name, level in (("top", model.top_model_), ("wetland", model.child_models_["wetland"])):
         sv = out[name]
-        assert sv.attrs["level"] == name and list(sv["class"].values) == list(level.classes_)
+        assert sv.attrs["level"] == name and list(sv["class"].values) == list(level.scheme_)
         present = list(level.present_)
         recon = (sv["base_value"] + sv["values"].sum("feature")).sel({"class": present})
         recon = recon.transpose("sample", "class")
@@ -461,8 +461,8 @@ def test_per_level_values_add_up_to_each_level_output(kind):
             expected = booster.predict(DMatrix(rows.to_numpy(np.float32)), output_margin=True)
             np.testing.assert_allclose(recon.values, expected, atol=1e-4)
         else:
-            expected = level.predict_proba(rows.to_numpy(np.float32))[:, [list(level.classes_).index(c)
-                                                                          for c in present]]
+            expected = level.predict_scheme_proba(rows.to_numpy(np.float32))[:, [list(level.scheme_).index(c)
+                                                                                 for c in present]]
             np.testing.assert_allclose(recon.values, expected, atol=1e-5)
 
 

@@ -227,5 +227,5 @@ def test_explanations_of_a_hierarchical_run(hier_run):
     # class, the same for every row (local accuracy, Lundberg & Lee 2017)
     shap = pd.read_parquet(out / "shap_values.parquet")
     total = shap.groupby(["sample", "class"])["shap"].sum().unstack()[list(CLASSES)]
-    gap = model.predict_proba(samples.loc[total.index, features].to_numpy(np.float32)) - total.to_numpy()
+    gap = model.predict_scheme_proba(samples.loc[total.index, features].to_numpy(np.float32)) - total.to_numpy()
     np.testing.assert_allclose(gap, np.broadcast_to(gap[0], gap.shape), atol=1e-5)

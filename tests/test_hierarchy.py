@@ -58,14 +58,17 @@ def test_leaf_probabilities_follow_the_chain_rule(fitted):
                                top[["wetland"]].to_numpy() * cond.to_numpy(), atol=1e-12)
     np.testing.assert_allclose(leaf[list(PARENTS["wetland"])].sum(axis=1), top["wetland"], atol=1e-12)
     np.testing.assert_allclose(leaf[["upland", "open_water"]], top[["upland", "open_water"]], atol=1e-12)
-    np.testing.assert_array_equal(m.predict_proba(X), leaf.to_numpy())
+    np.testing.assert_array_equal(m.predict_scheme_proba(X), leaf.to_numpy())
+    # scikit-learn's contract: predict_proba follows the sorted classes_, the same numbers by name
+    assert list(m.classes_) == sorted(CLASSES) and list(m.scheme_) == list(CLASSES)
+    np.testing.assert_array_equal(m.predict_proba(X), leaf[list(m.classes_)].to_numpy())
     assert leaf.index.equals(X.index)
 
 
 def test_child_model_sees_only_its_parents_samples(fitted):
     m, X, y = fitted
     child = m.child_models_["wetland"]
-    assert list(child.classes_) == list(PARENTS["wetland"])
+    assert list(child.scheme_) == list(PARENTS["wetland"])
     wet = np.isin(y, PARENTS["wetland"])
     np.testing.assert_allclose(m.priors_["wetland"],
                                [np.mean(y[wet] == c) for c in PARENTS["wetland"]])
@@ -130,9 +133,9 @@ def test_gate_zero_is_the_plain_chain_rule(fitted):
     """gate 0 (the default) runs the child model on every row: top x child, assembled here by hand."""
     m, X, _ = fitted
     Xa = X.to_numpy(np.float32)
-    top = m.top_model_.predict_proba(Xa).astype(np.float64)
+    top = m.top_model_.predict_scheme_proba(Xa).astype(np.float64)
     top /= top.sum(axis=1, keepdims=True)
-    child = m.child_models_["wetland"].predict_proba(Xa).astype(np.float64)
+    child = m.child_models_["wetland"].predict_scheme_proba(Xa).astype(np.float64)
     child /= child.sum(axis=1, keepdims=True)
     wet = list(m.top_classes_).index("wetland")
     expected = np.zeros((len(X), len(CLASSES)))
@@ -140,7 +143,7 @@ def test_gate_zero_is_the_plain_chain_rule(fitted):
         expected[:, CLASSES.index(c)] = top[:, wet] * child[:, k]
     for c in ("upland", "open_water"):
         expected[:, CLASSES.index(c)] = top[:, list(m.top_classes_).index(c)]
-    np.testing.assert_allclose(m.predict_proba(X), expected, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(m.predict_scheme_proba(X), expected, rtol=0, atol=1e-12)
     np.testing.assert_array_equal(gated_copy(m, 0.0).predict_proba(X), m.predict_proba(X))
 
 
@@ -152,7 +155,7 @@ def test_every_gate_keeps_rows_summing_to_one_within_the_bound(fitted, gate):
     gated estimate; every child probability then moves by at most ``gate``, all other columns not at all."""
     m, X, _ = fitted
     full = m.predict_proba_levels(X)
-    gated = gated_copy(m, gate).predict_proba(X)
+    gated = gated_copy(m, gate).predict_scheme_proba(X)
     p_parent = full["top"]["wetland"].to_numpy()
     closed = p_parent <= gate
     assert closed.any()
@@ -175,9 +178,9 @@ class CountingModel:
         self.inner = inner
         self.calls: list[np.ndarray] = []
 
-    def predict_proba(self, X):
+    def predict_scheme_proba(self, X):
         self.calls.append(np.array(X, copy=True))
-        return self.inner.predict_proba(X)
+        return self.inner.predict_scheme_proba(X)
 
 
 def test_child_model_runs_only_on_open_rows(fitted):

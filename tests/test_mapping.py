@@ -62,7 +62,7 @@ def test_windowed_prediction_equals_in_memory(tmp_path):
         cls = src.read(1)
         assert src.nodata == 0
     ok = valid.values
-    expected = model.predict_proba(X).reshape(GRID.height, GRID.width, 3).transpose(2, 0, 1)
+    expected = model.predict_scheme_proba(X).reshape(GRID.height, GRID.width, 3).transpose(2, 0, 1)
     np.testing.assert_allclose(proba[:, ok], expected[:, ok], atol=1e-6)
     assert np.isnan(proba[:, ~ok]).all() and (cls[~ok] == 0).all()
     np.testing.assert_array_equal(cls[ok], np.argmax(proba[:, ok], axis=0) + 1)
@@ -78,12 +78,13 @@ class _Interrupting:
         self.model, self.die_at, self.calls = model, die_at, 0
         self.kind = model.kind
         self.model_ = model.model_
+        self.scheme_ = model.scheme_
 
-    def predict_proba(self, X):
+    def predict_scheme_proba(self, X):
         self.calls += 1
         if self.die_at is not None and self.calls == self.die_at:
             raise KeyboardInterrupt("simulated interruption")
-        return self.model.predict_proba(X)
+        return self.model.predict_scheme_proba(X)
 
 
 def _fitted(cube):

@@ -35,10 +35,13 @@ def data(n=400, seed=0):
 def test_probabilities_follow_the_scheme_order(kind):
     X, y = data()
     m = WetlandClassifier(classes=CLASSES, kind=kind, n_estimators=30, max_depth=3).fit(X, y)
-    p = m.predict_proba(X)
+    p = m.predict_scheme_proba(X)
     assert p.shape == (len(X), 4)
     np.testing.assert_allclose(p.sum(1), 1, atol=1e-5)
     assert np.all(p[:, 1] == 0)  # a class absent from training gets probability 0, in its own column
+    # predict_proba: the same columns in sorted order (scikit-learn's contract)
+    assert list(m.classes_) == sorted(CLASSES) and list(m.scheme_) == list(CLASSES)
+    np.testing.assert_array_equal(m.predict_proba(X), p[:, [CLASSES.index(c) for c in m.classes_]])
     pred = m.predict(X)
     assert (pred == y).mean() > 0.8
     assert set(pred) <= {"upland", "fen", "bog"}

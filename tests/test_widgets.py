@@ -144,7 +144,7 @@ def test_cv_panel_matches_scikit_learn_cross_val_predict(project_file, samples):
     )
     expected = np.full_like(blocks.oof, np.nan)
     for model, test in zip(ref["estimator"], ref["indices"]["test"], strict=True):
-        expected[test] = model.predict_proba(X[test])
+        expected[test] = model.predict_scheme_proba(X[test])
     np.testing.assert_allclose(blocks.oof, expected, rtol=1e-5, atol=1e-6)
 
 

@@ -32,6 +32,7 @@ disagreement for accuracy assessment. *International Journal of Remote Sensing* 
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -56,6 +57,7 @@ __all__ = [
     "error_matrix",
     "plot_areas",
     "plot_error_matrix",
+    "proportion_interval",
     "simple_random_estimates",
     "stratified_estimates",
     "write_area_table",
@@ -125,10 +127,14 @@ class AreaAccuracyResult:
     ----------
     area_table : pandas.DataFrame
         One row per class: ``class, mapped_area_ha, mapped_proportion, estimated_proportion,
-        se_proportion, estimated_area_ha, se_area_ha, ci_low_ha, ci_high_ha, ci_half_width_ha``.
+        se_proportion, estimated_area_ha, se_area_ha, ci_low_ha, ci_high_ha, ci_half_width_ha, note``
+        (``ci_half_width_ha`` is the larger side when a zero-error class widened the interval on one
+        side; ``note`` says why, else empty).
     accuracy_table : pandas.DataFrame
         One row per class: ``class, users, users_se, users_ci, producers, producers_se,
-        producers_ci, f1, f1_se, f1_ci`` (``*_ci`` are half-widths).
+        producers_ci, f1, f1_se, f1_ci, users_ci_low, users_ci_high, producers_ci_low,
+        producers_ci_high, note`` (``*_ci`` are half-widths; the bounds are ``value +/- ci`` except for
+        a class without observed errors, see ``note``).
     overall : Estimate
         Overall accuracy.
     proportion_matrix : pandas.DataFrame
@@ -486,6 +492,7 @@ def stratified_estimates(
     pixel_area_ha: float | None = None,
     confidence: float = 0.95,
     collapse: Mapping[str, Sequence[Any]] | None = None,
+    zero_error: str = "wilson",
 ) -> AreaAccuracyResult:
     """Error-adjusted areas and accuracies from a stratified random sample (Olofsson et al. 2014).
 
@@ -503,6 +510,11 @@ def stratified_estimates(
     collapse : dict, optional
         ``{parent: [classes]}`` to report at a coarser level; the variances still use the original
         strata (unlike summing the counts with :func:`collapse_matrix`).
+    zero_error : {"wilson", "exact"}
+        Interval for a class without observed commission or omission errors, where the
+        normal approximation has zero width: Wilson (1927) score or Clopper & Pearson (1934) exact
+        interval of the unobserved error rate, carried into the area interval and said in the
+        tables' ``note`` column (see :func:`proportion_interval` and docs/validation.md).
 
     Returns
     -------
@@ -532,7 +544,7 @@ def stratified_estimates(
     counts, labels = _as_counts(counts_matrix)
     areas = _mapped_areas(mapped_area_px_or_ha, labels, pixel_area_ha)
     _check_strata(counts, areas, labels)
-    return _estimate(counts, areas, labels, confidence, collapse, "stratified", ())
+    return _estimate(counts, areas, labels, confidence, collapse, "stratified", (), zero_error)
 
 
 def simple_random_estimates(
@@ -543,6 +555,7 @@ def simple_random_estimates(
     confidence: float = 0.95,
     systematic: bool = False,
     collapse: Mapping[str, Sequence[Any]] | None = None,
+    zero_error: str = "wilson",
 ) -> AreaAccuracyResult:
     """Error-adjusted areas and accuracies from a simple random (or systematic) sample.
 
@@ -552,7 +565,7 @@ def simple_random_estimates(
 
     Parameters
     ----------
-    counts_matrix, mapped_area_px_or_ha, pixel_area_ha, confidence, collapse
+    counts_matrix, mapped_area_px_or_ha, pixel_area_ha, confidence, collapse, zero_error
         As in :func:`stratified_estimates`.
     systematic : bool
         The sample is systematic (a regular grid with a random start).
@@ -577,7 +590,7 @@ def simple_random_estimates(
     _check_strata(counts, areas, labels)
     design = "systematic" if systematic else "simple_random"
     note = _SYSTEMATIC_NOTE if systematic else _POSTSTRATIFIED_NOTE
-    return _estimate(counts, areas, labels, confidence, collapse, design, (note,))
+    return _estimate(counts, areas, labels, confidence, collapse, design, (note,), zero_error)
 
 
 def _mapped_areas(values: Any, labels: list[Any], pixel_area_ha: float | None) -> np.ndarray:
@@ -631,7 +644,11 @@ def _estimate(
     collapse: Mapping[str, Sequence[Any]] | None,
     design: str,
     notes: tuple[str, ...],
+    zero_error: str = "wilson",
 ) -> AreaAccuracyResult:
+    if zero_error not in ZERO_ERROR_METHODS:
+        raise ValidationDesignError(f"zero_error must be one of {ZERO_ERROR_METHODS} (Wilson 1927 score or "
+                                    f"Clopper & Pearson 1934 exact interval); got {zero_error!r}.")
     z = _z(confidence)
     total = areas.sum()
     weights = areas / total
@@ -645,9 +662,14 @@ def _estimate(
     fine = weights[:, None] * np.divide(counts, n_h, out=np.zeros_like(counts), where=n_h > 0)
     proportions = _frame(member.T @ fine @ member, names)
     overall, overall_se = float(est["overall"][0][0]), float(est["overall"][1][0])
-    return AreaAccuracyResult(
+    accuracy = pd.DataFrame({"class": names, **_measure_columns(est, z)})
+    for key in ("users", "producers"):
+        accuracy[f"{key}_ci_low"] = accuracy[key] - accuracy[f"{key}_ci"]
+        accuracy[f"{key}_ci_high"] = accuracy[key] + accuracy[f"{key}_ci"]
+    accuracy["note"] = ""
+    result = AreaAccuracyResult(
         area_table=_area_table(names, member.T @ areas, total, *est["proportion"], z),
-        accuracy_table=pd.DataFrame({"class": names, **_measure_columns(est, z)}),
+        accuracy_table=accuracy,
         overall=Estimate(overall, overall_se, z * overall_se),
         proportion_matrix=proportions,
         disagreement=disagreement(proportions),
@@ -655,6 +677,7 @@ def _estimate(
         design=design,
         notes=(*notes, f"Intervals are {confidence:.0%} normal-approximation intervals (value +/- z SE)."),
     )
+    return _zero_error_adjust(result, counts, areas, member, zero_error)
 
 
 def _area_table(
@@ -673,8 +696,139 @@ def _area_table(
             "ci_low_ha": area - z * area_se,
             "ci_high_ha": area + z * area_se,
             "ci_half_width_ha": z * area_se,
+            "note": "",
         }
     )
+
+
+
+
+# -- strata without observed errors ------------------------------------------------------------------
+
+
+ZERO_ERROR_METHODS = ("wilson", "exact")
+_INTERVAL_LABEL = {"wilson": "Wilson (1927) score", "exact": "Clopper-Pearson (1934) exact"}
+
+
+def proportion_interval(successes: Any, n: Any, confidence: float = 0.95, method: str = "wilson"
+                        ) -> tuple[np.ndarray, np.ndarray]:
+    """Confidence interval of a binomial proportion that stays informative at 0 or n successes.
+
+    Parameters
+    ----------
+    successes, n : int or array of int
+        Successes and trials (``n > 0``).
+    confidence : float
+    method : {"wilson", "exact"}
+        ``"wilson"``: the score interval of Wilson (1927); ``"exact"``: the
+        Clopper & Pearson (1934) interval from the beta quantiles (never below
+        the nominal coverage, wider).
+
+    Returns
+    -------
+    (low, high) : arrays of float
+
+    References
+    ----------
+    Wilson, E. B. (1927). Probable inference, the law of succession, and statistical inference.
+    *Journal of the American Statistical Association* 22(158), 209-212.
+    Clopper, C. J., Pearson, E. S. (1934). The use of confidence or fiducial limits illustrated in the
+    case of the binomial. *Biometrika* 26(4), 404-413.
+
+    Examples
+    --------
+    >>> low, high = proportion_interval(50, 50)
+    >>> round(float(low), 4), float(high)
+    (0.9287, 1.0)
+    """
+    if method not in ZERO_ERROR_METHODS:
+        raise ValidationDesignError(f"method must be one of {ZERO_ERROR_METHODS} (Wilson 1927 score interval "
+                                    f"or Clopper & Pearson 1934 exact interval); got {method!r}.")
+    k, n = np.asarray(successes, dtype=float), np.asarray(n, dtype=float)
+    if (n <= 0).any() or (k < 0).any() or (k > n).any():
+        raise ValidationDesignError(f"a proportion needs 0 <= successes <= n and n > 0; got successes "
+                                    f"{k.tolist()} of n {n.tolist()}.")
+    z = _z(confidence)
+    if method == "wilson":
+        p, z2 = k / n, z * z
+        centre = (p + z2 / (2 * n)) / (1 + z2 / n)
+        half = z * np.sqrt(p * (1 - p) / n + z2 / (4 * n * n)) / (1 + z2 / n)
+        return np.clip(centre - half, 0.0, 1.0), np.clip(centre + half, 0.0, 1.0)
+    from scipy.stats import beta
+
+    alpha = 1 - confidence
+    # beta quantiles with shape 0 are undefined: the bound is 0 (no success) or 1 (all successes)
+    low = np.where(k > 0, beta.ppf(alpha / 2, np.maximum(k, 1), n - k + 1), 0.0)
+    high = np.where(k < n, beta.ppf(1 - alpha / 2, k + 1, np.maximum(n - k, 1)), 1.0)
+    return low, high
+
+
+def _zero_error_adjust(result: AreaAccuracyResult, counts: np.ndarray, areas: np.ndarray, member: np.ndarray,
+                       method: str) -> AreaAccuracyResult:
+    """Intervals that do not collapse for reporting classes without observed errors (docs/validation.md).
+
+    ``counts`` (H, H): sample counts, rows = strata (map classes); ``member`` (H, G): stratum / class h
+    belongs to reporting class g.  For a class g with no commission error in the sample (every unit of its
+    strata is of class g in the reference), the user's accuracy gets the area-weighted mean of its
+    strata's ``method`` lower bounds for a proportion observed at n of n, and the area's lower bound moves
+    down by the largest commission those bounds allow, sum_h mapped_h (1 - low_h).  For a class with no
+    omission error (no unit of another stratum is of class g), the area's upper bound moves up by the
+    largest omission the other sampled strata allow, sum_h mapped_h high_h with high_h the upper bound of a
+    proportion observed at 0 of n_h; the producer's accuracy lower bound is then area / (area + that
+    shift).  Each shift adds to the normal-approximation bound (conservative).
+    """
+    conf, n_h = result.confidence, counts.sum(axis=1)
+    in_g = counts @ member  # (H, G) units of stratum h that are of class g in the reference
+    own = member.astype(bool)  # (H, G)
+    sampled = n_h > 0
+    row_free = []
+    for g in range(member.shape[1]):
+        rows = own[:, g] & sampled
+        row_free.append(bool(rows.any() and np.all(in_g[rows, g] == n_h[rows])))
+    col_free = [bool(in_g[own[:, g], g].sum() > 0 and np.all(in_g[~own[:, g], g] == 0))
+                for g in range(member.shape[1])]
+    if not (any(row_free) or any(col_free)):
+        return result
+    safe_n = np.maximum(n_h, 1)
+    all_low, _ = proportion_interval(safe_n, safe_n, conf, method)
+    _, none_high = proportion_interval(np.zeros_like(safe_n), safe_n, conf, method)
+    label = _INTERVAL_LABEL[method]
+    area, acc = result.area_table.copy(), result.accuracy_table.copy()
+    notes = [""] * member.shape[1]
+    for g in range(member.shape[1]):
+        said = []
+        strata = own[:, g] & sampled & (areas > 0)
+        if row_free[g] and strata.any():
+            shift = float((areas[strata] * (1.0 - all_low[strata])).sum())
+            low = 1.0 - shift / float(areas[strata].sum())
+            acc.loc[g, ["users_ci_low", "users_ci_high"]] = [low, 1.0]
+            area.loc[g, "ci_low_ha"] -= shift
+            said.append(f"no commission error among {int(n_h[strata].sum())} sample units: user's accuracy "
+                        f"{conf:.0%} interval [{low:.3f}, 1] ({label}); area lower bound lowered by "
+                        f"{shift:,.1f} ha")
+        others = ~own[:, g] & sampled & (areas > 0)
+        if col_free[g]:
+            shift = float((areas[others] * none_high[others]).sum())
+            est = float(area.loc[g, "estimated_area_ha"])
+            low = est / (est + shift) if est + shift > 0 else 0.0
+            acc.loc[g, ["producers_ci_low", "producers_ci_high"]] = [low, 1.0]
+            area.loc[g, "ci_high_ha"] += shift
+            said.append(f"no omission error in the sample: producer's accuracy {conf:.0%} interval "
+                        f"[{low:.3f}, 1]; area upper bound raised by {shift:,.1f} ha (the largest share "
+                        f"of each other stratum that may be of this class: {label} bound of 0 of n)")
+        notes[g] = "; ".join(said)
+    area["ci_half_width_ha"] = np.maximum(area["estimated_area_ha"] - area["ci_low_ha"],
+                                          area["ci_high_ha"] - area["estimated_area_ha"])
+    for key in ("users", "producers"):
+        acc[f"{key}_ci"] = np.maximum(acc[key] - acc[f"{key}_ci_low"], acc[f"{key}_ci_high"] - acc[key])
+    area["note"], acc["note"] = notes, notes
+    kinds = {"commission": row_free, "omission": col_free}
+    flagged = [f"{c} ({' and '.join(k for k, free in kinds.items() if free[g])})"
+               for g, c in enumerate(area["class"]) if notes[g]]
+    note = (f"Error rates observed as zero in the sample: {', '.join(flagged)}. The normal-approximation "
+            f"interval has zero width there, so the {label} interval of the unobserved error rate is "
+            "reported and carried into the area interval (see the 'note' column of the tables).")
+    return dataclasses.replace(result, area_table=area, accuracy_table=acc, notes=(*result.notes, note))
 
 
 # -- figures and files ------------------------------------------------------------------------------
@@ -734,8 +888,9 @@ def plot_areas(area_table: pd.DataFrame | AreaAccuracyResult, *, title: str | No
     Parameters
     ----------
     area_table : pandas.DataFrame or AreaAccuracyResult
-        ``result.area_table`` (needs ``class``, ``mapped_area_ha``, ``estimated_area_ha``,
-        ``ci_half_width_ha``).
+        ``result.area_table`` (needs ``class``, ``mapped_area_ha``, ``estimated_area_ha`` and
+        ``ci_low_ha``/``ci_high_ha``, or ``ci_half_width_ha``).  A class whose interval was widened on
+        one side for an error rate observed as zero gets an asymmetric bar, marked with an asterisk.
     title : str, optional
         Figure title.
 
@@ -747,6 +902,13 @@ def plot_areas(area_table: pd.DataFrame | AreaAccuracyResult, *, title: str | No
 
     table = area_table.area_table if isinstance(area_table, AreaAccuracyResult) else area_table
     pos = np.arange(len(table))
+    est = table["estimated_area_ha"].to_numpy(float)
+    if {"ci_low_ha", "ci_high_ha"} <= set(table.columns):
+        low, high = table["ci_low_ha"].to_numpy(float), table["ci_high_ha"].to_numpy(float)
+        yerr = np.vstack([est - low, high - est])
+    else:
+        yerr = table["ci_half_width_ha"].to_numpy(float)
+    flagged = _has_note(table)
     fig = Figure(figsize=(1.5 + 0.9 * len(table), 3.5), layout="constrained")
     ax = fig.add_subplot()
     ax.bar(pos - 0.2, table["mapped_area_ha"], width=0.4, label="mapped (pixel count)", color="0.7")
@@ -754,17 +916,28 @@ def plot_areas(area_table: pd.DataFrame | AreaAccuracyResult, *, title: str | No
         pos + 0.2,
         table["estimated_area_ha"],
         width=0.4,
-        yerr=table["ci_half_width_ha"],
+        yerr=yerr,
         capsize=3,
         label="error-adjusted (CI)",
         color="tab:blue",
     )
-    ax.set_xticks(pos, [str(c) for c in table["class"]], rotation=30, ha="right")
+    ax.set_xticks(pos, [f"{c}*" if f else str(c) for c, f in zip(table["class"], flagged, strict=True)],
+                  rotation=30, ha="right")
     ax.set_ylabel("area (ha)")
+    if flagged.any():
+        ax.annotate("* no error observed in the sample: interval from the unobserved error rate (see notes)",
+                    (0, 0), xycoords="figure fraction", xytext=(4, 2), textcoords="offset points", fontsize=7)
     ax.legend()
     if title:
         ax.set_title(title)
     return fig
+
+
+def _has_note(table: pd.DataFrame) -> np.ndarray:
+    """Rows whose ``note`` column holds text (a CSV read back gives NaN for the empty ones)."""
+    if "note" not in table.columns:
+        return np.zeros(len(table), dtype=bool)
+    return np.array([isinstance(v, str) and bool(v.strip()) for v in table["note"]])
 
 
 def write_area_table(result: AreaAccuracyResult, path: str | Path) -> Path:

@@ -609,6 +609,7 @@ def estimates_from_sample(
     design: str = "stratified",
     confidence: float = 0.95,
     collapse: Mapping[str, Sequence[str]] | None = None,
+    zero_error: str = "wilson",
 ) -> AreaAccuracyResult:
     """Error-adjusted areas and accuracies from a labelled sample and the map it was drawn from.
 
@@ -628,6 +629,9 @@ def estimates_from_sample(
         Confidence level of the intervals.
     collapse : dict, optional
         ``{parent: [class names]}`` to report at a coarser level (e.g. wetland vs upland).
+    zero_error : {"wilson", "exact"}
+        Interval of an error rate observed as zero (Wilson 1927 score or Clopper & Pearson 1934 exact;
+        see :func:`~wetlandflow.accuracy.estimators.stratified_estimates`).
 
     Returns
     -------
@@ -649,7 +653,8 @@ def estimates_from_sample(
         dx, dy = _steps(class_map)
         pixel_area_ha = abs(dx * dy) / 10_000.0
     areas = dict(zip(names, pixels.values(), strict=True))
-    options = {"pixel_area_ha": pixel_area_ha, "confidence": confidence, "collapse": collapse}
+    options = {"pixel_area_ha": pixel_area_ha, "confidence": confidence, "collapse": collapse,
+               "zero_error": zero_error}
     if design == "stratified":
         return stratified_estimates(counts, areas, **options)
     return simple_random_estimates(counts, areas, systematic=design == "systematic", **options)

@@ -48,7 +48,7 @@ import xarray as xr
 
 from .._provenance import DOMAINS, with_attrs
 from ..errors import BudgetError, ModelError, ParameterError
-from ..models.classifier import WetlandClassifier
+from ..models.classifier import WetlandClassifier, scheme_proba
 
 REFERENCE = ("Lundberg et al. (2020) From local explanations to global understanding with explainable AI "
              "for trees, Nature Machine Intelligence 2, 56-67")
@@ -90,9 +90,14 @@ def _as_matrix(X: pd.DataFrame | np.ndarray, features: Sequence[str], model: Wet
     return np.ascontiguousarray(arr), np.arange(arr.shape[0])
 
 
+def _scheme(model: Any) -> np.ndarray:
+    """The classes in the model's scheme order (``scheme_``), else its ``classes_``."""
+    return getattr(model, "scheme_", model.classes_)
+
+
 def _scheme_index(model: WetlandClassifier) -> np.ndarray:
     """Position in the class scheme of each trained (present) class."""
-    scheme = list(model.classes_)
+    scheme = list(_scheme(model))
     return np.array([scheme.index(c) for c in model.present_], dtype=np.int64)
 
 
@@ -253,7 +258,7 @@ def _assemble(model: WetlandClassifier, vals: np.ndarray, base: np.ndarray, samp
               features: Sequence[str], scale: str) -> xr.Dataset:
     """Scatter present-class columns into scheme order (absent classes: zeros)."""
     idx = _scheme_index(model)
-    k_all = len(model.classes_)
+    k_all = len(_scheme(model))
     if len(idx) == k_all:
         full = vals
     else:
@@ -261,8 +266,8 @@ def _assemble(model: WetlandClassifier, vals: np.ndarray, base: np.ndarray, samp
         full[..., idx] = vals
     full_base = np.full(k_all, -np.inf if scale == "margin" else 0.0)
     full_base[idx] = base
-    present = np.isin(np.asarray(model.classes_), np.asarray(model.present_))
-    coords = {"sample": sample, "feature": list(features), "class": list(model.classes_),
+    present = np.isin(np.asarray(_scheme(model)), np.asarray(model.present_))
+    coords = {"sample": sample, "feature": list(features), "class": list(_scheme(model)),
               "present": ("class", present)}
     attrs = {"output_scale": scale, "model_kind": model.kind, "method": "exact TreeSHAP (tree-path-dependent)",
              "reference": REFERENCE}
@@ -320,7 +325,8 @@ def combined_shap_values(model: Any, X: pd.DataFrame | np.ndarray, *, features: 
 
     Parameters
     ----------
-    model : fitted classifier with ``predict_proba`` and ``classes_``
+    model : fitted classifier with ``predict_proba`` and ``classes_`` (explained in its scheme order,
+        ``scheme_``, when it has one)
     X : DataFrame or ndarray of shape (n, F)
         Rows to explain, read as in :func:`shap_values`.
     features : list of str
@@ -354,7 +360,7 @@ def combined_shap_values(model: Any, X: pd.DataFrame | np.ndarray, *, features: 
         class order; ``attrs["output_scale"]`` is ``"probability"``.  Local
         accuracy holds for both methods (the permutation walk telescopes from
         the all-background output to the row's output):
-        ``base_value + values.sum("feature")`` equals ``predict_proba(X)``, and
+        ``base_value + values.sum("feature")`` equals the scheme-order probabilities of ``X``, and
         ``base_value`` is the mean predicted probability over the background.
 
     Notes
@@ -379,11 +385,11 @@ def combined_shap_values(model: Any, X: pd.DataFrame | np.ndarray, *, features: 
     bg = _background(Xm, background, features, model, n_background, seed)
     f = len(features)
     chosen = ("exact" if f <= EXACT_MAX_FEATURES else "permutation") if method == "auto" else method
-    classes = [str(c) for c in model.classes_]
+    classes = [str(c) for c in _scheme(model)]
     k = len(classes)
 
     def leaf_proba(Z: np.ndarray) -> np.ndarray:
-        return np.asarray(model.predict_proba(np.asarray(Z, dtype=np.float32)), dtype=np.float64)
+        return np.asarray(scheme_proba(model, np.asarray(Z, dtype=np.float32)), dtype=np.float64)
 
     masker = shap.maskers.Independent(bg, max_samples=len(bg))
     state = np.random.get_state()  # noqa: NPY002 - shap seeds and draws from NumPy's global generator
@@ -502,7 +508,7 @@ def explain_budget(model: WetlandClassifier, n_rows: int, *, interactions: bool 
         uses at most a tenth of the budget.  Estimates count float32 result
         cells (4 bytes each) only.
     """
-    f, k = int(model.n_features_in_), len(model.classes_)
+    f, k = int(model.n_features_in_), len(_scheme(model))
     per_row = 4 * f * k * (f if interactions else 1)
     total = per_row * int(n_rows)
     mb = total / 2**20
@@ -567,11 +573,11 @@ def shap_interactions(model: WetlandClassifier, X: pd.DataFrame | np.ndarray, *,
     for start in range(0, n, plan["chunk_rows"]):
         stop = min(start + plan["chunk_rows"], n)
         vals[start:stop] = _interaction_chunk(model, explainer, Xm[start:stop])
-    full = np.zeros((n, f, f, len(model.classes_)), np.float32)
+    full = np.zeros((n, f, f, len(_scheme(model))), np.float32)
     full[..., _scheme_index(model)] = vals
     return xr.DataArray(full, dims=("sample", "feature", "feature_2", "class"), name="shap_interactions",
                         coords={"sample": sample, "feature": list(features), "feature_2": list(features),
-                                "class": list(model.classes_)},
+                                "class": list(_scheme(model))},
                         attrs={"output_scale": scale, "method": "exact TreeSHAP interaction values",
                                "reference": REFERENCE})
 
@@ -802,14 +808,14 @@ def window_contributions(model: WetlandClassifier, cube: xr.Dataset, features: l
     the window size with :func:`explain_budget`.
     """
     block, X, ok = _window_matrix(cube, features, window)
-    k = len(model.classes_)
+    k = len(_scheme(model))
     contrib = np.full((X.shape[0], len(features), k), np.nan, np.float32)
     if ok.any():
         contrib[ok] = shap_values(model, X[ok], features=features)["values"].values
     ny, nx = block.sizes["y"], block.sizes["x"]
     out = xr.DataArray(contrib.transpose(1, 2, 0).reshape(len(features), k, ny, nx),
                        dims=("feature", "class", "y", "x"),
-                       coords={"feature": list(features), "class": [str(c) for c in model.classes_],
+                       coords={"feature": list(features), "class": [str(c) for c in _scheme(model)],
                                "y": block["y"].values, "x": block["x"].values})
     out.attrs["output_scale"] = _output_scale(model)
     return out
@@ -874,8 +880,8 @@ def shap_map(model: WetlandClassifier, cube: xr.Dataset, features: list[str], cl
     """
     if (feature is None) == (domain is None):
         raise ParameterError("give exactly one of feature= or domain= (with domains=) to shap_map")
-    if class_name not in list(model.classes_):
-        raise ParameterError(f"class_name {class_name!r} is not in the scheme {list(model.classes_)}")
+    if class_name not in list(_scheme(model)):
+        raise ParameterError(f"class_name {class_name!r} is not in the scheme {list(_scheme(model))}")
     if feature is not None and feature not in features:
         raise ParameterError(f"feature {feature!r} is not one of the model's features {features[:8]}...")
     contrib = window_contributions(model, cube, features, window=window)

@@ -21,6 +21,7 @@ from rasterio.windows import Window
 
 from ..inputs.grid import Grid
 from ..inputs.io import atomic_path, write_json
+from ..models.classifier import scheme_proba
 from ..progress import progress_bar
 
 CLASS_NODATA = 0
@@ -131,7 +132,7 @@ def _predict_window(model, X: np.ndarray, ok: np.ndarray, k: int, aoa_model) -> 
         res["dissimilarity"] = np.full((n, 1), np.nan, np.float32)
         res["applicability"] = np.full((n, 1), 255, np.uint8)
     if X.shape[0]:
-        p = model.predict_proba(X)
+        p = scheme_proba(model, X)  # bands in scheme order
         res["probability"][ok] = p
         res["class"][ok, 0] = np.argmax(p, axis=1) + 1
         res["confidence"][ok] = confidence_layers(p).T
@@ -218,7 +219,7 @@ def _model_signature(model) -> str:
         # a parent with one child in training has no model: its priors (recorded below) are its output
         levels |= {p: _model_signature(c) if hasattr(c, "model_") else "constant"
                    for p, c in model.child_models_.items()}
-        tree = {"classes": [str(c) for c in model.classes_],
+        tree = {"classes": [str(c) for c in model.scheme_],
                 "parents": {p: list(c) for p, c in model.parents_.items()},
                 "priors": {p: np.asarray(v, np.float64).tolist() for p, v in model.priors_.items()},
                 "gate_threshold": float(model.gate_threshold), "levels": levels}
@@ -237,7 +238,7 @@ def _estimator_bytes(model) -> bytes:
             pass
     trees = getattr(inner, "estimators_", None)
     if trees is not None and all(hasattr(t, "tree_") for t in trees):
-        classes = [[str(c) for c in getattr(model, name, [])] for name in ("classes_", "present_")]
+        classes = [[str(c) for c in getattr(model, name, [])] for name in ("scheme_", "present_")]
         parts = [json.dumps(classes).encode()]
         for t in trees:
             state = t.tree_.__getstate__()

@@ -120,11 +120,11 @@ def _save_hierarchical(model: Any, folder: Path, *, features: list[str], scheme:
     sidecar = {
         "structure": "hierarchical", "kind": base.get("kind", "xgboost"), "features": list(features),
         "scheme": scheme.to_dict(), "present_classes": model.present_leaves(),
-        "params": {"classes": list(model.classes_),
+        "params": {"classes": list(model.scheme_),
                    "parents": {p: list(c) for p, c in model.parents_.items()},
                    "base_params": {k: v for k, v in base.items() if k != "classes"},
                    "gate_threshold": float(model.gate_threshold)},
-        "hierarchy": {"classes": list(model.classes_), "top_classes": list(model.top_classes_),
+        "hierarchy": {"classes": list(model.scheme_), "top_classes": list(model.top_classes_),
                       "parents": {p: list(c) for p, c in model.parents_.items()},
                       "priors": {p: [float(v) for v in pr] for p, pr in model.priors_.items()},
                       "gate_threshold": float(model.gate_threshold), "levels": levels},
@@ -153,9 +153,13 @@ def load_bundle(folder: str | Path) -> tuple[Any, dict]:
     if side.get("structure") == "hierarchical":
         return _load_hierarchical(folder, side), side
     params = {k: v for k, v in side["params"].items() if k in WetlandClassifier().get_params()}
-    params["classes"] = tuple(params["classes"])
+    if params.get("classes") is not None:
+        params["classes"] = tuple(params["classes"])
     clf = WetlandClassifier(**params)
-    clf.classes_ = np.array(side["scheme"]["names"])
+    # a model fitted without a scheme (classes=None) has the sorted training labels as its scheme
+    own = params.get("classes")
+    clf.scheme_ = np.array(own if own is not None else side["present_classes"])
+    clf.classes_ = np.unique(clf.scheme_)
     clf.present_ = np.array(side["present_classes"])
     clf.n_features_in_ = len(side["features"])
     clf.feature_names_in_ = np.array(side["features"], dtype=object)
@@ -178,7 +182,8 @@ def _load_hierarchical(folder: Path, side: dict) -> Any:
     model = HierarchicalClassifier(classes=tuple(h["classes"]), parents=parents,
                                    base_params=dict(side["params"].get("base_params", {})),
                                    gate_threshold=float(h["gate_threshold"]))
-    model.classes_ = np.array(h["classes"])
+    model.scheme_ = np.array(h["classes"])
+    model.classes_ = np.unique(model.scheme_)
     model.parents_ = parents
     model.top_classes_ = np.array(h["top_classes"])
     model.priors_ = {p: np.asarray(v, dtype=np.float64) for p, v in h["priors"].items()}

@@ -35,6 +35,7 @@ import pandas as pd
 from sklearn.base import BaseEstimator, ClassifierMixin, clone
 
 from ..errors import ModelError, ParameterError
+from .classifier import _positions, require_fitted
 
 __all__ = [
     "CalibratedWetlandClassifier",
@@ -372,7 +373,7 @@ class CalibratedWetlandClassifier(ClassifierMixin, BaseEstimator):
     Parameters
     ----------
     base : WetlandClassifier (or any classifier with a ``classes`` parameter)
-        Its ``classes`` give the scheme order of ``predict_proba``.
+        Its ``classes`` give the scheme order of ``predict_scheme_proba``.
     method : {"isotonic", "sigmoid"}, default "isotonic"
         Isotonic regression (Zadrozny & Elkan 2002) needs more held-out samples
         per class than the two-parameter sigmoid (Platt 1999).
@@ -382,11 +383,13 @@ class CalibratedWetlandClassifier(ClassifierMixin, BaseEstimator):
 
     Notes
     -----
-    scikit-learn's calibrator indexes classes in sorted order, and its binary
-    path assumes the base model's ``classes_`` are sorted.  The base is
-    therefore refitted over the classes present in ``y`` in sorted order, and
-    the output columns are mapped back to the scheme order (classes absent from
-    training get probability 0); :meth:`fit` checks that mapping.
+    scikit-learn's calibrator indexes the classes present in ``y`` in sorted
+    order.  The base is therefore refitted over exactly those classes, and the
+    output columns are mapped by name to the scheme order (``scheme_``, the
+    columns of :meth:`predict_scheme_proba`; classes absent from training get
+    probability 0) and to the sorted ``classes_`` (the columns of
+    :meth:`predict_proba`, scikit-learn's contract); :meth:`fit` checks that
+    mapping.
 
     References
     ----------
@@ -449,7 +452,8 @@ class CalibratedWetlandClassifier(ClassifierMixin, BaseEstimator):
         base = clone(self.base).set_params(classes=present)
         calibrator = CalibratedClassifierCV(base, method=self.method, cv=splits, ensemble=True)
         self.calibrated_ = calibrator.fit(X, y)
-        self.classes_ = np.array(scheme)
+        self.scheme_ = np.array(scheme)
+        self.classes_ = np.unique(self.scheme_)
         self.column_of_ = self._column_map(scheme)
         self.n_features_in_ = X.shape[1]
         return self
@@ -464,18 +468,21 @@ class CalibratedWetlandClassifier(ClassifierMixin, BaseEstimator):
             )
         return np.array([cal.index(c) if c in cal else -1 for c in scheme])
 
-    def predict_proba(self, X: Any) -> np.ndarray:
-        """Calibrated probabilities, columns in scheme order, rows summing to 1."""
-        if not hasattr(self, "calibrated_"):
-            raise ModelError(
-                "this CalibratedWetlandClassifier is not fitted yet; call fit(X, y, groups) first."
-            )
+    def predict_scheme_proba(self, X: Any) -> np.ndarray:
+        """Calibrated probabilities, columns in scheme order (``scheme_``), rows summing to 1."""
+        require_fitted(self, "calibrated_")
         raw = self.calibrated_.predict_proba(np.asarray(X, dtype=np.float32))
-        out = np.zeros((raw.shape[0], self.classes_.size))
+        out = np.zeros((raw.shape[0], self.scheme_.size))
         have = self.column_of_ >= 0
         out[:, have] = raw[:, self.column_of_[have]]
         return out / out.sum(axis=1, keepdims=True)
 
+    def predict_proba(self, X: Any) -> np.ndarray:
+        """Calibrated probabilities, columns in sorted ``classes_`` order (scikit-learn's contract)."""
+        p = self.predict_scheme_proba(X)
+        return p[:, _positions(self.scheme_, self.classes_)]
+
     def predict(self, X: Any) -> np.ndarray:
         """The most probable scheme class per row."""
-        return self.classes_[np.argmax(self.predict_proba(X), axis=1)]
+        p = self.predict_scheme_proba(X)
+        return self.scheme_[np.argmax(p, axis=1)]

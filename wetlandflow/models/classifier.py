@@ -1,9 +1,12 @@
 """Classifiers with a class scheme that travels with them, and the feature check against a fitted model.
 
 :class:`WetlandClassifier` is a scikit-learn estimator over XGBoost (multi-class
-softprob, ``hist``) or scikit-learn's random forest.  Probabilities always come
-in the class scheme's order, whatever subset of classes the training data held,
-and a class map (code, name, colour) travels with the fitted model.
+softprob, ``hist``) or scikit-learn's random forest.  It keeps scikit-learn's
+classifier contract (``classes_`` sorted, ``predict_proba`` columns in that
+order); the class scheme's own order, the order of a run's bands and tables, is
+``scheme_`` and comes from :meth:`WetlandClassifier.predict_scheme_proba` or
+:func:`scheme_proba` whatever subset of classes the training data held.  A class
+map (code, name, colour) travels with the fitted model.
 """
 
 from __future__ import annotations
@@ -17,7 +20,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from sklearn.base import BaseEstimator, ClassifierMixin
+from sklearn.exceptions import NotFittedError
 from sklearn.utils.class_weight import compute_sample_weight
+from sklearn.utils.validation import _check_sample_weight
 
 from ..errors import ModelError
 
@@ -112,12 +117,24 @@ def canonical_order(samples: pd.DataFrame) -> pd.DataFrame:
 
 
 class WetlandClassifier(ClassifierMixin, BaseEstimator):
-    """Per-class probabilities in a fixed class order, over XGBoost or a random forest.
+    """Per-class probabilities over XGBoost or a random forest, with the class scheme kept beside them.
+
+    The estimator follows scikit-learn's classifier contract: ``classes_`` is
+    sorted as :func:`numpy.unique` sorts the labels, and the columns of
+    :meth:`predict_proba` follow ``classes_``, so scikit-learn's probability
+    scorers (``neg_log_loss``, ``roc_auc_ovr``), ``cross_val_predict(...,
+    method="predict_proba")`` and calibration read them correctly.  The class
+    scheme's own order (the order of output bands and tables) is ``scheme_``;
+    :meth:`predict_scheme_proba` (or :func:`scheme_proba` for any classifier)
+    gives the columns in that order.
 
     Parameters
     ----------
-    classes : sequence of str
-        The class scheme, in order; ``predict_proba`` columns follow it.
+    classes : sequence of labels, optional
+        The class scheme, in order (``scheme_``).  Classes of the scheme absent
+        from the training labels get probability 0 in their own column.  ``None``
+        (default): the scheme is the sorted labels seen in ``fit``, as for any
+        scikit-learn classifier; labels may then be integers or strings.
     kind : {"xgboost", "random_forest"}
     n_estimators, max_depth, learning_rate : model size and step (learning_rate ignored by the forest)
     class_weighting : bool
@@ -125,9 +142,28 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
     n_threads : int
         Fixed thread count (with ``random_state``, the same inputs give the same model).
     random_state : int
+
+    Attributes
+    ----------
+    classes_ : ndarray
+        ``numpy.unique`` of the scheme: the column order of :meth:`predict_proba`.
+    scheme_ : ndarray
+        The class scheme in its own order: the column order of :meth:`predict_scheme_proba`.
+    present_ : ndarray
+        Scheme classes seen in training, scheme order (the internal model's classes).
+    n_features_in_ : int
+    feature_names_in_ : ndarray of str
+        Only when ``X`` in ``fit`` was a DataFrame.
+
+    Examples
+    --------
+    >>> X = np.array([[0.0], [0.1], [1.0], [1.1]])
+    >>> m = WetlandClassifier(classes=("upland", "fen"), n_estimators=5).fit(X, ["upland"] * 2 + ["fen"] * 2)
+    >>> m.classes_.tolist(), m.scheme_.tolist()
+    (['fen', 'upland'], ['upland', 'fen'])
     """
 
-    def __init__(self, classes=("upland", "wetland"), kind="xgboost", n_estimators=300, max_depth=6,
+    def __init__(self, classes=None, kind="xgboost", n_estimators=300, max_depth=6,
                  learning_rate=0.1, class_weighting=True, n_threads=2, random_state=0):
         self.classes = classes
         self.kind = kind
@@ -137,6 +173,11 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
         self.class_weighting = class_weighting
         self.n_threads = n_threads
         self.random_state = random_state
+
+    def __sklearn_tags__(self):
+        tags = super().__sklearn_tags__()
+        tags.input_tags.allow_nan = True  # missing values are routed natively by both model kinds
+        return tags
 
     def _make(self, n_classes: int):
         if self.kind == "xgboost":
@@ -162,8 +203,8 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
         X : array-like or pandas.DataFrame of shape (n_samples, n_features)
             A DataFrame's column names are kept (``feature_names_in_``) and
             later DataFrames are aligned to them by name.
-        y : array-like of str
-            Labels from ``classes``.
+        y : array-like of str or int
+            Labels from ``classes`` (any labels when ``classes`` is None).
         sample_weight : array-like, optional
             Multiplied with the class weights.
 
@@ -173,22 +214,30 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
             ``self``.
         """
         has_names = hasattr(X, "columns")
-        names = _column_names(X, np.shape(X)[1])
-        X = np.asarray(X, dtype=np.float32)
+        names = [str(c) for c in X.columns] if has_names else None
+        y = _check_labels(y)
+        X = _check_matrix(X, type(self).__name__)
+        if y.shape[0] != X.shape[0]:
+            raise ModelError(f"X has {X.shape[0]} rows but y has {y.shape[0]} labels; give one label per "
+                             "sample.")
+        names = names if names is not None else _column_names(X, X.shape[1])
         check_no_sentinels(X, names)
-        y = np.asarray(y).astype(str)
-        unknown = sorted(set(y) - set(self.classes))
-        if unknown:
-            raise ModelError(f"labels {unknown} are not in the class scheme {list(self.classes)}")
-        self.classes_ = np.array(self.classes)
-        present = [c for c in self.classes if c in set(y)]
-        self.present_ = np.array(present)
-        code = {c: i for i, c in enumerate(present)}
-        yi = np.array([code[c] for c in y])
+        scheme = _scheme_labels(self.classes, y)
+        self.scheme_ = scheme
+        self.classes_ = np.unique(scheme)
+        seen = set(y.tolist())
+        self.present_ = scheme[[c in seen for c in scheme.tolist()]]
+        if len(self.present_) < 2:
+            raise ModelError(f"{type(self).__name__} needs at least 2 classes in the training labels; got "
+                             f"only {self.present_.tolist()} in {len(y)} samples. Add samples of another "
+                             "class.")
+        code = {c: i for i, c in enumerate(self.present_.tolist())}
+        yi = np.array([code[c] for c in y.tolist()])
         w = compute_sample_weight("balanced", yi) if self.class_weighting else None
         if sample_weight is not None:
-            w = np.asarray(sample_weight) * (w if w is not None else 1.0)
-        self.model_ = self._make(len(present))
+            sw = _check_sample_weight(sample_weight, X)
+            w = sw * (w if w is not None else 1.0)
+        self.model_ = self._make(len(self.present_))
         with openmp_threads(self.n_threads):
             self.model_.fit(X, yi, sample_weight=w)
         self.n_features_in_ = X.shape[1]
@@ -197,6 +246,8 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
             self.feature_names_in_ = np.array(names, dtype=object)
         elif hasattr(self, "feature_names_in_"):
             del self.feature_names_in_
+        # predict_proba's columns: each sorted class's position in the scheme
+        self._sorted_columns_ = np.array([scheme.tolist().index(c) for c in self.classes_.tolist()])
         return self
 
     def _present_proba(self, X: np.ndarray) -> np.ndarray:
@@ -209,18 +260,24 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
 
     def _matrix(self, X: Any) -> np.ndarray:
         """Features as float32, aligned by name when both sides carry names."""
+        require_fitted(self, "model_")
         names = getattr(self, "feature_names_in_", None)
         if hasattr(X, "columns") and names is not None:
-            X = align_features(X, list(names))
-        Xa = np.asarray(X, dtype=np.float32)
-        if Xa.ndim != 2 or Xa.shape[1] != self.n_features_in_:
-            raise ModelError(f"expected {self.n_features_in_} features, got array of shape {Xa.shape}; pass "
-                             "the features the model was trained on (see align_features)")
+            # names were learned as strings (a frame with integer column labels has them too)
+            X = align_features(X.set_axis([str(c) for c in X.columns], axis=1), list(names))
+        Xa = _check_matrix(X, type(self).__name__)
+        if Xa.shape[1] != self.n_features_in_:
+            raise ModelError(f"X has {Xa.shape[1]} features, but {type(self).__name__} is expecting "
+                             f"{self.n_features_in_} features as input: expected {self.n_features_in_} "
+                             f"features, got an array of shape {Xa.shape}; pass the features the model was "
+                             "trained on (see align_features)")
         check_no_sentinels(Xa, list(names) if names is not None else _column_names(Xa, Xa.shape[1]))
         return Xa
 
-    def predict_proba(self, X: Any) -> np.ndarray:
-        """Class probabilities, one column per scheme class in scheme order (absent classes get 0).
+    def predict_scheme_proba(self, X: Any) -> np.ndarray:
+        """Class probabilities, one column per scheme class in scheme order (``scheme_``; absent classes 0).
+
+        The order of the output bands and tables of a run.
 
         Returns
         -------
@@ -228,21 +285,131 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
         """
         X = self._matrix(X)
         p = self._present_proba(X)
-        if len(self.present_) == len(self.classes_):
+        if len(self.present_) == len(self.scheme_):
             return p.astype(np.float32)
-        out = np.zeros((X.shape[0], len(self.classes_)), dtype=np.float32)
-        idx = [list(self.classes_).index(c) for c in self.present_]
-        out[:, idx] = p
+        out = np.zeros((X.shape[0], len(self.scheme_)), dtype=np.float32)
+        out[:, _positions(self.scheme_, self.present_)] = p
         return out
 
+    def predict_proba(self, X: Any) -> np.ndarray:
+        """Class probabilities, one column per class of ``classes_`` (sorted), as scikit-learn expects.
+
+        Returns
+        -------
+        numpy.ndarray of float32, shape (n_samples, n_classes)
+        """
+        return self.predict_scheme_proba(X)[:, _positions(self.scheme_, self.classes_)]
+
     def predict_frame(self, X: Any) -> pd.DataFrame:
-        """:meth:`predict_proba` as a DataFrame whose columns are the class names (index follows ``X``)."""
+        """Scheme-order probabilities as a DataFrame, columns named by class (index follows ``X``)."""
         index = X.index if isinstance(X, pd.DataFrame) else None
-        return pd.DataFrame(self.predict_proba(X), columns=list(self.classes_), index=index)
+        return pd.DataFrame(self.predict_scheme_proba(X), columns=list(self.scheme_), index=index)
 
     def predict(self, X: Any) -> np.ndarray:
-        """The most probable scheme class per row."""
-        return self.classes_[np.argmax(self.predict_proba(X), axis=1)]
+        """The most probable class per row (ties go to the first in scheme order)."""
+        p = self.predict_scheme_proba(X)
+        return self.scheme_[np.argmax(p, axis=1)]
+
+
+class NotFittedModelError(ModelError, NotFittedError):
+    """A model was asked to predict before ``fit`` (scikit-learn's ``NotFittedError`` too)."""
+
+
+def require_fitted(model: Any, attribute: str) -> None:
+    """Raise :class:`NotFittedModelError` unless ``model`` has the fitted ``attribute``."""
+    if not hasattr(model, attribute):
+        name = type(model).__name__
+        raise NotFittedModelError(f"this {name} is not fitted yet (it has no {attribute}); call fit(X, y) "
+                                  f"first, or load a fitted model with load_bundle.")
+
+
+class FeatureTypeError(ModelError, TypeError):
+    """Features of a type that is not a number (a dict, a string, a sparse matrix without support)."""
+
+
+def _positions(order: np.ndarray, labels: np.ndarray) -> np.ndarray:
+    """For each label, its position in ``order``."""
+    where = {c: i for i, c in enumerate(np.asarray(order).tolist())}
+    return np.array([where[c] for c in np.asarray(labels).tolist()], dtype=np.int64)
+
+
+def _check_matrix(X: Any, owner: str) -> np.ndarray:
+    """A 2-D float32 matrix (NaN allowed; inf, complex, sparse, empty refused), checked as scikit-learn does."""
+    from sklearn.utils.validation import check_array
+
+    try:
+        return check_array(X, dtype=np.float32, ensure_all_finite="allow-nan", estimator=owner)
+    except (TypeError, ValueError) as exc:
+        kind = FeatureTypeError if isinstance(exc, TypeError) else ModelError
+        raise kind(f"{owner}: the features are not a usable matrix: {exc}. Pass a 2-D table of "
+                         "numbers (one row per sample, one column per feature; NaN marks a missing value)."
+                         ) from exc
+
+
+def _check_labels(y: Any) -> np.ndarray:
+    """1-D class labels (strings or integers; continuous targets refused), one per row of X."""
+    from sklearn.utils.multiclass import check_classification_targets
+    from sklearn.utils.validation import column_or_1d
+
+    if y is None:
+        raise ModelError("fit requires y to be passed, but the target y is None; pass one class label per "
+                         "sample.")
+    y = column_or_1d(y, warn=True)
+    check_classification_targets(y)
+    return y.astype(str) if y.dtype.kind in "OUS" else y
+
+
+def _scheme_labels(classes: Any, y: np.ndarray) -> np.ndarray:
+    """The scheme as an array of the labels' kind; every label must be in it."""
+    if classes is None:
+        return np.unique(y)
+    scheme = np.asarray(list(classes))
+    if scheme.dtype.kind in "OUS":
+        scheme = scheme.astype(str)
+    if len(set(scheme.tolist())) != scheme.size:
+        raise ModelError(f"the class scheme {scheme.tolist()} names a class twice; list each class once.")
+    unknown = sorted(set(y.tolist()) - set(scheme.tolist()), key=str)
+    if unknown:
+        encoded = y.dtype.kind in "iu" and scheme.dtype.kind == "U"
+        hint = (" Integer labels against a scheme of names usually come from scikit-learn encoding the "
+                "labels (cross_val_predict with method='predict_proba'); use WetlandClassifier(classes=None) "
+                "there, or compute out-of-fold probabilities fold by fold." if encoded else "")
+        raise ModelError(f"labels {unknown} are not in the class scheme {scheme.tolist()}; add them to "
+                         "the scheme ([classes] names in the project file) or correct the labels." + hint)
+    return scheme
+
+
+def scheme_proba(model: Any, X: Any, scheme: Sequence[Any] | None = None) -> np.ndarray:
+    """Probabilities of any fitted classifier with columns in a class scheme's order, mapped by name.
+
+    Parameters
+    ----------
+    model : fitted classifier
+        With ``predict_proba`` and ``classes_`` (scikit-learn contract); a
+        wetlandflow classifier also has ``scheme_``.
+    X : array-like
+    scheme : sequence, optional
+        The column order wanted; default the model's ``scheme_`` (else ``classes_``).
+        A scheme class the model does not know gets probability 0.
+
+    Returns
+    -------
+    numpy.ndarray, shape (n_samples, len(scheme))
+    """
+    own = getattr(model, "scheme_", None)
+    if scheme is None or (own is not None and list(scheme) == own.tolist()):
+        if hasattr(model, "predict_scheme_proba"):
+            return model.predict_scheme_proba(X)
+        scheme = own if own is not None else model.classes_
+    p = np.asarray(model.predict_proba(X))
+    names = [c.item() if isinstance(c, np.generic) else c for c in scheme]
+    missing = [c for c in np.asarray(model.classes_).tolist() if c not in names]
+    if missing:
+        raise ModelError(f"the model predicts classes {missing} that are not in the scheme {names}; pass the "
+                         "scheme the model was trained with.")
+    out = np.zeros((p.shape[0], len(names)), dtype=p.dtype)
+    out[:, _positions(np.asarray(names, dtype=object), model.classes_)] = p
+    return out
 
 
 def openmp_threads(n: int):

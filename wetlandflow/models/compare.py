@@ -63,7 +63,7 @@ from .calibration import (
     plot_reliability_comparison,
     reliability_table,
 )
-from .classifier import ClassScheme, WetlandClassifier, canonical_order
+from .classifier import ClassScheme, WetlandClassifier, canonical_order, scheme_proba
 from .hierarchy import HierarchicalClassifier
 from .selection import (
     SelectionResult,
@@ -215,7 +215,7 @@ def _factory(kind: str, structure: str, scheme: ClassScheme, params: dict, seed:
 
 def _fit_predict(make: Callable[[], Any], X_train: np.ndarray, y_train: np.ndarray,
                  X_test: np.ndarray) -> np.ndarray:
-    return make().fit(X_train, y_train).predict_proba(X_test)
+    return scheme_proba(make().fit(X_train, y_train), X_test)
 
 
 def _oof(make: Callable[[], Any], X: pd.DataFrame, y: np.ndarray, folds: np.ndarray,

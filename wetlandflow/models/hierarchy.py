@@ -26,7 +26,7 @@ import pandas as pd
 from sklearn.base import BaseEstimator, ClassifierMixin
 
 from ..errors import ModelError
-from .classifier import WetlandClassifier
+from .classifier import WetlandClassifier, _check_labels, _positions, require_fitted
 
 __all__ = ["HierarchicalClassifier"]
 
@@ -73,7 +73,7 @@ class _Constant:
     def __init__(self, proba: np.ndarray):
         self.proba = proba
 
-    def predict_proba(self, X: np.ndarray) -> np.ndarray:
+    def predict_scheme_proba(self, X: np.ndarray) -> np.ndarray:
         return np.tile(self.proba, (X.shape[0], 1))
 
 
@@ -83,7 +83,9 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
     Parameters
     ----------
     classes : sequence of str
-        Leaf classes in scheme order; ``predict_proba`` columns follow it.
+        Leaf classes in scheme order (``scheme_``); :meth:`predict_scheme_proba`
+        columns follow it, :meth:`predict_proba` columns follow the sorted
+        ``classes_`` as scikit-learn expects.
     parents : dict of str to tuple of str
         Parent group name to its child classes (``{"wetland": ("marsh", "swamp",
         "fen", "bog")}``).  Classes under no parent are top-level classes.
@@ -115,13 +117,16 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
 
     Inside ``cross_val_predict`` use ``method="predict"`` (the default):
     scikit-learn integer-encodes the labels for ``method="predict_proba"``, and
-    the integers are not scheme classes.  For out-of-fold probabilities loop
-    over ``cv.split(X, y, groups)`` and call ``predict_proba`` per fold.
+    the integers are not the names the tree is built from.  For out-of-fold
+    probabilities loop over ``cv.split(X, y, groups)`` and call
+    ``predict_proba`` per fold.
 
     Attributes
     ----------
     classes_ : ndarray of str
-        Leaf classes, scheme order.
+        Leaf classes sorted (``numpy.unique``): the columns of :meth:`predict_proba`.
+    scheme_ : ndarray of str
+        Leaf classes, scheme order: the columns of :meth:`predict_scheme_proba`.
     top_classes_ : ndarray of str
         Top-level classes, in order of their first leaf in the scheme.
     top_model_ : WetlandClassifier
@@ -198,13 +203,15 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
         """
         classes, parents = self._validate()
         X = np.asarray(X, dtype=np.float32)
-        y = np.asarray(y).astype(str)
+        y = _check_labels(y).astype(str)
         unknown = sorted(set(y) - set(classes))
         if unknown:
-            raise ModelError(f"labels {unknown} are not in the class scheme {list(classes)}")
+            raise ModelError(f"labels {unknown} are not in the class scheme {list(classes)}; the tree is "
+                             "built from class names, so pass the labels as names (not integer codes).")
         w = None if sample_weight is None else np.asarray(sample_weight, dtype=float)
         top_of = _top_of(classes, parents)
-        self.classes_ = np.array(classes)
+        self.scheme_ = np.array(classes)
+        self.classes_ = np.unique(self.scheme_)
         self.parents_ = parents
         self.top_classes_ = np.array(list(dict.fromkeys(top_of[c] for c in classes)))
         y_top = np.array([top_of[c] for c in y])
@@ -233,14 +240,13 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
 
     def _levels(self, X: Any) -> tuple[np.ndarray, dict[str, np.ndarray], np.ndarray]:
         """Top probabilities, per-parent conditional probabilities and leaf probabilities."""
-        if not hasattr(self, "top_model_"):
-            raise ModelError("this HierarchicalClassifier is not fitted yet; call fit(X, y) first.")
+        require_fitted(self, "top_model_")
         gate = self._gate()
         Xa = np.asarray(X, dtype=np.float32)
-        top = _normalise(self.top_model_.predict_proba(Xa))
-        leaf = np.zeros((Xa.shape[0], len(self.classes_)))
+        top = _normalise(self.top_model_.predict_scheme_proba(Xa))
+        leaf = np.zeros((Xa.shape[0], len(self.scheme_)))
         conditional = {}
-        col = {c: i for i, c in enumerate(self.classes_)}
+        col = {c: i for i, c in enumerate(self.scheme_)}
         for j, t in enumerate(self.top_classes_):
             if t not in self.child_models_:
                 leaf[:, col[t]] = top[:, j]
@@ -257,16 +263,22 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
         # Only the open rows are copied out and sent to the child model: that is the whole saving.
         open_rows = p_parent > gate
         if open_rows.any():
-            cond[open_rows] = _normalise(self.child_models_[parent].predict_proba(X[open_rows]))
+            cond[open_rows] = _normalise(self.child_models_[parent].predict_scheme_proba(X[open_rows]))
         return cond
 
-    def predict_proba(self, X: Any) -> np.ndarray:
-        """Leaf probabilities, columns in ``classes`` order, rows summing to 1 (float64)."""
+    def predict_scheme_proba(self, X: Any) -> np.ndarray:
+        """Leaf probabilities, columns in scheme order (``scheme_``), rows summing to 1 (float64)."""
         return self._levels(X)[2]
 
+    def predict_proba(self, X: Any) -> np.ndarray:
+        """Leaf probabilities, columns in sorted ``classes_`` order (scikit-learn's contract)."""
+        p = self.predict_scheme_proba(X)
+        return p[:, _positions(self.scheme_, self.classes_)]
+
     def predict(self, X: Any) -> np.ndarray:
-        """The most probable leaf class per row."""
-        return self.classes_[np.argmax(self.predict_proba(X), axis=1)]
+        """The most probable leaf class per row (ties go to the first in scheme order)."""
+        p = self.predict_scheme_proba(X)
+        return self.scheme_[np.argmax(p, axis=1)]
 
     def predict_proba_levels(self, X: Any) -> dict[str, pd.DataFrame]:
         """Probabilities at every level of the tree.
@@ -276,7 +288,7 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
         dict of str to pandas.DataFrame
             ``"top"``: P(top-level class); one entry per parent name: P(child |
             parent) (the priors on gated rows); ``"leaf"``: the joint leaf
-            probabilities of :meth:`predict_proba`.  Indexes follow ``X``'s
+            probabilities of :meth:`predict_scheme_proba`.  Indexes follow ``X``'s
             index when ``X`` is a DataFrame.
         """
         index = X.index if isinstance(X, pd.DataFrame) else None
@@ -284,7 +296,7 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
         out = {"top": pd.DataFrame(top, columns=list(self.top_classes_), index=index)}
         for p, cond in conditional.items():
             out[p] = pd.DataFrame(cond, columns=list(self.parents_[p]), index=index)
-        out["leaf"] = pd.DataFrame(leaf, columns=list(self.classes_), index=index)
+        out["leaf"] = pd.DataFrame(leaf, columns=list(self.scheme_), index=index)
         return out
 
     def present_leaves(self) -> list[str]:
@@ -293,12 +305,11 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
         A leaf is absent when its top-level class was absent from the top level's training data,
         or, under a parent, when the child model never saw it (or its prior is 0).
         """
-        if not hasattr(self, "top_model_"):
-            raise ModelError("this HierarchicalClassifier is not fitted yet; call fit(X, y) first.")
+        require_fitted(self, "top_model_")
         top = set(self.top_model_.present_.tolist())
         parent_of = {c: p for p, cs in self.parents_.items() for c in cs}
         out = []
-        for c in self.classes_:
+        for c in self.scheme_:
             p = parent_of.get(str(c))
             if p is None:
                 ok = c in top

@@ -38,7 +38,7 @@ from ..inputs.preflight import preflight
 from ..inputs.project import Project, check_model_section, config_hash, load_project, portable_dict, to_dict
 from ..mapping.predict import AOA_LAYERS, LAYERS, class_areas, code_counts, predict_map
 from ..models.bundle import load_bundle, save_bundle
-from ..models.classifier import ClassScheme, WetlandClassifier, data_hash
+from ..models.classifier import ClassScheme, WetlandClassifier, data_hash, scheme_proba
 from ..models.hierarchy import HierarchicalClassifier
 from ..training.samples import (
     check_training_features,
@@ -376,7 +376,7 @@ def cross_validate(project: Project, samples: pd.DataFrame, features: list[str],
             check()
         w = training_weights(project, samples[~test])
         model = make_model(project).fit(X[~test], y[~test], sample_weight=w)
-        oof[test] = model.predict_proba(X[test])
+        oof[test] = scheme_proba(model, X[test])  # columns in scheme order, as the oof table
     return oof, folds
 
 

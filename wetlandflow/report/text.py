@@ -603,15 +603,35 @@ def _area_accuracy_tables(run: RunFolder, s: dict[str, Any]) -> list:
                           "error-adjusted ha": [ha(v) for v in areas["estimated_area_ha"]],
                           f"{_conf(s)} interval ha": [f"{ha(a)} to {ha(b)}" for a, b in
                                                       zip(areas["ci_low_ha"], areas["ci_high_ha"], strict=True)]})
+        notes = _zero_error_notes(areas)
+        if any(notes):
+            t["note"] = notes
         out.append(Table(t, "Mapped and error-adjusted class areas"))
     if accs is not None:
-        t = pd.DataFrame({"class": accs["class"],
-                          "user's": [f"{acc(u)} +/- {acc(c)}" for u, c in zip(accs["users"], accs["users_ci"],
-                                                                            strict=True)],
-                          "producer's": [f"{acc(u)} +/- {acc(c)}" for u, c in
-                                         zip(accs["producers"], accs["producers_ci"], strict=True)]})
+        notes = _zero_error_notes(accs)
+        t = pd.DataFrame({"class": accs["class"], **{
+            label: [_accuracy_cell(accs, key, i, bool(n)) for i, n in enumerate(notes)]
+            for label, key in (("user's", "users"), ("producer's", "producers"))}})
+        if any(notes):
+            t["note"] = ["no error observed in the sample: interval of the unobserved error rate" if n else ""
+                         for n in notes]
         out.append(Table(t, "User's and producer's accuracy from the probability sample"))
     return out
+
+
+def _zero_error_notes(table: pd.DataFrame) -> list[str]:
+    """The 'note' column of an area or accuracy table ('' where empty; absent in older runs)."""
+    if "note" not in table.columns:
+        return [""] * len(table)
+    return [v if isinstance(v, str) else "" for v in table["note"]]
+
+
+def _accuracy_cell(accs: pd.DataFrame, key: str, i: int, noted: bool) -> str:
+    """'0.95 +/- 0.02', or the interval's bounds where an error rate observed as zero made it one-sided."""
+    row = accs.iloc[i]
+    if noted and f"{key}_ci_low" in accs.columns:
+        return f"{acc(row[key])} ({acc(row[f'{key}_ci_low'])} to {acc(row[f'{key}_ci_high'])})"
+    return f"{acc(row[key])} +/- {acc(row[f'{key}_ci'])}"
 
 
 def section_maps(run: RunFolder) -> Section:

@@ -114,10 +114,19 @@ def format_assessment(project, labelled, *, design: str = "stratified") -> str:
              f"  overall accuracy {res['overall_accuracy']:.3f} (SE {res['overall_se']:.3f})", "",
              f"  {'class':<12s} {'mapped ha':>10s} {'adjusted ha':>12s} {'95% CI ha':>21s} {'user':>6s} "
              f"{'producer':>9s}"]
+    notes = []
     for _, r in table.iterrows():
         a = acc.loc[r["class"]]
+        note = r.get("note")
+        mark = "*" if isinstance(note, str) and note else " "
+        if mark == "*":
+            notes.append(f"  * {r['class']}: {note}")
         lines.append(f"  {r['class']:<12s} {r['mapped_area_ha']:>10,.1f} {r['estimated_area_ha']:>12,.1f} "
-                     f"{r['ci_low_ha']:>10,.1f}-{r['ci_high_ha']:<10,.1f} {a['users']:>6.2f} {a['producers']:>9.2f}")
+                     f"{r['ci_low_ha']:>10,.1f}-{r['ci_high_ha']:<10,.1f}{mark}{a['users']:>6.2f} "
+                     f"{a['producers']:>9.2f}")
+    if notes:
+        lines += ["", "  * an error rate observed as zero in the sample: the interval comes from the "
+                  "interval of that rate, not from a zero standard error:", *notes]
     lines += ["", f"Tables and figures: {res['folder']}; areas.csv updated.", "", f"CAUTION: {CAUTION}"]
     return "\n".join(lines)
 

@@ -76,6 +76,7 @@ def _cv_loop(
     offset: int,
     total: int,
 ) -> CVResult:
+    from ...models.classifier import scheme_proba
     from ...pipeline.run import make_model
 
     X = samples[features].to_numpy(np.float32)
@@ -95,7 +96,7 @@ def _cv_loop(
         control.report(f"{label}: fold {i + 1} of {len(ids)}", offset + i, total)
         t0 = time.perf_counter()
         test = folds == k
-        oof[test] = make_model(project).fit(X[~test], y[~test]).predict_proba(X[test])
+        oof[test] = scheme_proba(make_model(project).fit(X[~test], y[~test]), X[test])
         acc = float(np.mean(np.asarray(names)[np.argmax(oof[test], axis=1)] == y[test]))
         rows.append(
             {
