@@ -168,8 +168,12 @@ def write_vector(gdf: Any, path: str | Path, *, layer: str) -> Path:
     """Write a GeoDataFrame as a GeoPackage layer, atomically."""
     path = Path(path)
     with atomic_path(path) as tmp:
-        gdf.to_file(tmp.with_suffix(".gpkg"), layer=layer, driver="GPKG")
-        os.replace(tmp.with_suffix(".gpkg"), tmp)
+        gpkg = tmp.with_suffix(".gpkg")  # GDAL wants the suffix; removed below if the write fails
+        try:
+            gdf.to_file(gpkg, layer=layer, driver="GPKG")
+            os.replace(gpkg, tmp)
+        finally:
+            gpkg.unlink(missing_ok=True)
     return path
 
 
