@@ -24,6 +24,7 @@ from .. import CAUTION, __version__
 from ..errors import Cancelled, ProjectFileError
 from ..features.cube import build_cube, open_cube, save_cube, season_coverage
 from ..inputs.io import (
+    check_disk_space,
     check_file_size_limit,
     check_writable,
     disk_full_error,
@@ -529,7 +530,9 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     map_uses = [model_dir, zarr_path] + ([vdir] if applicability else [])
     if not manifest.reusable("mapping", k_map, list(map_paths.values()), uses=map_uses):
         with manifest.step("mapping", k_map, outputs=list(map_paths.values()), uses=map_uses) as rec:
-            check_file_size_limit(run_dir, staged_map_sizes(grid, len(project.classes.names)), step="mapping")
+            staged = staged_map_sizes(grid, len(project.classes.names))
+            check_file_size_limit(run_dir, staged, step="mapping")
+            check_disk_space(run_dir, 2 * sum(staged.values()))  # the stage, then the COGs beside it
             aoa_model = None
             if applicability:
                 aoa_model = applicability_model(model, samples, features, folds)
