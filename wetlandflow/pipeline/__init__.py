@@ -2,7 +2,8 @@
 
 Takes a project file and returns a run folder: the steps inputs, features, samples, validation, model,
 mapping, inventory and explain, each cached by its inputs and recorded in ``manifest.json`` (``run``), with
-the later steps' compositions of library functions in ``steps``.  Nothing below imports this package.
+the later steps' compositions of library functions in ``steps``, and the run folder's lock (one writer at a
+time) in ``lock``.  Nothing below imports this package.
 """
 
 from .._lazy import exports
@@ -11,4 +12,5 @@ __all__, __getattr__, __dir__ = exports(__name__, {
     "run": ["RunResult", "Manifest", "run_project", "make_model", "make_splitter", "training_weights",
             "cross_validate", "feature_names", "format_summary"],
     "steps": ["applicability_model", "write_inventory_outputs", "write_explanations", "top_drivers"],
+    "lock": ["run_folder_lock", "read_lock", "LockHolder", "LOCK_NAME"],
 })
