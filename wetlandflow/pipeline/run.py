@@ -8,6 +8,7 @@ leaves an honest account of what finished.
 from __future__ import annotations
 
 import datetime as dt
+import errno
 import platform
 import sys
 import time
@@ -541,6 +542,8 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
                                     class_names=project.classes.names, window_size=project.output.chunk_size,
                                     aoa_model=aoa_model, memory_budget_gb=project.output.memory_budget_gb,
                                     progress=progress, check=check)
+            check_class_map_complete(map_paths["class"], inputs.aoi, len(project.classes.names),
+                                     step="mapping")
             rec["outputs"] = {k: str(v.relative_to(run_dir)) for k, v in map_paths.items()}
             rec["data_sha256"] = {k: raster_data_sha256(v) for k, v in map_paths.items()}
             if applicability:
@@ -560,6 +563,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
             rec.update(write_inventory_outputs(map_paths, run_dir, grid, project.classes.names,
                                                mmu_pixels=project.output.mmu_pixels,
                                                connectivity=project.output.connectivity))
+            check_class_map_complete(final_path, inputs.aoi, len(project.classes.names), step="inventory")
             rec["data_sha256"] = {"class_final": raster_data_sha256(final_path)}
             mapped = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
             if previous_final.get("class_final") != rec["data_sha256"]["class_final"]:
@@ -716,6 +720,26 @@ def _set_aside_stale_assessment(run_dir: Path) -> str | None:
     target = run_dir / f"accuracy_stale_{stamp}"
     acc.rename(target)
     return target.name
+
+
+def check_class_map_complete(path: Path, aoi, n_classes: int, *, step: str) -> None:
+    """Refuse a class map with no class at a pixel inside the area of interest (or a code beyond the scheme).
+
+    Every pixel inside the AOI is classified, so a gap there means a block of the file was never
+    written: GDAL reports a failed block write (a full disk) only on standard error, and the gap would
+    otherwise count as no area at all.  Raises the disk-full :class:`~wetlandflow.errors.OutputError`.
+    """
+    from ..mapping.predict import CLASS_NODATA
+
+    counts = code_counts(path, 256)
+    outside = int(aoi.size - int(aoi.sum()))
+    unmapped, beyond = int(counts[CLASS_NODATA]) - outside, int(counts[n_classes + 1:].sum())
+    if unmapped == 0 and beyond == 0:
+        return
+    cause = OSError(errno.ENOSPC, f"{unmapped} pixel(s) inside the area of interest have no class and "
+                                  f"{beyond} a code beyond the {n_classes} classes, so a block of the map "
+                                  "was not written (GDAL reports a failed block write only on standard error)")
+    raise disk_full_error(cause, path.parent, path=path, step=step)
 
 
 def staged_map_sizes(grid, n_classes: int) -> dict[str, int]:
