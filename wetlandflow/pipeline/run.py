@@ -544,6 +544,8 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
                                     progress=progress, check=check)
             check_class_map_complete(map_paths["class"], inputs.aoi, len(project.classes.names),
                                      step="mapping")
+            for layer in ("probability", "confidence"):
+                check_layer_complete(map_paths[layer], inputs.aoi, step="mapping")
             rec["outputs"] = {k: str(v.relative_to(run_dir)) for k, v in map_paths.items()}
             rec["data_sha256"] = {k: raster_data_sha256(v) for k, v in map_paths.items()}
             if applicability:
@@ -732,13 +734,37 @@ def check_class_map_complete(path: Path, aoi, n_classes: int, *, step: str) -> N
     from ..mapping.predict import CLASS_NODATA
 
     counts = code_counts(path, 256)
-    outside = int(aoi.size - int(aoi.sum()))
-    unmapped, beyond = int(counts[CLASS_NODATA]) - outside, int(counts[n_classes + 1:].sum())
-    if unmapped == 0 and beyond == 0:
+    beyond = int(counts[n_classes + 1:].sum())
+    _refuse_gaps(path, int(counts[CLASS_NODATA]) - _outside(aoi), step,
+                 f" and {beyond} a code beyond the {n_classes} classes" if beyond else "")
+
+
+def check_layer_complete(path: Path, aoi, *, step: str) -> None:
+    """Refuse a map layer (probability, confidence) with no value in band 1 at a pixel inside the area of
+    interest: its tiles hold every band, so an unwritten tile shows in band 1 (see
+    :func:`check_class_map_complete`)."""
+    import rasterio
+
+    empty = 0
+    with rasterio.open(path) as src:
+        nodata = src.nodata
+        for _, w in src.block_windows(1):
+            band = src.read(1, window=w)
+            gap = np.isnan(band) if nodata is None or np.isnan(nodata) else band == nodata
+            empty += int(gap.sum())
+    _refuse_gaps(path, empty - _outside(aoi), step, "")
+
+
+def _outside(aoi) -> int:
+    return int(aoi.size - int(aoi.sum()))
+
+
+def _refuse_gaps(path: Path, unmapped: int, step: str, more: str) -> None:
+    if unmapped == 0 and not more:
         return
-    cause = OSError(errno.ENOSPC, f"{unmapped} pixel(s) inside the area of interest have no class and "
-                                  f"{beyond} a code beyond the {n_classes} classes, so a block of the map "
-                                  "was not written (GDAL reports a failed block write only on standard error)")
+    cause = OSError(errno.ENOSPC, f"{unmapped} pixel(s) inside the area of interest have no value{more}, so "
+                                  "a block of the map was not written (GDAL reports a failed block write only "
+                                  "on standard error)")
     raise disk_full_error(cause, path.parent, path=path, step=step)
 
 
