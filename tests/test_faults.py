@@ -232,7 +232,7 @@ def test_a_class_map_with_an_unwritten_block_is_refused(tmp_path):
     """A block GDAL failed to write reads back as no data; inside the area of interest that cannot be a
     result (every pixel there is classified), so the map is refused, naming the file, step and free space."""
     from wetlandflow.errors import OutputError
-    from wetlandflow.pipeline.run import check_class_map_complete, check_layer_complete
+    from wetlandflow.pipeline.checks import check_class_map_complete, check_layer_complete
 
     aoi = xr.DataArray(np.ones((64, 64), bool), dims=("y", "x"))
     aoi[:, :8] = False
