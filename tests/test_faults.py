@@ -226,3 +226,41 @@ def test_a_full_disk_names_the_file_the_step_and_the_free_space(tmp_path):
     assert not (run_dir / "maps" / "probability.tif").exists() and not leftovers(run_dir)
     steps = json.loads((run_dir / "manifest.json").read_text())["steps"]
     assert steps["samples"]["status"] == "done" and steps["features"].get("reused")
+
+
+def test_a_class_map_with_an_unwritten_block_is_refused(tmp_path):
+    """A block GDAL failed to write reads back as no data; inside the area of interest that cannot be a
+    result (every pixel there is classified), so the map is refused, naming the file, step and free space."""
+    from wetlandflow.errors import OutputError
+    from wetlandflow.pipeline.checks import check_class_map_complete, check_layer_complete
+
+    aoi = xr.DataArray(np.ones((64, 64), bool), dims=("y", "x"))
+    aoi[:, :8] = False
+    values = np.where(aoi.values, 2, 0).astype(np.uint8)
+    path = tmp_path / "class.tif"
+    profile = {"driver": "GTiff", "width": 64, "height": 64, "count": 1, "dtype": "uint8", "nodata": 0,
+               "tiled": True, "blockxsize": 16, "blockysize": 16}
+    with rasterio.open(path, "w", **profile) as dst:
+        dst.write(values[None])
+    check_class_map_complete(path, aoi, 3, step="mapping")  # complete: no error
+
+    values[16:32, 16:32] = 0  # one block inside the AOI never written
+    with rasterio.open(path, "w", **profile) as dst:
+        dst.write(values[None])
+    expected = r"in step 'inventory'.*256 pixel\(s\) inside the area of interest have no value"
+    with pytest.raises(OutputError, match=expected) as e:
+        check_class_map_complete(path, aoi, 3, step="inventory")
+    assert f"could not write {path}" in str(e.value) and "free on the disk of" in str(e.value)
+
+    proba = np.where(aoi.values, 0.5, np.nan).astype(np.float32)[None].repeat(2, axis=0)
+    proba_path = tmp_path / "probability.tif"
+    for gap in (False, True):
+        if gap:
+            proba[:, 40:56, 40:56] = np.nan  # an unwritten tile holds no band
+        float_profile = profile | {"count": 2, "dtype": "float32", "nodata": np.nan}
+        with rasterio.open(proba_path, "w", **float_profile) as dst:
+            dst.write(proba)
+        if not gap:
+            check_layer_complete(proba_path, aoi, step="mapping")
+    with pytest.raises(OutputError, match=r"in step 'mapping'.*256 pixel\(s\) inside the area of interest"):
+        check_layer_complete(proba_path, aoi, step="mapping")

@@ -97,7 +97,8 @@ def test_second_run_on_a_locked_folder_is_refused_and_the_first_finishes_intact(
     assert second.returncode == 2, err
     message = err.strip()
     assert message.count("\n") == 0 and "Traceback" not in message  # one clear message
-    for part in ("runs/light", f"PID {first.pid}", socket.gethostname(), holder.started, "output_dir", LOCK_NAME):
+    for part in ("runs/light", f"PID {first.pid}", socket.gethostname(), holder.started, "output_dir",
+                 LOCK_NAME):
         assert part in message, part
     for verb, verb_err in others.items():
         assert f"cannot start `wetlandflow {verb}" in verb_err and f"PID {first.pid}" in verb_err, verb_err
@@ -171,6 +172,6 @@ def test_the_lock_is_reentrant_for_its_thread_and_refused_to_another(tmp_path):
 
 def test_a_lock_is_released_when_the_command_fails(tmp_path):
     with pytest.raises(ZeroDivisionError), run_folder_lock(tmp_path, "run"):
-        1 / 0
+        raise ZeroDivisionError("a step failed")
     with run_folder_lock(tmp_path, "run") as record:
         assert "stale_lock_removed" not in record

@@ -121,7 +121,7 @@ def test_a_tampered_map_metrics_and_area_table_rerun_their_steps(demo, reference
     project = copy_of_reference(demo, reference, "tampered")
     run_dir = project.parent / "runs" / "tampered"
     class_tif = run_dir / "maps" / "class.tif"
-    with rasterio.open(class_tif) as src:  # every pixel one class, as the concurrent run of issue 18 left it
+    with rasterio.open(class_tif) as src:  # every pixel one class: what two runs in one folder left
         profile, values = src.profile, src.read()
     with rasterio.open(class_tif, "w", **(profile | {"driver": "GTiff"})) as dst:
         dst.write(np.where(values > 0, 3, 0).astype(values.dtype))

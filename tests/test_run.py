@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import json
+import re
+from pathlib import Path
 
 import numpy as np
 import rasterio
@@ -111,3 +113,121 @@ def test_applicability_flags_cover_the_mapped_pixels(demo_run):
     np.testing.assert_array_equal(flag == 255, cls == 0)
     share = json.loads((d / "manifest.json").read_text())["steps"]["mapping"]["share_outside_applicability"]
     assert share == round(float((flag == 0).sum() / (flag != 255).sum()), 4)
+
+
+# -- the tables a run writes: fixed columns, documented in docs/outputs.md ---------------------------------
+DOCS_OUTPUTS = Path(__file__).resolve().parent.parent / "docs" / "outputs.md"
+
+
+def documented_tables() -> dict[str, tuple[str, list[str]]]:
+    """``{file pattern: (heading, [column names in order])}`` from the tables of docs/outputs.md."""
+    tables: dict[str, tuple[str, list[str]]] = {}
+    current = None
+    for line in DOCS_OUTPUTS.read_text().splitlines():
+        if line.startswith("### "):
+            current = re.match(r"### `([^`]+)`", line).group(1)
+            tables[current] = (line, [])
+        elif current and line.startswith("| `"):
+            tables[current][1].append(line.split("`")[1])
+    return tables
+
+
+def matches_documented(columns: list[str], documented: list[str], values: dict[str, str]) -> bool:
+    """True when ``columns`` are ``documented`` in order, each ``<placeholder>`` standing for one or more
+    consecutive columns whose placeholder part matches ``values[placeholder]`` (a regular expression)."""
+    i = 0
+    for k, doc in enumerate(documented):
+        m = re.fullmatch(r"(.*)<(\w+)>(.*)", doc)
+        if m is None:
+            if i >= len(columns) or columns[i] != doc:
+                return False
+            i += 1
+            continue
+        pattern = re.compile(re.escape(m.group(1)) + f"(?:{values[m.group(2)]})" + re.escape(m.group(3)))
+        following = documented[k + 1] if k + 1 < len(documented) else None
+        start = i
+        while i < len(columns) and pattern.fullmatch(columns[i]) and columns[i] != following:
+            i += 1
+        if i == start:
+            return False
+    return i == len(columns)
+
+
+def test_every_table_has_the_documented_columns_and_areas_csv_keeps_them_through_assess(tmp_path):
+    """Each CSV, Parquet and GeoPackage table of a run folder (run with explanations, then `sample` and
+    `assess`) is listed in docs/outputs.md with exactly its columns; ``areas.csv`` has the same columns
+    before and after the assessment, its mapped columns unchanged, its error-adjusted columns empty
+    before and equal to the assessment's area table after."""
+    import geopandas as gpd
+    import pandas as pd
+    import pyogrio
+    import rioxarray
+    import tomli_w
+    from conftest import read_toml
+    from test_lock import light_copy
+
+    from wetlandflow.accuracy.assessment import (
+        ADJUSTED_AREA_COLUMNS,
+        AREAS_COLUMNS,
+        assess,
+        class_codes,
+        design_sample,
+        label_from_reference,
+    )
+    from wetlandflow.pipeline.run import run_project
+
+    project_file = light_copy(tmp_path)
+    doc = read_toml(project_file)
+    doc["output"].update(explain=True, explain_rows=60, explain_seeds=2)
+    project_file.write_text(tomli_w.dumps(doc))
+    result = run_project(project_file, progress=False)
+    run_dir = result.run_dir
+    before = pd.read_csv(run_dir / "areas.csv")
+    assert tuple(before.columns) == AREAS_COLUMNS
+    assert before[list(ADJUSTED_AREA_COLUMNS)].isna().all().all()
+
+    project = load_project(project_file)
+    sample = design_sample(project, min_per_class=8, target_se=0.05)
+    truth = rioxarray.open_rasterio(tmp_path / "truth.tif").isel(band=0, drop=True)
+    labelled = label_from_reference(sample, truth, class_codes(project), tmp_path / "labelled.gpkg")
+    res = assess(project, labelled)
+    after = pd.read_csv(run_dir / "areas.csv")
+    assert tuple(after.columns) == AREAS_COLUMNS
+    pd.testing.assert_frame_equal(after[["class", "pixels", "mapped_area_ha", "mapped_share"]],
+                                  before[["class", "pixels", "mapped_area_ha", "mapped_share"]])
+    adjusted = res["area_table"].set_index("class").loc[after["class"]]
+    for col in ADJUSTED_AREA_COLUMNS[:-1]:
+        np.testing.assert_allclose(after[col].to_numpy(), adjusted[col].to_numpy(), rtol=1e-12, err_msg=col)
+    assert (after["confidence"] == 0.95).all()
+    # a rerun keeps the assessment: the final map did not change, and areas.csv checks out
+    again = run_project(project_file, progress=False)
+    assert again.manifest["steps"]["inventory"].get("reused")
+    pd.testing.assert_frame_equal(pd.read_csv(run_dir / "areas.csv"), after)
+
+    bundle = json.loads((run_dir / "model" / "bundle.json").read_text())
+    names = list(project.classes.names)
+    groups = list(project.classes.parents) + [c for c in names if not any(
+        c in children for children in project.classes.parents.values())]
+    values = {"class": "|".join(map(re.escape, names)), "group": "|".join(map(re.escape, groups)),
+              "feature": "|".join(map(re.escape, bundle["features"])), "fold": r"\d+", "seed": r"\d+"}
+    docs = documented_tables()
+    seen = set()
+    for path in sorted(run_dir.rglob("*")):
+        rel = path.relative_to(run_dir).as_posix()
+        if path.suffix not in (".csv", ".parquet", ".gpkg") or any(p.startswith(".") or p.endswith(".zarr")
+                                                                    for p in rel.split("/")):
+            continue
+        grouped = re.sub(r"/grouped_", "/", rel)
+        key = next((k for k in docs if re.fullmatch(re.sub(r"<\w+>", "[^/]+", re.escape(k)), grouped)), None)
+        assert key is not None, f"{rel} is not documented in docs/outputs.md"
+        seen.add(key)
+        if path.suffix == ".gpkg":
+            layer = re.search(r"layer `(\w+)`", docs[key][0]).group(1)
+            assert [name for name, _ in pyogrio.list_layers(path)] == [layer], rel
+            columns = list(gpd.read_file(path, layer=layer).columns)
+        else:
+            table = pd.read_csv(path) if path.suffix == ".csv" else pd.read_parquet(path)
+            columns = list(table.columns)
+        local = values | ({"class": values["group"]} if grouped != rel else {})
+        assert matches_documented(columns, docs[key][1], local), (rel, columns, docs[key][1])
+    assert all(k in seen or "only" in docs[k][0] for k in docs), set(docs) - seen

@@ -67,8 +67,11 @@ class ModelError(WetlandflowError, ValueError):
 class OutputError(WetlandflowError, OSError):
     """Outputs cannot be written (folder not writable, not enough disk).
 
-    ``path`` names the file or folder concerned when known.
+    ``path`` names the file or folder concerned when known; ``disk_full`` holds, for a full disk or a
+    file-size limit, the file, folder, step, reason and free space the message gives (else None).
     """
+
+    disk_full: dict | None = None
 
     def __init__(self, message: str, *, path: str | None = None):
         self.path = path

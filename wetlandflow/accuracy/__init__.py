@@ -15,5 +15,5 @@ __all__, __getattr__, __dir__ = exports(__name__, {
     "sampling": ["sample_size_overall", "allocate", "mapped_proportions", "draw_stratified_sample",
                  "write_sample", "read_labelled_sample", "estimates_from_sample"],
     "assessment": ["final_class_map", "class_codes", "design_sample", "assess", "label_from_reference",
-                   "coverage_study", "sample_design_record"],
+                   "coverage_study", "sample_design_record", "areas_table", "mapped_areas", "AREAS_COLUMNS"],
 })

@@ -30,7 +30,7 @@ import xarray as xr
 
 from .. import CAUTION
 from ..errors import ValidationDesignError
-from ..inputs.io import write_figure, write_json, write_table
+from ..inputs.io import write_figure, write_json, write_table, write_vector
 from ..inputs.project import Project, load_project
 
 SAMPLE_DIR = "validation_sample"
@@ -245,8 +245,7 @@ def label_from_reference(sample_path: str | Path, reference: xr.DataArray, codes
     ys = xr.DataArray(gdf.geometry.y.to_numpy(), dims="p")
     ref = np.asarray(reference.sel(x=xs, y=ys, method="nearest").values).astype(int)
     gdf["reference_class"] = [codes.get(int(c), "") for c in ref]
-    gdf.to_file(out_path, layer="sample", driver="GPKG", mode="w")
-    return Path(out_path)
+    return write_vector(gdf, out_path, layer="sample")
 
 
 def coverage_study(class_map: xr.DataArray, reference: xr.DataArray, codes: Mapping[int, str], *,

@@ -43,6 +43,7 @@ import pandas as pd
 from scipy.stats import norm
 
 from ..errors import OutputError, ValidationDesignError
+from ..inputs.io import write_table
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -958,9 +959,10 @@ def write_area_table(result: AreaAccuracyResult, path: str | Path) -> Path:
     path = Path(path)
     target = path / "areas.csv" if path.is_dir() or path.suffix == "" else path
     try:
-        target.parent.mkdir(parents=True, exist_ok=True)
-        result.area_table.to_csv(target, index=False)
+        write_table(result.area_table, target)  # atomic: renamed only when complete
     except OSError as exc:
+        if isinstance(exc, OutputError):
+            raise
         raise OutputError(
             f"cannot write the area table to {target}: {exc}. Choose a writable folder."
         ) from exc

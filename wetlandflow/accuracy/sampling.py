@@ -33,6 +33,7 @@ import shapely
 import xarray as xr
 
 from ..errors import AlignmentError, InputFileError, OutputError, ValidationDesignError
+from ..inputs.io import write_vector
 from .estimators import AreaAccuracyResult, error_matrix, simple_random_estimates, stratified_estimates
 
 __all__ = [
@@ -448,9 +449,10 @@ def write_sample(gdf: gpd.GeoDataFrame, path: str | Path, *, overwrite: bool = F
             "or choose a new name."
         )
     try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        gdf.to_file(path, layer="sample", driver="GPKG", mode="w")
+        write_vector(gdf, path, layer="sample")  # atomic: a reader never meets half a sample
     except OSError as exc:
+        if isinstance(exc, OutputError):
+            raise
         raise OutputError(f"cannot write {path}: {exc}. Choose a writable folder.") from exc
     return path
 

@@ -168,8 +168,12 @@ def write_vector(gdf: Any, path: str | Path, *, layer: str) -> Path:
     """Write a GeoDataFrame as a GeoPackage layer, atomically."""
     path = Path(path)
     with atomic_path(path) as tmp:
-        gdf.to_file(tmp.with_suffix(".gpkg"), layer=layer, driver="GPKG")
-        os.replace(tmp.with_suffix(".gpkg"), tmp)
+        gpkg = tmp.with_suffix(".gpkg")  # GDAL wants the suffix; removed below if the write fails
+        try:
+            gdf.to_file(gpkg, layer=layer, driver="GPKG")
+            os.replace(gpkg, tmp)
+        finally:
+            gpkg.unlink(missing_ok=True)
     return path
 
 
@@ -205,6 +209,9 @@ def check_writable(folder: str | Path) -> Path:
 DISK_FULL_ERRNOS = frozenset({errno.ENOSPC, errno.EFBIG, getattr(errno, "EDQUOT", errno.ENOSPC)})
 _DISK_FULL_TEXT = ("no space left on device", "file too large", "disk quota exceeded",
                    "free disk space available")
+
+
+_RESUME = "steps already finished are kept and a rerun resumes after them"
 
 
 def _disk_full_cause(exc: BaseException) -> BaseException | None:
@@ -251,8 +258,8 @@ def disk_full_error(exc: BaseException, folder: str | Path | None, *, path: str 
     error = OutputError(
         f"{what}{during}: the disk is full or the file reached the file-size limit ({info['reason']}); "
         f"{info['free']} free on the disk of {info['folder']}. Free some space (or raise the file-size "
-        f"limit, `ulimit -f`), or choose another [project] output_dir with more room; steps already finished are "
-        f"kept and a rerun resumes after them", path=info["path"])
+        f"limit, `ulimit -f`), or choose another [project] output_dir with more room; {_RESUME}",
+        path=info["path"])
     error.disk_full = info
     return error
 
@@ -286,7 +293,8 @@ def check_file_size_limit(folder: str | Path, sizes: dict[str, int], *, step: st
         f"could not write {folder / name} in step '{step}': it needs about {needed / 1e6:.1f} MB, above the "
         f"file-size limit of this process ({limit / 1e6:.1f} MB, `ulimit -f`); {_free_space(folder)} free on "
         f"the disk of {folder}. Raise the file-size limit (`ulimit -f unlimited` in the shell that starts "
-        f"the run), or write the run folder from a process without that limit; steps already finished are kept and a rerun resumes after them", path=str(folder / name))
+        f"the run), or write the run folder from a process without that limit; {_RESUME}",
+        path=str(folder / name))
     error.disk_full = {"path": str(folder / name), "folder": str(folder), "step": step,
                        "reason": "file-size limit", "free": _free_space(folder)}
     raise error

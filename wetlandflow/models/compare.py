@@ -54,7 +54,7 @@ from sklearn.metrics import precision_recall_fscore_support
 from sklearn.model_selection import PredefinedSplit
 
 from ..errors import ModelError, ParameterError
-from ..inputs.io import write_figure, write_json, write_table
+from ..inputs.io import atomic_path, write_figure, write_json, write_table
 from .calibration import (
     ProbabilityCalibrator,
     brier_score,
@@ -510,7 +510,8 @@ def write_comparison(result: ComparisonResult, folder: str | Path) -> dict[str, 
            "per_class": write_table(result.per_class, folder / "per_class_f1.csv"),
            "json": write_json({"settings": result.settings, "notes": list(result.notes),
                                "table": result.table.to_dict(orient="records")}, folder / "comparison.json")}
-    (folder / "comparison.md").write_text(result.summary() + "\n")
+    with atomic_path(folder / "comparison.md") as tmp:
+        tmp.write_text(result.summary() + "\n")
     out["markdown"] = folder / "comparison.md"
     parts = [_oof_long(result, result.oof, "raw")]
     if result.calibrated:

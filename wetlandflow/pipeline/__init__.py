@@ -1,14 +1,19 @@
 """Stage 7, pipeline: a run, composed from every stage below it.
 
 Takes a project file and returns a run folder: the steps inputs, features, samples, validation, model,
-mapping, inventory and explain, each cached by its inputs and recorded in ``manifest.json`` (``run``), with
-the later steps' compositions of library functions in ``steps``.  Nothing below imports this package.
+mapping, inventory and explain (``run``), each cached by its inputs and recorded in ``manifest.json``
+(``manifest``), reused only when its outputs check out (``manifest``, ``checks``); the later steps'
+compositions of library functions in ``steps``; the run folder's lock (one writer at a time) in ``lock``.
+Nothing below imports this package.
 """
 
 from .._lazy import exports
 
 __all__, __getattr__, __dir__ = exports(__name__, {
-    "run": ["RunResult", "Manifest", "run_project", "make_model", "make_splitter", "training_weights",
+    "run": ["RunResult", "run_project", "make_model", "make_splitter", "training_weights",
             "cross_validate", "feature_names", "format_summary"],
     "steps": ["applicability_model", "write_inventory_outputs", "write_explanations", "top_drivers"],
+    "lock": ["run_folder_lock", "read_lock", "LockHolder", "LOCK_NAME"],
+    "manifest": ["Manifest", "step_key"],
+    "checks": ["check_class_map_complete", "check_layer_complete", "bundle_mismatch", "areas_mismatch"],
 })

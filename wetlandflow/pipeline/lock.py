@@ -135,8 +135,9 @@ def _refusal(folder: Path, holder: LockHolder | None, command: str) -> RunFolder
 def run_folder_lock(run_dir: str | Path, command: str) -> Iterator[dict[str, str]]:
     """Hold the run folder's lock for the duration of the block; refuse if another command holds it.
 
-    Yields a record for the manifest: ``{"lock": path, "stale_lock_removed": description}`` (the second
-    only when a stale lock of a killed process was removed).
+    Yields a record for the manifest: ``{"lock": the lock file's name, "stale_lock_removed": what}`` (the
+    second only when a stale lock of a killed process was removed; empty where nothing is locked: a
+    folder that does not exist yet, or a read-only one).
 
     Raises
     ------
@@ -160,7 +161,7 @@ def run_folder_lock(run_dir: str | Path, command: str) -> Iterator[dict[str, str
             reentered = False
     if reentered:
         try:
-            yield {"lock": str(folder / LOCK_NAME)}
+            yield {"lock": LOCK_NAME}
         finally:
             with _held_guard:
                 thread, depth = _held[folder]
@@ -189,7 +190,7 @@ def run_folder_lock(run_dir: str | Path, command: str) -> Iterator[dict[str, str
 def _acquire(folder: Path, command: str) -> dict[str, str]:
     path = folder / LOCK_NAME
     holder = LockHolder.this_process(command)
-    record = {"lock": str(path)}
+    record = {"lock": LOCK_NAME}
     if _try_create(path, holder):
         return record
     with _breaking_guard(folder):

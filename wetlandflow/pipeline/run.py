@@ -1,18 +1,18 @@
-"""Orchestration of a run: the composition of the library's steps, and the manifest.
+"""Orchestration of a run: the composition of the library's steps.
 
-Each step records its status, timing and outputs in ``manifest.json``; the
-manifest is rewritten (atomically) after every step, so an interrupted run
-leaves an honest account of what finished.
+Each step records its status, timing and outputs in ``manifest.json``
+(:mod:`.manifest`), rewritten atomically after every step, so an interrupted run
+leaves an honest account of what finished; a step done earlier is reused only
+when its outputs check out (:mod:`.checks`).  The run holds the folder's lock
+(:mod:`.lock`) throughout.
 """
 
 from __future__ import annotations
 
 import datetime as dt
-import platform
 import sys
-import time
-from collections.abc import Callable, Sequence
-from contextlib import contextmanager, suppress
+from collections.abc import Callable
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -20,14 +20,13 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .. import CAUTION, __version__
-from ..errors import Cancelled, ProjectFileError
+from .. import CAUTION
+from ..errors import ProjectFileError
 from ..features.cube import build_cube, open_cube, save_cube, season_coverage
 from ..inputs.io import (
+    check_disk_space,
     check_file_size_limit,
     check_writable,
-    disk_full_error,
-    fingerprint,
     sha256_file,
     write_figure,
     write_json,
@@ -35,7 +34,7 @@ from ..inputs.io import (
 )
 from ..inputs.layers import load_inputs, project_grid, read_aoi
 from ..inputs.preflight import preflight
-from ..inputs.project import Project, check_model_section, config_hash, load_project, portable_dict, to_dict
+from ..inputs.project import Project, check_model_section, load_project, portable_dict
 from ..mapping.predict import AOA_LAYERS, LAYERS, class_areas, code_counts, predict_map
 from ..models.bundle import load_bundle, save_bundle
 from ..models.classifier import ClassScheme, WetlandClassifier, data_hash, scheme_proba
@@ -49,7 +48,17 @@ from ..training.samples import (
     plot_pixels,
     read_plots,
 )
+from .checks import (
+    areas_mismatch,
+    areas_with_assessment,
+    bundle_mismatch,
+    check_class_map_complete,
+    check_layer_complete,
+    missing_files,
+    staged_map_sizes,
+)
 from .lock import run_folder_lock
+from .manifest import Manifest, step_key
 from .steps import applicability_model, write_explanations, write_inventory_outputs
 
 
@@ -65,157 +74,6 @@ class RunResult:
 
     def summary(self) -> str:
         return format_summary(self)
-
-
-class Manifest:
-    """The run's account of itself, rewritten after every step.
-
-    A step done by an earlier run in the folder is reused only when its key (everything it depends on) is
-    the same and its outputs and the upstream outputs it used still have the fingerprints recorded when it
-    finished (:func:`~wetlandflow.inputs.io.fingerprint`); otherwise it reruns, and the reason is printed
-    and kept in the step's record (``rerun_because``).
-    """
-
-    def __init__(self, run_dir: Path, project: Project, check: Callable[[], None] | None = None):
-        self.path = run_dir / "manifest.json"
-        self.run_dir = run_dir
-        self.check = check or (lambda: None)
-        self.data: dict[str, Any] = {
-            "wetlandflow": __version__,
-            "started": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
-            "project_file": project.file.name,
-            "project": to_dict(project),
-            "config_sha256": config_hash(project),
-            "seed": project.project.seed,
-            "versions": library_versions(),
-            "inputs": {},
-            "steps": {},
-            "command": f"wetlandflow run {project.file.name}",
-            "caution": CAUTION,
-        }
-        self.previous = _previous_manifest(self.path)
-        self._fingerprints: dict[str, str] = {}
-        self._rerun: dict[str, list[str]] = {}
-
-    def _rel(self, path: Path) -> str:
-        return Path(path).relative_to(self.run_dir).as_posix()
-
-    def fingerprints(self, paths: list[Path], *, fresh: bool = False) -> dict[str, str]:
-        """Fingerprints of run-folder outputs by relative path (computed once per run unless ``fresh``)."""
-        out = {}
-        for p in paths:
-            rel = self._rel(p)
-            if fresh or rel not in self._fingerprints:
-                self._fingerprints[rel] = fingerprint(p)
-            out[rel] = self._fingerprints[rel]
-        return out
-
-    def reusable(self, name: str, key: str, outputs: list[Path], *, uses: Sequence[Path] = (),
-                 verify: Callable[[], list[str]] | None = None) -> bool:
-        """True, with the earlier record carried over, when the last run finished this step with the same
-        key and its ``outputs`` and the upstream ``uses`` still have their recorded fingerprints (and
-        ``verify()``, when given, finds nothing wrong); the step is then not recomputed.  A done step that
-        fails these checks reruns: the reason is printed and recorded."""
-        prev = self.previous.get("steps", {}).get(name, {})
-        if prev.get("status") != "done" or prev.get("key") != key:
-            return False
-        reasons = [f"{self._rel(o)} is missing" for o in outputs if not Path(o).exists()]
-        recorded = prev.get("fingerprints")
-        if not reasons and not isinstance(recorded, dict):
-            reasons.append("the earlier run recorded no fingerprints of its outputs to check them against")
-        if not reasons:
-            paths = [*outputs, *(u for u in uses if Path(u).exists())]
-            for rel, fp in self.fingerprints(paths).items():
-                if recorded.get(rel) != fp:
-                    what = "output" if rel in {self._rel(o) for o in outputs} else "input"
-                    reasons.append(f"its {what} {rel} changed since the step wrote or used it "
-                                   f"(fingerprint {str(recorded.get(rel))[:19]}..., now {fp[:19]}...)")
-        if not reasons and verify is not None:
-            reasons += verify()
-        if reasons:
-            self._rerun[name] = reasons
-            print(f"wetlandflow: rerunning step '{name}' instead of reusing it: {'; '.join(reasons)}",
-                  file=sys.stderr, flush=True)
-            return False
-        self.data["steps"][name] = {**prev, "reused": True}
-        self.save()
-        return True
-
-    @contextmanager
-    def step(self, name: str, key: str = "", *, outputs: Sequence[Path] = (), uses: Sequence[Path] = ()):
-        """Record a step: running, then done, failed or cancelled (with the error), with its seconds.
-
-        On success the fingerprints of ``outputs`` (and of the upstream ``uses``) are recorded, for the
-        check before a later run reuses the step.  A disk that fills (or a file-size limit) becomes one
-        :class:`~wetlandflow.errors.OutputError` naming the file, this step and the free space.
-        """
-        self.check()  # a cancel point: between steps nothing is half-written
-        rec: dict[str, Any] = {"status": "running", "started": time.time(), "key": key}
-        if name in self._rerun:
-            rec["rerun_because"] = self._rerun.pop(name)
-        self.data["steps"][name] = rec
-        self.save()
-        t0 = time.perf_counter()
-        try:
-            yield rec
-            rec["fingerprints"] = {**self.fingerprints([u for u in uses if Path(u).exists()]),
-                                   **self.fingerprints(list(outputs), fresh=True)}
-        except BaseException as exc:
-            error = disk_full_error(exc, self.run_dir, step=name)
-            rec.update(status="cancelled" if isinstance(exc, Cancelled) else "failed",
-                       error=f"{type(error or exc).__name__}: {error or exc}")
-            rec["seconds"] = round(time.perf_counter() - t0, 3)
-            with suppress(OSError):  # a full disk may refuse the manifest too; the error still says what
-                self.save()
-            if error is not None:
-                raise error from None
-            raise
-        rec.update(status="done", seconds=round(time.perf_counter() - t0, 3))
-        self.save()
-
-    def save(self) -> None:
-        write_json(self.data, self.path)
-
-
-def _previous_manifest(path: Path) -> dict[str, Any]:
-    """The manifest an earlier run left in this folder (empty when there is none or it is unreadable)."""
-    import json
-
-    try:
-        return json.loads(path.read_text())
-    except (OSError, ValueError):
-        return {}
-
-
-def step_key(*parts: Any) -> str:
-    """The cache key of a step: SHA-256 of everything it depends on (config, upstream keys, file hashes)."""
-    import hashlib
-    import json
-
-    text = json.dumps([__version__, *parts], sort_keys=True, default=str)
-    return hashlib.sha256(text.encode()).hexdigest()[:20]
-
-
-def library_versions() -> dict[str, str]:
-    """Versions of the libraries actually loaded, including the GDAL and PROJ behind rasterio and pyproj."""
-    import dask
-    import geopandas
-    import numba
-    import pyproj
-    import rasterio
-    import shapely
-    import sklearn
-    import xarray
-    import xgboost
-    import zarr
-
-    return {"python": platform.python_version(), "numpy": np.__version__, "pandas": pd.__version__,
-            "xarray": xarray.__version__, "dask": dask.__version__, "zarr": zarr.__version__,
-            "numba": numba.__version__, "rasterio": rasterio.__version__, "gdal": rasterio.__gdal_version__,
-            "proj (rasterio)": getattr(rasterio, "__proj_version__", "unknown"), "pyproj": pyproj.__version__,
-            "proj (pyproj)": pyproj.proj_version_str, "geopandas": geopandas.__version__,
-            "shapely": shapely.__version__, "geos": shapely.geos_version_string,
-            "scikit-learn": sklearn.__version__, "xgboost": xgboost.__version__}
 
 
 def _record_inputs(manifest: Manifest, project: Project) -> None:
@@ -493,7 +351,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     k_val = step_key(k_samples, cfg["validation"], cfg["model"], seed)
     vdir = run_dir / "validation"
     if manifest.reusable("validation", k_val, [vdir], uses=[samples_path],
-                          verify=lambda: _missing(vdir, ("metrics.json", "oof_predictions.parquet"))):
+                          verify=lambda: missing_files(vdir, ("metrics.json", "oof_predictions.parquet"))):
         import json
 
         metrics = json.loads((vdir / "metrics.json").read_text())
@@ -507,7 +365,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     model_dir = run_dir / "model"
     training_hash = data_hash(samples, features)
     if manifest.reusable("model", k_model, [model_dir], uses=[samples_path],
-                         verify=lambda: _bundle_mismatch(model_dir, training_hash, features)):
+                         verify=lambda: bundle_mismatch(model_dir, training_hash, features)):
         model, _ = load_bundle(model_dir)
     else:
         with manifest.step("model", k_model, outputs=[model_dir], uses=[samples_path]) as rec:
@@ -529,7 +387,9 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     map_uses = [model_dir, zarr_path] + ([vdir] if applicability else [])
     if not manifest.reusable("mapping", k_map, list(map_paths.values()), uses=map_uses):
         with manifest.step("mapping", k_map, outputs=list(map_paths.values()), uses=map_uses) as rec:
-            check_file_size_limit(run_dir, staged_map_sizes(grid, len(project.classes.names)), step="mapping")
+            staged = staged_map_sizes(grid, len(project.classes.names))
+            check_file_size_limit(run_dir, staged, step="mapping")
+            check_disk_space(run_dir, 2 * sum(staged.values()))  # the stage, then the COGs beside it
             aoa_model = None
             if applicability:
                 aoa_model = applicability_model(model, samples, features, folds)
@@ -538,6 +398,10 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
                                     class_names=project.classes.names, window_size=project.output.chunk_size,
                                     aoa_model=aoa_model, memory_budget_gb=project.output.memory_budget_gb,
                                     progress=progress, check=check)
+            check_class_map_complete(map_paths["class"], inputs.aoi, len(project.classes.names),
+                                     step="mapping")
+            for layer in ("probability", "confidence"):
+                check_layer_complete(map_paths[layer], inputs.aoi, step="mapping")
             rec["outputs"] = {k: str(v.relative_to(run_dir)) for k, v in map_paths.items()}
             rec["data_sha256"] = {k: raster_data_sha256(v) for k, v in map_paths.items()}
             if applicability:
@@ -549,7 +413,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     inv_uses = list(map_paths.values())
     areas_path = run_dir / "areas.csv"
     if manifest.reusable("inventory", k_inv, inv_outputs, uses=inv_uses,
-                         verify=lambda: _areas_mismatch(areas_path, final_path, project, grid)):
+                         verify=lambda: areas_mismatch(areas_path, final_path, project, grid)):
         areas = pd.read_csv(areas_path)  # it may hold an assessment's error-adjusted areas by now
     else:
         previous_final = manifest.previous.get("steps", {}).get("inventory", {}).get("data_sha256", {})
@@ -557,13 +421,14 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
             rec.update(write_inventory_outputs(map_paths, run_dir, grid, project.classes.names,
                                                mmu_pixels=project.output.mmu_pixels,
                                                connectivity=project.output.connectivity))
+            check_class_map_complete(final_path, inputs.aoi, len(project.classes.names), step="inventory")
             rec["data_sha256"] = {"class_final": raster_data_sha256(final_path)}
             mapped = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
             if previous_final.get("class_final") != rec["data_sha256"]["class_final"]:
                 stale = _set_aside_stale_assessment(run_dir)
                 if stale:
                     rec["stale_assessment_moved_to"] = stale
-            areas = _areas_with_assessment(run_dir, mapped)
+            areas = areas_with_assessment(run_dir, mapped)
             write_table(areas, areas_path)
 
     if project.output.explain:
@@ -571,7 +436,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
         k_exp = step_key(k_model, k_feat, explain_cfg, cfg["validation"]["block_size_m"], seed)
         exp_dir, exp_uses = run_dir / "explain", [model_dir, zarr_path, samples_path]
         if not manifest.reusable("explain", k_exp, [exp_dir], uses=exp_uses,
-                                 verify=lambda: _missing(exp_dir, ("drivers.json",))):
+                                 verify=lambda: missing_files(exp_dir, ("drivers.json",))):
             with manifest.step("explain", k_exp, outputs=[exp_dir], uses=exp_uses) as rec:
                 rec.update(write_explanations(model, samples, features, cube, run_dir / "explain",
                                               n_rows=project.output.explain_rows, seed=seed,
@@ -583,64 +448,6 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     manifest.data["finished"] = dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")
     manifest.save()
     return RunResult(run_dir, manifest.data, areas, metrics, balance)
-
-
-def _missing(folder: Path, names: tuple[str, ...]) -> list[str]:
-    return [f"{folder.name}/{n} is missing" for n in names if not (folder / n).exists()]
-
-
-def _bundle_mismatch(model_dir: Path, training_hash: str, features: list[str]) -> list[str]:
-    """Why the model bundle in the run folder is not the one this run's samples would train (empty if it is):
-    its ``training_data_sha256`` must equal the samples' hash, its features the model's features."""
-    import json
-
-    try:
-        bundle = json.loads((model_dir / "bundle.json").read_text())
-    except (OSError, ValueError):
-        return ["model/bundle.json is missing or unreadable"]
-    reasons = []
-    if bundle.get("training_data_sha256") != training_hash:
-        reasons.append(f"the model bundle was trained on other data (its training_data_sha256 "
-                       f"{str(bundle.get('training_data_sha256'))[:12]}... is not the hash of this run's "
-                       f"samples, {training_hash[:12]}...)")
-    if list(bundle.get("features", [])) != list(features):
-        reasons.append("the model bundle's features are not this run's model features")
-    return reasons
-
-
-def _areas_mismatch(areas_path: Path, final_path: Path, project: Project, grid) -> list[str]:
-    """Why ``areas.csv`` does not hold the final map's areas in the fixed columns (empty if it does)."""
-    from ..accuracy.assessment import AREAS_COLUMNS, MAPPED_AREA_COLUMNS
-
-    try:
-        table = pd.read_csv(areas_path)
-    except (OSError, ValueError):
-        return ["areas.csv is missing or unreadable"]
-    if tuple(table.columns) != AREAS_COLUMNS:
-        return [f"areas.csv has the columns {list(table.columns)}, not {list(AREAS_COLUMNS)}"]
-    mapped = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
-    same = (table["class"].astype(str).tolist() == mapped["class"].tolist()
-            and np.array_equal(table["pixels"].to_numpy(), mapped["pixels"].to_numpy())
-            and all(np.allclose(table[c].to_numpy(np.float64), mapped[c].to_numpy(np.float64), rtol=1e-9,
-                                atol=0) for c in MAPPED_AREA_COLUMNS[2:]))
-    return [] if same else ["the mapped areas in areas.csv differ from the final map's pixel counts"]
-
-
-def _areas_with_assessment(run_dir: Path, mapped: pd.DataFrame) -> pd.DataFrame:
-    """``areas.csv`` for the final map: with the error-adjusted areas of the assessment in ``accuracy/`` when
-    one of this very map is there (a new map sets an earlier assessment aside first), else empty."""
-    import json
-
-    from ..accuracy.assessment import ACCURACY_DIR, areas_table
-
-    table = run_dir / ACCURACY_DIR / "area_table.csv"
-    if not table.exists():
-        return areas_table(mapped)
-    try:
-        confidence = json.loads((run_dir / ACCURACY_DIR / "summary.json").read_text()).get("confidence")
-    except (OSError, ValueError):
-        confidence = None
-    return areas_table(mapped, pd.read_csv(table), confidence=confidence)
 
 
 def _samples_step(project: Project, grid, cube, rec: dict[str, Any]) -> pd.DataFrame:
@@ -713,13 +520,6 @@ def _set_aside_stale_assessment(run_dir: Path) -> str | None:
     target = run_dir / f"accuracy_stale_{stamp}"
     acc.rename(target)
     return target.name
-
-
-def staged_map_sizes(grid, n_classes: int) -> dict[str, int]:
-    """Bytes of the largest staged map files (uncompressed 256 x 256 tiles: probability and confidence)."""
-    tiles = -(-grid.height // 256) * -(-grid.width // 256) * 256 * 256
-    return {"maps/.stage/probability.tif": tiles * n_classes * 4 + (1 << 16),
-            "maps/.stage/confidence.tif": tiles * 3 * 4 + (1 << 16)}
 
 
 def raster_data_sha256(path: Path) -> str:
