@@ -34,6 +34,7 @@ SAR_DB = {"upland": {"VV": -9.0, "VH": -15.0}, "open_water": {"VV": -22.0, "VH":
           "marsh": {"VV": -12.0, "VH": -18.0}}
 SENSOR_BANDS = {
     "sentinel2_l2a": ("blue", "green", "red", "re1", "re2", "re3", "nir", "nir_narrow", "swir1", "swir2"),
+    "sentinel2_l2a_pre2022": ("blue", "green", "red", "re1", "re2", "re3", "nir", "nir_narrow", "swir1", "swir2"),
     "landsat89_oli_c2l2": ("coastal", "blue", "green", "red", "nir", "swir1", "swir2"),
     "landsat47_tm_etm_c2l2": ("blue", "green", "red", "nir", "swir1", "swir2"),
     "rgbn": ("red", "green", "blue", "nir"),
@@ -47,6 +48,8 @@ def encode(refl: np.ndarray, sensor: str) -> np.ndarray:
     """Reflectance -> the DN a product of that sensor stores."""
     if sensor == "sentinel2_l2a":  # (DN - 1000) / 10000 (ESA processing baseline 04.00)
         return np.clip(np.round(refl * 10000 + 1000), 1, 65535).astype("uint16")
+    if sensor == "sentinel2_l2a_pre2022":  # DN / 10000
+        return np.clip(np.round(refl * 10000), 1, 65535).astype("uint16")
     if sensor.startswith("landsat"):  # DN * 0.0000275 - 0.2 (USGS Collection 2 Level-2)
         return np.clip(np.round((refl + 0.2) / 0.0000275), 1, 65535).astype("uint16")
     return np.clip(np.round(refl * 2 * 255), 1, 255).astype("uint8")  # 8-bit brightness, not reflectance
@@ -77,12 +80,15 @@ def write_tif(path: Path, data: np.ndarray, *, pixel: float, descriptions=None, 
 def make_project(root: Path, *, sensor: str = "sentinel2_l2a", optical: str | None = "stack",
                  sar: str | None = None, sar_units: str = "db", pols=("VV", "VH"), dem: bool = True,
                  dates=("2024-05-10", "2024-07-20"), seasons: dict | None = None, pixel: float = 10.0,
-                 plots_crs: str | None = None, bands=None, extra: dict | None = None, seed: int = 0) -> Path:
+                 plots_crs: str | None = None, bands=None, extra: dict | None = None, seed: int = 0,
+                 scene: dict | None = None) -> Path:
     """Write the inputs and the project file; returns the project file's path.
 
     ``optical``: ``"stack"`` (one multi-band file per date), ``"files"`` (per-band files in the table),
     ``"pattern"`` (per-band files found by a pattern), ``"list"`` (a CSV scene list) or None.
     ``sar``: ``"stack"``, ``"pattern"`` (one file per polarisation), ``"list"`` or None.
+    ``scene``: keys added to (or, as None, removed from) every ``[[optical]]`` table; ``extra``: keys merged
+    into the project file's sections.
     """
     root = Path(root)
     root.mkdir(parents=True, exist_ok=True)
@@ -134,6 +140,12 @@ def make_project(root: Path, *, sensor: str = "sentinel2_l2a", optical: str | No
     elif optical == "list":
         _write_csv(root / "optical_scenes.csv", rows)
         tables = [{"list": "optical_scenes.csv", "sensor": sensor}]
+    for t in tables:
+        for k, v in (scene or {}).items():
+            if v is None:
+                t.pop(k, None)
+            else:
+                t[k] = v
     if tables:
         doc["optical"] = tables
     if sar:
