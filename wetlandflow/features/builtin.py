@@ -121,10 +121,13 @@ def sar_temporal(inputs: FeatureInputs, *, speckle: str = "none", window: int = 
     """Temporal statistics of VV, VH and VH/VV (those present), in linear power, levels in dB.
 
     ``speckle`` filters each date first: ``"lee"`` (Lee 1980) or
-    ``"multitemporal"`` (ratio-to-local-mean averaging over dates).
+    ``"multitemporal"`` (ratio-to-local-mean averaging over dates).  With a single date only the
+    mean level is computed.
     """
     stack = sar_stack(inputs, speckle, window)
-    out = sar.temporal_stats(stack, seasons=inputs.seasons, orbit_policy=orbit_policy)
+    # one date has a level but no spread: the spread statistics would be all NaN or all 0, so only the mean
+    stats = sar.STATS if stack.sizes["time"] >= 2 else ("mean",)
+    out = sar.temporal_stats(stack, stats, seasons=inputs.seasons, orbit_policy=orbit_policy)
     return _note_speckle(out, speckle, window)
 
 

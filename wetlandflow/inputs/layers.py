@@ -196,7 +196,8 @@ def load_optical(project: Project, grid: Grid, *, chunks: int) -> xr.DataArray |
         scenes.append(_optical_scene(s, grid, chunks).sel(band=list(bands)))
     stack = xr.concat(scenes, dim="time", combine_attrs="drop_conflicts")
     stack.attrs = {"units": "1", "long_name": "surface reflectance", "kind": "reflectance",
-                   "resampling": scenes[0].attrs["resampling"]}
+                   "resampling": scenes[0].attrs["resampling"],
+                   "sensor": ", ".join(dict.fromkeys(s.sensor or "unnamed" for s in project.optical))}
     return attach(stack.rename("optical"), grid)
 
 
