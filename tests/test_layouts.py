@@ -49,9 +49,8 @@ def test_csv_scene_list_reads_orbits(tmp_path):
 
 
 def test_mixed_layouts_in_one_project(tmp_path):
-    import tomllib
-
     import tomli_w
+    import tomllib
 
     pf = make_project(tmp_path, optical="files", sar="stack", dem=False)
     project = load_project(pf)

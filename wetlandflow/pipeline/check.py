@@ -22,7 +22,14 @@ from ..features.cube import plan_features
 from ..features.plausibility import ReflectanceWarning, plausibility_checks
 from ..inputs.grid import Grid
 from ..inputs.io import read_vector
-from ..inputs.layers import InputCoverageWarning, grid_reference, input_inventory, load_inputs, project_grid, read_aoi
+from ..inputs.layers import (
+    InputCoverageWarning,
+    grid_reference,
+    input_inventory,
+    load_inputs,
+    project_grid,
+    read_aoi,
+)
 from ..inputs.preflight import check_memory, estimate_memory_bytes
 from ..inputs.project import Project, load_project
 from ..training.samples import plot_pixels, read_plots
@@ -80,14 +87,14 @@ def _plot_table(project: Project, plots, px) -> pd.DataFrame:
     return pd.DataFrame({"class": counts.index, "plots": counts.values, "pixels": pixels.values})
 
 
-def _fold_notes(project: Project, table: pd.DataFrame) -> list[str]:
-    """Refuse what the run refuses (more folds than plots); note classes too thin for the folds."""
-    n_plots, k = int(table["plots"].sum()), project.validation.n_folds
-    if k > n_plots:
+def _fold_notes(project: Project, table: pd.DataFrame, n_plots: int) -> list[str]:
+    """Refuse what the run refuses (more folds than plots with pixels); note classes too thin for the folds."""
+    k = project.validation.n_folds
+    if k > n_plots:  # the same words as pipeline.run.cross_validate
         raise ProjectFileError(
-            f"validation.n_folds = {k} but the plot file holds {n_plots} plot(s); plots are never split across "
-            "folds, so there can be at most one fold per plot. Use fewer folds or add plots",
-            key="validation.n_folds", file=str(project.file))
+            f"validation.n_folds = {k} but the samples come from {n_plots} plot(s); "
+            "plots are never split across folds, so there can be at most one fold per plot. Use fewer folds "
+            "or add plots", key="validation.n_folds", file=str(project.file))
     notes = []
     for _, r in table.iterrows():
         if r["plots"] == 0:
@@ -132,7 +139,7 @@ def check_project(project: Project | str | Path) -> CheckReport:
     table = _plot_table(project, plots, px)
     ours = (InputCoverageWarning, ReflectanceWarning)
     notes = list(dict.fromkeys(str(w.message) for w in caught if issubclass(w.category, ours)))
-    notes += _fold_notes(project, table)
+    notes += _fold_notes(project, table, int(px["plot_id"].nunique()) if len(px) else 0)
     info = {"file": project.plots.path.name, "n_plots": int(plots["plot_id"].nunique()),
             "crs": raw.crs.to_string() if raw.crs is not None else "none",
             "geometry_types": raw.geom_type.value_counts().to_dict()}
