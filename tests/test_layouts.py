@@ -158,3 +158,48 @@ def test_grid_snaps_to_the_first_scene_pixel_edges(tmp_path):
     grid = project_grid(project)
     assert grid.transform.c % 30 == 0
     assert all(v.startswith("resampled") for v in input_inventory(project, grid)["to_grid"])
+
+
+def _registry_example() -> str:
+    """The code example of the registry's docstring, as the user would copy it."""
+    import textwrap
+
+    from wetlandflow.features import registry
+
+    doc = registry.__doc__
+    block = doc[doc.index("::\n\n") + 4:]
+    lines = []
+    for line in block.splitlines():
+        if line.strip() and not line.startswith("    "):
+            break
+        lines.append(line)
+    return textwrap.dedent("\n".join(lines))
+
+
+def test_user_feature_from_a_plugin_file_runs_end_to_end(tmp_path, capsys):
+    from wetlandflow.features.registry import REGISTRY
+
+    (tmp_path / "my_indices.py").write_text(_registry_example())
+    pf = make_project(tmp_path, dem=False, extra={"features": {"plugins": ["my_indices.py"]}})
+    try:
+        checked, manifest = _run_cli(pf, capsys)
+        assert "green_red_ratio" in checked
+        attrs = manifest["steps"]["features"]["features"]["green_red_ratio_all"]
+        assert attrs["domain"] == "user" and attrs["units"] == "unspecified"
+        assert attrs["long_name"] == "Green / red ratio of the seasonal composites."
+        assert "ndvi_all" in manifest["steps"]["features"]["features"]  # the built-in default stays
+        # the plugin's value at a plot pixel is the ratio of the composite's bands
+        import xarray as xr
+
+        cube = xr.open_zarr(pf.parent / "runs" / "project" / "features.zarr")
+        ratio = cube["green_red_ratio_all"].values
+        assert np.nanmax(ratio) > 1 > np.nanmin(ratio)  # water is greener than red, upland redder (fixture)
+    finally:
+        REGISTRY.pop("green_red_ratio", None)
+
+
+def test_plugin_that_registers_nothing_is_refused_by_check(tmp_path, capsys):
+    (tmp_path / "empty.py").write_text("x = 1\n")
+    pf = make_project(tmp_path, dem=False, extra={"features": {"plugins": ["empty.py"]}})
+    assert main(["check", str(pf)]) == 2
+    assert "features.plugins[0]" in capsys.readouterr().err
