@@ -305,3 +305,15 @@ def registry_table() -> Any:
          for d in REGISTRY.values()],
         columns=["name", "domain", "needs", "bands", "default", "description", "defaults"],
     )
+
+
+def registry_markdown() -> str:
+    """The built-in features as the Markdown table of ``docs/methods.md`` (a test keeps the two equal)."""
+    rows = ["| feature | domain | needs | default | what it computes |", "|---|---|---|---|---|"]
+    for d in REGISTRY.values():
+        if d.origin != "builtin":
+            continue
+        needs = ", ".join([n for n in d.needs if n != "composite"] + [f"`{b}`" for b in d.bands + d.pols])
+        default = "yes" if d.default else "when named (or RGB/RGBN data)" if d.name == "band_medians" else "when named"
+        rows.append(f"| `{d.name}` | {d.domain} | {needs} | {default} | {d.description} |")
+    return "\n".join(rows)
