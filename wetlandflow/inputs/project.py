@@ -27,7 +27,6 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 from ..errors import ProjectFileError
-from .sensors import BAND_NAMES
 
 OPTICAL_BANDS = ("blue", "green", "red", "re1", "re2", "re3", "nir", "nir_narrow", "swir1", "swir2")
 SAR_POLARISATIONS = ("VV", "VH", "HH", "HV")
@@ -463,10 +462,6 @@ def _validate(p: Project) -> None:
             _check_scene_files(s, f"{kind}[{i}]")
     for i, s in enumerate(p.optical):
         _require_file(s.mask, f"optical[{i}].mask")
-        unknown = [b for b in s.bands if b not in BAND_NAMES]
-        if unknown:
-            raise ProjectFileError(f"unknown band name(s) {unknown}; use the portable names "
-                                   f"{', '.join(BAND_NAMES)} in the file's band order", key=f"optical[{i}].bands")
         if s.scale <= 0:
             raise ProjectFileError(f"scale must be > 0, got {s.scale}", key=f"optical[{i}].scale")
         _check_choice(s.plausibility, PLAUSIBILITY, f"optical[{i}].plausibility")

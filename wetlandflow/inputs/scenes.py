@@ -139,7 +139,9 @@ def expand_scene_tables(tables: Any, kind: str, root: Path, sensors: dict[str, S
         key = f"{kind}[{i}]"
         if not isinstance(table, dict):
             raise ProjectFileError(f"expected a table, got {table!r}", key=key)
-        table = dict(table)
+        # a table written back from a resolved project (to_dict) carries the unused keys empty
+        table = {k: v for k, v in table.items()
+                 if not (v is None or (k == "sensor" and v == "") or (k == "files" and v == {}))}
         user_bands = "bands" in table
         if kind == "optical" and "sensor" in table:
             sensor = resolve_sensor(table["sensor"], sensors, key=f"{key}.sensor")
