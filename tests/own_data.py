@@ -23,18 +23,65 @@ from shapely.geometry import box
 
 CLASSES = ("upland", "open_water", "marsh")
 SPECTRA = {  # invented surface reflectance per class
-    "upland": dict(coastal=.05, blue=.05, green=.08, red=.09, re1=.14, re2=.20, re3=.24, nir=.26, nir_narrow=.27,
-                   swir1=.28, swir2=.20),
-    "open_water": dict(coastal=.07, blue=.06, green=.05, red=.03, re1=.02, re2=.015, re3=.01, nir=.01,
-                       nir_narrow=.01, swir1=.005, swir2=.003),
-    "marsh": dict(coastal=.04, blue=.04, green=.07, red=.05, re1=.12, re2=.25, re3=.30, nir=.32, nir_narrow=.33,
-                  swir1=.18, swir2=.09),
+    "upland": dict(
+        coastal=0.05,
+        blue=0.05,
+        green=0.08,
+        red=0.09,
+        re1=0.14,
+        re2=0.20,
+        re3=0.24,
+        nir=0.26,
+        nir_narrow=0.27,
+        swir1=0.28,
+        swir2=0.20,
+    ),
+    "open_water": dict(
+        coastal=0.07,
+        blue=0.06,
+        green=0.05,
+        red=0.03,
+        re1=0.02,
+        re2=0.015,
+        re3=0.01,
+        nir=0.01,
+        nir_narrow=0.01,
+        swir1=0.005,
+        swir2=0.003,
+    ),
+    "marsh": dict(
+        coastal=0.04,
+        blue=0.04,
+        green=0.07,
+        red=0.05,
+        re1=0.12,
+        re2=0.25,
+        re3=0.30,
+        nir=0.32,
+        nir_narrow=0.33,
+        swir1=0.18,
+        swir2=0.09,
+    ),
 }
-SAR_DB = {"upland": {"VV": -9.0, "VH": -15.0}, "open_water": {"VV": -22.0, "VH": -28.0},
-          "marsh": {"VV": -12.0, "VH": -18.0}}
+SAR_DB = {
+    "upland": {"VV": -9.0, "VH": -15.0},
+    "open_water": {"VV": -22.0, "VH": -28.0},
+    "marsh": {"VV": -12.0, "VH": -18.0},
+}
 SENSOR_BANDS = {
     "sentinel2_l2a": ("blue", "green", "red", "re1", "re2", "re3", "nir", "nir_narrow", "swir1", "swir2"),
-    "sentinel2_l2a_pre2022": ("blue", "green", "red", "re1", "re2", "re3", "nir", "nir_narrow", "swir1", "swir2"),
+    "sentinel2_l2a_pre2022": (
+        "blue",
+        "green",
+        "red",
+        "re1",
+        "re2",
+        "re3",
+        "nir",
+        "nir_narrow",
+        "swir1",
+        "swir2",
+    ),
     "landsat89_oli_c2l2": ("coastal", "blue", "green", "red", "nir", "swir1", "swir2"),
     "landsat47_tm_etm_c2l2": ("blue", "green", "red", "nir", "swir1", "swir2"),
     "rgbn": ("red", "green", "blue", "nir"),
@@ -62,12 +109,20 @@ def class_map(n: int = 40, block: int = 5, seed: int = 0) -> np.ndarray:
     return np.kron(blocks, np.ones((block, block), dtype=int))
 
 
-def write_tif(path: Path, data: np.ndarray, *, pixel: float, descriptions=None, nodata=None, crs=CRS,
-              origin=(X0, Y0)) -> Path:
+def write_tif(
+    path: Path, data: np.ndarray, *, pixel: float, descriptions=None, nodata=None, crs=CRS, origin=(X0, Y0)
+) -> Path:
     data = data if data.ndim == 3 else data[None]
     path.parent.mkdir(parents=True, exist_ok=True)
-    profile = dict(driver="GTiff", width=data.shape[2], height=data.shape[1], count=data.shape[0],
-                   dtype=data.dtype, crs=crs, transform=Affine(pixel, 0, origin[0], 0, -pixel, origin[1]))
+    profile = dict(
+        driver="GTiff",
+        width=data.shape[2],
+        height=data.shape[1],
+        count=data.shape[0],
+        dtype=data.dtype,
+        crs=crs,
+        transform=Affine(pixel, 0, origin[0], 0, -pixel, origin[1]),
+    )
     if nodata is not None:
         profile["nodata"] = nodata
     with rasterio.open(path, "w", **profile) as dst:
@@ -77,11 +132,24 @@ def write_tif(path: Path, data: np.ndarray, *, pixel: float, descriptions=None, 
     return path
 
 
-def make_project(root: Path, *, sensor: str = "sentinel2_l2a", optical: str | None = "stack",
-                 sar: str | None = None, sar_units: str = "db", pols=("VV", "VH"), dem: bool = True,
-                 dates=("2024-05-10", "2024-07-20"), seasons: dict | None = None, pixel: float = 10.0,
-                 plots_crs: str | None = None, bands=None, extra: dict | None = None, seed: int = 0,
-                 scene: dict | None = None) -> Path:
+def make_project(
+    root: Path,
+    *,
+    sensor: str = "sentinel2_l2a",
+    optical: str | None = "stack",
+    sar: str | None = None,
+    sar_units: str = "db",
+    pols=("VV", "VH"),
+    dem: bool = True,
+    dates=("2024-05-10", "2024-07-20"),
+    seasons: dict | None = None,
+    pixel: float = 10.0,
+    plots_crs: str | None = None,
+    bands=None,
+    extra: dict | None = None,
+    seed: int = 0,
+    scene: dict | None = None,
+) -> Path:
     """Write the inputs and the project file; returns the project file's path.
 
     ``optical``: ``"stack"`` (one multi-band file per date), ``"files"`` (per-band files in the table),
@@ -97,17 +165,20 @@ def make_project(root: Path, *, sensor: str = "sentinel2_l2a", optical: str | No
     n = cmap.shape[0]
     names = np.array(CLASSES)[cmap]
     bands = tuple(bands or SENSOR_BANDS[sensor])
-    doc: dict = {"project": {"name": "Fenwick Hollow test", "seed": 1},
-                 "area": {"aoi": "aoi.gpkg"},
-                 "classes": {"names": list(CLASSES)},
-                 "plots": {"path": "plots.gpkg", "class_field": "label"},
-                 "model": {"n_estimators": 20, "max_depth": 3},
-                 "validation": {"design": "group", "n_folds": 3},
-                 "samples": {"max_pixels_per_plot": 9},
-                 "output": {"chunk_size": 64, "explain": False, "applicability": False, "mmu_pixels": 1}}
+    doc: dict = {
+        "project": {"name": "Fenwick Hollow test", "seed": 1},
+        "area": {"aoi": "aoi.gpkg"},
+        "classes": {"names": list(CLASSES)},
+        "plots": {"path": "plots.gpkg", "class_field": "label"},
+        "model": {"n_estimators": 20, "max_depth": 3},
+        "validation": {"design": "group", "n_folds": 3},
+        "samples": {"max_pixels_per_plot": 9},
+        "output": {"chunk_size": 64, "explain": False, "applicability": False, "mmu_pixels": 1},
+    }
     x1, y1 = X0 + n * pixel, Y0 - n * pixel
-    gpd.GeoDataFrame({"name": ["area"]}, geometry=[box(X0 + pixel, y1 + pixel, x1 - pixel, Y0 - pixel)],
-                     crs=CRS).to_file(root / "aoi.gpkg")
+    gpd.GeoDataFrame(
+        {"name": ["area"]}, geometry=[box(X0 + pixel, y1 + pixel, x1 - pixel, Y0 - pixel)], crs=CRS
+    ).to_file(root / "aoi.gpkg")
     plots, labels = [], []
     for r in range(2, n - 2, 5):
         for c in range(2, n - 2, 5):
@@ -126,14 +197,27 @@ def make_project(root: Path, *, sensor: str = "sentinel2_l2a", optical: str | No
         dn = encode(refl, sensor)
         if optical == "stack":
             path = write_tif(root / "optical" / f"scene_{stamp}.tif", dn, pixel=pixel)
-            tables.append({"date": date, "path": str(path.relative_to(root)), "sensor": sensor,
-                           **({"bands": list(bands)} if bands != SENSOR_BANDS[sensor] else {})})
+            tables.append(
+                {
+                    "date": date,
+                    "path": str(path.relative_to(root)),
+                    "sensor": sensor,
+                    **({"bands": list(bands)} if bands != SENSOR_BANDS[sensor] else {}),
+                }
+            )
         else:
-            files = {b: write_tif(root / "optical" / f"scene_{stamp}_{b}.tif", dn[j], pixel=pixel)
-                     for j, b in enumerate(bands)}
+            files = {
+                b: write_tif(root / "optical" / f"scene_{stamp}_{b}.tif", dn[j], pixel=pixel)
+                for j, b in enumerate(bands)
+            }
             if optical == "files":
-                tables.append({"date": date, "sensor": sensor,
-                               "files": {b: str(p.relative_to(root)) for b, p in files.items()}})
+                tables.append(
+                    {
+                        "date": date,
+                        "sensor": sensor,
+                        "files": {b: str(p.relative_to(root)) for b, p in files.items()},
+                    }
+                )
             rows += [{"date": date, "path": str(p.relative_to(root)), "band": b} for b, p in files.items()]
     if optical == "pattern":
         tables = [{"pattern": "optical/scene_{date}_{band}.tif", "sensor": sensor}]
@@ -184,12 +268,22 @@ def _write_sar(root, layout, units, pols, names, dates, rng, pixel) -> list[dict
             layers.append((db if units == "db" else 10 ** (db / 10)).astype("float32"))
         if layout == "stack":
             path = write_tif(root / "sar" / f"S1_{stamp}.tif", np.stack(layers), pixel=pixel, nodata=-9999)
-            tables.append({"date": date, "path": str(path.relative_to(root)), "bands": list(pols), "units": units})
+            tables.append(
+                {"date": date, "path": str(path.relative_to(root)), "bands": list(pols), "units": units}
+            )
         else:
             for p, layer in zip(pols, layers, strict=True):
-                path = write_tif(root / "sar" / f"S1_{stamp}_{p.lower()}.tif", layer, pixel=pixel, nodata=-9999)
-                rows.append({"date": date, "path": str(path.relative_to(root)), "polarisation": p,
-                             "orbit": "descending"})
+                path = write_tif(
+                    root / "sar" / f"S1_{stamp}_{p.lower()}.tif", layer, pixel=pixel, nodata=-9999
+                )
+                rows.append(
+                    {
+                        "date": date,
+                        "path": str(path.relative_to(root)),
+                        "polarisation": p,
+                        "orbit": "descending",
+                    }
+                )
     if layout == "pattern":
         return [{"pattern": "sar/S1_{date}_{band}.tif", "units": units}]
     if layout == "list":

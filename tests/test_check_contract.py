@@ -1,9 +1,10 @@
-"""Contract: ``check`` refuses every project a run refuses before (or, for the plots, instead of) its features.
+"""Contract: ``check`` refuses every project a run refuses before (for the plots: instead of) its features.
 
 The refusals of a run before its features step, from the code:
 
 * ``inputs.project.load_project``: schema and values (``ProjectFileError``), sensors, scene layouts;
-* ``inputs.layers.project_grid``: geographic CRS (``AlignmentError``), ``grid.align_to`` naming an absent input;
+* ``inputs.layers.project_grid``: geographic CRS (``AlignmentError``), ``grid.align_to`` naming an absent
+  input;
 * ``inputs.layers.load_inputs``: band count vs the ``bands`` list and overlap (``align.read_aligned``,
   ``AlignmentError``), band descriptions vs the list (``ProjectFileError``), scenes with different band sets
   (``AlignmentError``), SAR values vs declared units (``DataQualityError``), DEM units and coverage, seasons
@@ -36,40 +37,78 @@ from wetlandflow.errors import (
 from wetlandflow.pipeline.check import check_project
 from wetlandflow.pipeline.run import run_project
 
-pytestmark = pytest.mark.filterwarnings("ignore::DeprecationWarning", "ignore::PendingDeprecationWarning",
-                                        "ignore::UserWarning")
+pytestmark = pytest.mark.filterwarnings(
+    "ignore::DeprecationWarning", "ignore::PendingDeprecationWarning", "ignore::UserWarning"
+)
 
 LIGHT = {"features": {"select": ["ndvi", "ndwi"]}}
 
 CASES = {
-    "unknown feature name": (dict(dem=False, extra={"features": {"select": ["ndvii"]}}), ProjectFileError,
-                             "features.select"),
+    "unknown feature name": (
+        dict(dem=False, extra={"features": {"select": ["ndvii"]}}),
+        ProjectFileError,
+        "features.select",
+    ),
     "selected feature needs a band the sensor lacks": (
         dict(sensor="landsat47_tm_etm_c2l2", dem=False, extra={"features": {"select": ["ndvi", "ndre1"]}}),
-        ProjectFileError, "re1"),
+        ProjectFileError,
+        "re1",
+    ),
     "selected feature needs the DEM the project lacks": (
-        dict(dem=False, extra={"features": {"select": ["slope"]}}), ProjectFileError, "DEM"),
+        dict(dem=False, extra={"features": {"select": ["slope"]}}),
+        ProjectFileError,
+        "DEM",
+    ),
     "parameters for a feature not computed": (
         dict(dem=False, extra={"features": {"select": ["ndvi"], "params": {"twi": {"min_slope": 0.01}}}}),
-        ProjectFileError, "features.params"),
+        ProjectFileError,
+        "features.params",
+    ),
     "band count differs from the bands list": (
-        dict(sensor="landsat47_tm_etm_c2l2", dem=False, extra=LIGHT,
-             scene={"bands": ["blue", "green", "red", "nir", "swir1"]}), AlignmentError, "bands"),
-    "reflectance implausible for the sensor": (dict(sensor="rgbn", dem=False, extra=LIGHT), DataQualityError,
-                                               "scale"),
-    "SAR in dB declared linear": (dict(dem=False, sar="stack", sar_units="db", extra=LIGHT), DataQualityError,
-                                  "units"),
+        dict(
+            sensor="landsat47_tm_etm_c2l2",
+            dem=False,
+            extra=LIGHT,
+            scene={"bands": ["blue", "green", "red", "nir", "swir1"]},
+        ),
+        AlignmentError,
+        "bands",
+    ),
+    "reflectance implausible for the sensor": (
+        dict(sensor="rgbn", dem=False, extra=LIGHT),
+        DataQualityError,
+        "scale",
+    ),
+    "SAR in dB declared linear": (
+        dict(dem=False, sar="stack", sar_units="db", extra=LIGHT),
+        DataQualityError,
+        "units",
+    ),
     "grid aligned to an input the project lacks": (
-        dict(dem=False, extra={**LIGHT, "grid": {"align_to": "dem"}}), ProjectFileError, "grid.align_to"),
-    "geographic grid CRS": (dict(dem=False, extra={**LIGHT, "grid": {"crs": "EPSG:4326"}}), AlignmentError,
-                            "grid.crs"),
-    "wrong class field": (dict(dem=False, extra={**LIGHT, "plots": {"class_field": "klass"}}), SamplesError,
-                          "class_field"),
+        dict(dem=False, extra={**LIGHT, "grid": {"align_to": "dem"}}),
+        ProjectFileError,
+        "grid.align_to",
+    ),
+    "geographic grid CRS": (
+        dict(dem=False, extra={**LIGHT, "grid": {"crs": "EPSG:4326"}}),
+        AlignmentError,
+        "grid.crs",
+    ),
+    "wrong class field": (
+        dict(dem=False, extra={**LIGHT, "plots": {"class_field": "klass"}}),
+        SamplesError,
+        "class_field",
+    ),
     "labels outside the class scheme": (
-        dict(dem=False, extra={**LIGHT, "classes": {"names": ["upland", "open_water", "fen"]}}), SamplesError,
-        "marsh"),
-    "more folds than plots": (dict(dem=False, extra={**LIGHT, "validation": {"n_folds": 500}}), ProjectFileError,
-                              "validation.n_folds"),
+        dict(dem=False, extra={**LIGHT, "classes": {"names": ["upland", "open_water", "fen"]}}),
+        SamplesError,
+        "marsh",
+    ),
+    "more folds than plots": (
+        dict(dem=False, extra={**LIGHT, "validation": {"n_folds": 500}}),
+        ProjectFileError,
+        "validation.n_folds",
+    ),
 }
 
 

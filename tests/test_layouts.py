@@ -35,7 +35,9 @@ def _stacks(pf):
 def test_layouts_read_the_same_values_as_one_file_per_date(tmp_path, optical, sar):
     _, ref_opt, ref_sar = _stacks(make_project(tmp_path / "stack", optical="stack", sar="stack", dem=False))
     project, opt, sar_stack = _stacks(make_project(tmp_path / "split", optical=optical, sar=sar, dem=False))
-    assert len(project.optical) == 2 and project.optical[0].path is None and len(project.optical[0].files) == 10
+    assert (
+        len(project.optical) == 2 and project.optical[0].path is None and len(project.optical[0].files) == 10
+    )
     assert list(opt["band"].values) == list(ref_opt["band"].values)
     np.testing.assert_array_equal(opt.values, ref_opt.values)
     np.testing.assert_allclose(sar_stack.values, ref_sar.values, rtol=1e-6)
@@ -94,20 +96,37 @@ def _run_cli(pf, capsys) -> tuple[str, dict]:
 CASES = {
     # name: (make_project keywords, features that must be skipped, a word each reason must contain)
     "per-band optical + per-polarisation SAR in dB (patterns)": (
-        dict(optical="pattern", sar="pattern", sar_units="db"), {}, ""),
+        dict(optical="pattern", sar="pattern", sar_units="db"),
+        {},
+        "",
+    ),
     "Landsat 4-7 6-band stack, linear SAR list, no DEM, one date": (
-        dict(sensor="landsat47_tm_etm_c2l2", sar="list", sar_units="linear", dem=False, dates=("2024-06-15",)),
-        {"ndre1": "re1", "reip": "re1", "elevation": "DEM"}, ""),
+        dict(
+            sensor="landsat47_tm_etm_c2l2", sar="list", sar_units="linear", dem=False, dates=("2024-06-15",)
+        ),
+        {"ndre1": "re1", "reip": "re1", "elevation": "DEM"},
+        "",
+    ),
     "8-bit RGBN at 5 m, VV-only SAR, no DEM": (
         dict(sensor="rgbn", pixel=5.0, sar="stack", pols=("VV",), dem=False, scene={"scale": 1 / 255}),
-        {"ndmi": "swir1", "ndre2": "re2"}, ""),
+        {"ndmi": "swir1", "ndre2": "re2"},
+        "",
+    ),
     "RGB only, geographic plots": (
         dict(sensor="rgb", dem=False, plots_crs="EPSG:4326", scene={"scale": 1 / 255}),
-        {"ndvi": "nir"}, ""),
+        {"ndvi": "nir"},
+        "",
+    ),
     "SAR and DEM only (no optical), seasons given": (
-        dict(optical=None, sar="pattern", dem=True, seasons={"spring": ["04-01", "06-10"],
-                                                              "summer": ["06-11", "08-31"]}),
-        {"ndvi": "optical"}, ""),
+        dict(
+            optical=None,
+            sar="pattern",
+            dem=True,
+            seasons={"spring": ["04-01", "06-10"], "summer": ["06-11", "08-31"]},
+        ),
+        {"ndvi": "optical"},
+        "",
+    ),
 }
 
 
@@ -132,7 +151,9 @@ def test_own_data_runs_from_the_cli(tmp_path, capsys, case):
 
 
 def test_explicit_feature_the_bands_cannot_compute_is_refused_by_check(tmp_path, capsys):
-    pf = make_project(tmp_path, sensor="landsat89_oli_c2l2", dem=False, extra={"features": {"select": ["ndre1"]}})
+    pf = make_project(
+        tmp_path, sensor="landsat89_oli_c2l2", dem=False, extra={"features": {"select": ["ndre1"]}}
+    )
     assert main(["check", str(pf)]) == 2
     err = capsys.readouterr().err
     assert "features.select" in err and "ndre1" in err and "re1" in err and "landsat89_oli_c2l2" in err
@@ -152,8 +173,13 @@ def test_grid_snaps_to_the_first_scene_pixel_edges(tmp_path):
     expected = dn[int(row), int(col)] * 0.0000275 - 0.2
     assert float(opt.sel(band="nir").isel(y=3, x=3)) == pytest.approx(expected, abs=1e-6)
     # align_to = "none": the origin is a multiple of the pixel size, and the inventory says it resamples
-    pf = make_project(tmp_path / "none", sensor="landsat47_tm_etm_c2l2", pixel=30.0, dem=False,
-                      extra={"grid": {"align_to": "none"}})
+    pf = make_project(
+        tmp_path / "none",
+        sensor="landsat47_tm_etm_c2l2",
+        pixel=30.0,
+        dem=False,
+        extra={"grid": {"align_to": "none"}},
+    )
     project = load_project(pf)
     grid = project_grid(project)
     assert grid.transform.c % 30 == 0
@@ -167,7 +193,7 @@ def _registry_example() -> str:
     from wetlandflow.features import registry
 
     doc = registry.__doc__
-    block = doc[doc.index("::\n\n") + 4:]
+    block = doc[doc.index("::\n\n") + 4 :]
     lines = []
     for line in block.splitlines():
         if line.strip() and not line.startswith("    "):

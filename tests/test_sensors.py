@@ -53,27 +53,46 @@ def test_landsat_valid_range_maps_to_unit_interval(name):
     # USGS: valid DN 7273-43636 for Collection 2 SR, i.e. reflectance about 0 to 1 after scale and offset
     s = SENSORS[name]
     assert s.scale == 0.0000275 and s.offset == -0.2 and s.nodata == 0
-    assert s.valid_range[0] == pytest.approx(0.0, abs=1e-4) and s.valid_range[1] == pytest.approx(1.0, abs=1e-4)
+    assert s.valid_range[0] == pytest.approx(0.0, abs=1e-4) and s.valid_range[1] == pytest.approx(
+        1.0, abs=1e-4
+    )
 
 
 @pytest.mark.reference
-@pytest.mark.parametrize("sensor, expected", [("sentinel2_l2a", (1452 - 1000) / 10000),
-                                              ("sentinel2_l2a_pre2022", 1452 / 10000)])
+@pytest.mark.parametrize(
+    "sensor, expected", [("sentinel2_l2a", (1452 - 1000) / 10000), ("sentinel2_l2a_pre2022", 1452 / 10000)]
+)
 def test_sentinel2_both_offset_conventions(tmp_path, sensor, expected):
     # ESA processing baseline 04.00: (DN + BOA_ADD_OFFSET) / QUANTIFICATION_VALUE; before it, no offset
     assert _one_pixel_project(tmp_path, 1452, sensor) == pytest.approx(expected, abs=1e-6)
 
 
 @pytest.mark.reference
-@pytest.mark.parametrize("sensor, platform", [("sentinel2_l2a", "sentinel2a"), ("landsat89_oli_c2l2", "landsat8"),
-                                              ("landsat89_oli_c2l2", "landsat9"),
-                                              ("landsat47_tm_etm_c2l2", "landsat7")])
+@pytest.mark.parametrize(
+    "sensor, platform",
+    [
+        ("sentinel2_l2a", "sentinel2a"),
+        ("landsat89_oli_c2l2", "landsat8"),
+        ("landsat89_oli_c2l2", "landsat9"),
+        ("landsat47_tm_etm_c2l2", "landsat7"),
+    ],
+)
 def test_centre_wavelengths_match_the_spectral_index_catalogue(sensor, platform):
     spyndex = pytest.importorskip("spyndex")
     # portable band name -> catalogue band (Landsat 8/9's NIR is the catalogue's narrow NIR N2)
-    catalogue = {"coastal": "A", "blue": "B", "green": "G", "red": "R", "re1": "RE1", "re2": "RE2", "re3": "RE3",
-                 "nir": "N2" if platform.startswith("landsat8") or platform == "landsat9" else "N",
-                 "nir_narrow": "N2", "swir1": "S1", "swir2": "S2"}
+    catalogue = {
+        "coastal": "A",
+        "blue": "B",
+        "green": "G",
+        "red": "R",
+        "re1": "RE1",
+        "re2": "RE2",
+        "re3": "RE3",
+        "nir": "N2" if platform.startswith("landsat8") or platform == "landsat9" else "N",
+        "nir_narrow": "N2",
+        "swir1": "S1",
+        "swir2": "S2",
+    }
     s = SENSORS[sensor]
     for band, centre in zip(s.bands, s.centre_nm, strict=True):
         ref = getattr(spyndex.bands[catalogue[band]], platform)
@@ -84,7 +103,10 @@ def test_every_sensor_is_consistent():
     for s in SENSORS.values():
         assert len(s.bands) == len(s.centre_nm) and s.valid_range[0] < s.valid_range[1]
         assert not s.native or len(s.native) == len(s.bands)
-        assert list(s.centre_nm) == sorted(s.centre_nm) or s.name in ("rgbn", "rgb")  # file order, not spectral
+        assert list(s.centre_nm) == sorted(s.centre_nm) or s.name in (
+            "rgbn",
+            "rgb",
+        )  # file order, not spectral
 
 
 def test_unscaled_8bit_rgbn_is_refused_with_the_fix(tmp_path):
@@ -96,7 +118,9 @@ def test_unscaled_8bit_rgbn_is_refused_with_the_fix(tmp_path):
 
 
 def test_warn_only_switch_turns_the_refusal_into_a_warning(tmp_path):
-    pf = make_project(tmp_path, sensor="rgbn", dem=False, dates=("2024-06-01",), scene={"plausibility": "warn"})
+    pf = make_project(
+        tmp_path, sensor="rgbn", dem=False, dates=("2024-06-01",), scene={"plausibility": "warn"}
+    )
     project = load_project(pf)
     inputs = load_inputs(project, project_grid(project))
     with pytest.warns(ReflectanceWarning, match="plausibility"):
@@ -106,19 +130,33 @@ def test_warn_only_switch_turns_the_refusal_into_a_warning(tmp_path):
 
 @pytest.mark.reference
 def test_index_outside_its_mathematical_range_is_counted():
-    # a normalised difference (a - b) / (a + b) lies in [-1, 1] for non-negative a, b (Rouse et al. 1974 form);
+    # a normalised difference (a - b) / (a + b) lies in [-1, 1] for non-negative a, b (the form of
+    # Rouse et al. 1974);
     # a negative reflectance (e.g. a doubled offset) pushes it outside, and that must be counted, not hidden
-    refl = xr.DataArray(np.array([[[0.3, 0.2]], [[0.1, -0.05]], [[0.05, 0.04]]]), dims=("band", "y", "x"),
-                        coords={"band": ["nir", "red", "green"]})
+    refl = xr.DataArray(
+        np.array([[[0.3, 0.2]], [[0.1, -0.05]], [[0.05, 0.04]]]),
+        dims=("band", "y", "x"),
+        coords={"band": ["nir", "red", "green"]},
+    )
     counts = index_range_counts(refl)
     assert counts == {"ndvi": 1, "ndwi": 0}  # (0.2 + 0.05) / (0.2 - 0.05) = 1.67 for the second pixel
 
 
 def test_inline_sensor_and_unknown_sensor(tmp_path):
-    cam = {"bands": ["red", "green", "blue", "nir"], "scale": 1 / 255, "valid_range": [0.0, 1.0],
-           "description": "survey camera, 8-bit"}
-    pf = make_project(tmp_path, sensor="rgbn", dem=False, dates=("2024-06-01",), scene={"sensor": "survey_cam"},
-                      extra={"sensors": {"survey_cam": cam}})
+    cam = {
+        "bands": ["red", "green", "blue", "nir"],
+        "scale": 1 / 255,
+        "valid_range": [0.0, 1.0],
+        "description": "survey camera, 8-bit",
+    }
+    pf = make_project(
+        tmp_path,
+        sensor="rgbn",
+        dem=False,
+        dates=("2024-06-01",),
+        scene={"sensor": "survey_cam"},
+        extra={"sensors": {"survey_cam": cam}},
+    )
     project = load_project(pf)
     assert project.optical[0].bands == ("red", "green", "blue", "nir")
     assert project.optical[0].scale == pytest.approx(1 / 255)

@@ -49,7 +49,8 @@ def _finish(da: xr.DataArray, name: str, fdef: FeatureDef, inputs: FeatureInputs
     attrs = dict(da.attrs)
     if fdef.origin != "builtin":  # a user's function: fill what it did not say, never invent a unit
         attrs = _own_attrs(attrs, inputs)
-        attrs = {"long_name": fdef.description, "units": "unspecified", "domain": fdef.domain, "reference": "",
+        attrs = {"long_name": fdef.description, "units": "unspecified", "domain": fdef.domain,
+                 "reference": "",
                  "parameters": "{}", **attrs}
         if "formula" not in attrs and "method" not in attrs:
             attrs["method"] = f"user feature {fdef.func.__module__}.{fdef.func.__qualname__}"
@@ -71,7 +72,8 @@ def _finish(da: xr.DataArray, name: str, fdef: FeatureDef, inputs: FeatureInputs
 
 def plan_features(inputs: FeatureInputs | Availability, select: tuple[str, ...] | list[str],
                   params: dict[str, dict[str, Any]] | None = None,
-                  plugins: tuple[str | Path, ...] | list[str | Path] = ()) -> tuple[list[FeatureDef], dict[str, str]]:
+                  plugins: tuple[str | Path, ...] | list[str | Path] = (),
+                  ) -> tuple[list[FeatureDef], dict[str, str]]:
     """Load the plugin files, then resolve the selection against what the inputs offer.
 
     Returns the features to compute and ``{skipped feature: reason}``; see

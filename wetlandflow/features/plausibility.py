@@ -22,8 +22,14 @@ from ..inputs.scenes import sensor_of
 from .composite import check_reflectance
 
 # the normalised differences whose band pairs a scene may hold (index -> (a, b))
-_ND_PAIRS = {"ndvi": ("nir", "red"), "ndwi": ("green", "nir"), "ndmi": ("nir", "swir1"),
-             "mndwi": ("green", "swir1"), "ndre1": ("nir", "re1"), "ndre2": ("nir", "re2")}
+_ND_PAIRS = {
+    "ndvi": ("nir", "red"),
+    "ndwi": ("green", "nir"),
+    "ndmi": ("nir", "swir1"),
+    "mndwi": ("green", "swir1"),
+    "ndre1": ("nir", "re1"),
+    "ndre2": ("nir", "re2"),
+}
 
 
 class ReflectanceWarning(UserWarning):
@@ -31,7 +37,7 @@ class ReflectanceWarning(UserWarning):
 
 
 def index_range_counts(scene: xr.DataArray) -> dict[str, int]:
-    """Pixels of each computable normalised difference outside [-1, 1], for one ``(band, y, x)`` scene (in memory)."""
+    """Pixels of each computable normalised difference outside [-1, 1] in one ``(band, y, x)`` scene."""
     present = {str(b) for b in scene["band"].values}
     out = {}
     for name, (a, b) in _ND_PAIRS.items():
@@ -59,21 +65,32 @@ def _range_check(sub: xr.DataArray, scene, sensor, key: str) -> dict[str, Any]:
         return {"n_valid": 0, "diagnosis": "empty"}
     lo, hi = sensor.valid_range
     below, above = float(np.mean(v < lo)), float(np.mean(v > hi))
-    rec = {"n_valid": int(v.size), "below_range": round(below, 4), "above_range": round(above, 4),
-           "median": float(np.median(v)), "valid_range": [lo, hi], "sensor": sensor.name, "diagnosis": "ok"}
+    rec = {
+        "n_valid": int(v.size),
+        "below_range": round(below, 4),
+        "above_range": round(above, 4),
+        "median": float(np.median(v)),
+        "valid_range": [lo, hi],
+        "sensor": sensor.name,
+        "diagnosis": "ok",
+    }
     if below + above > 0.01:
         rec["diagnosis"] = "out_of_range"
         raw_max = (float(v.max()) - scene.offset) / scene.scale - scene.offset_dn
         hint = ""
         if above > 0.5:
             guess = 255 if raw_max <= 255 else 65535 if raw_max > 10000 else 10000
-            hint = (f" The largest value is {float(v.max()):.4g} (DN about {raw_max:.4g}): if these are "
-                    f"unscaled digital numbers, set scale = {1 / guess:.6g} (1/{guess}) in {key}.")
+            hint = (
+                f" The largest value is {float(v.max()):.4g} (DN about {raw_max:.4g}): if these are "
+                f"unscaled digital numbers, set scale = {1 / guess:.6g} (1/{guess}) in {key}."
+            )
         raise DataQualityError(
             f"[{key}] scene {scene.label}: {below:.1%} of values fall below and {above:.1%} above the range "
-            f"{lo:g} to {hi:g} expected of sensor {sensor.name!r} after scaling ((DN + {scene.offset_dn:g}) x "
+            f"{lo:g} to {hi:g} expected of sensor {sensor.name!r} after scaling "
+            f"((DN + {scene.offset_dn:g}) x "
             f"{scene.scale:g} + {scene.offset:g}).{hint} Check scale, offset_dn and offset in {key}, or the "
-            f"sensor name; set plausibility = \"warn\" in {key} to go on anyway")
+            f'sensor name; set plausibility = "warn" in {key} to go on anyway'
+        )
     return rec
 
 
@@ -104,15 +121,19 @@ def optical_plausibility(project: Any, inputs: Any, *, max_side: int = 256) -> d
         except DataQualityError as exc:
             if scene.plausibility != "warn":
                 raise
-            warnings.warn(f"{exc} (plausibility = \"warn\": the run goes on)", ReflectanceWarning, stacklevel=2)
+            warnings.warn(f'{exc} (plausibility = "warn": the run goes on)', ReflectanceWarning, stacklevel=2)
             rec = {"diagnosis": "implausible (warned)", "message": str(exc)}
         counts = index_range_counts(sub)
         rec["index_out_of_range"] = counts
         if any(counts.values()):
             bad = {k: v for k, v in counts.items() if v}
-            warnings.warn(f"{key} {scene.label}: normalised differences outside [-1, 1] on the checked sample "
-                          f"({bad} pixels): some reflectance is negative. Check scale, offset_dn and offset "
-                          f"in {key}", ReflectanceWarning, stacklevel=2)
+            warnings.warn(
+                f"{key} {scene.label}: normalised differences outside [-1, 1] on the checked sample "
+                f"({bad} pixels): some reflectance is negative. Check scale, offset_dn and offset "
+                f"in {key}",
+                ReflectanceWarning,
+                stacklevel=2,
+            )
         out[f"optical {scene.date}"] = {scene.label: rec}
     return out
 

@@ -100,7 +100,8 @@ class FeatureDef:
         """Why the inputs cannot compute this feature (None when they can)."""
         lacking = [n for n in self.needs if n not in avail.inputs]
         if lacking:
-            return f"needs {', '.join(dict.fromkeys(_INPUT_WORDS[n] for n in lacking))}, which the project lacks"
+            words = ", ".join(dict.fromkeys(_INPUT_WORDS[n] for n in lacking))
+            return f"needs {words}, which the project lacks"
         bands = [b for b in self.bands if b not in avail.bands]
         if bands:
             who = f"sensor {avail.sensor}" if avail.sensor else "the optical scenes"
@@ -148,20 +149,24 @@ def feature(name: str, *, domain: str = "user", needs: Sequence[str] = (), bands
     bad = [n for n in needs if n not in NEEDS]
     if bad:
         raise ValueError(f"unknown input(s) {bad}; a feature may need any of {NEEDS}")
-    needs = tuple(needs) + (("optical",) if bands and "optical" not in needs and "composite" not in needs else ())
+    reads_optical = "optical" in needs or "composite" in needs
+    needs = tuple(needs) + (("optical",) if bands and not reads_optical else ())
     needs += ("sar",) if pols and "sar" not in needs else ()
 
     def wrap(func: Callable[..., Any]) -> Callable[..., Any]:
         old = REGISTRY.get(name)
         same_source = old is not None and _source_of(old.func) == _source_of(func)
         if old is not None and not replace and old.func is not func and not same_source:
-            raise ValueError(f"feature {name!r} is already registered (by {old.origin}); pass replace=True to "
+            raise ValueError(f"feature {name!r} is already registered (by {old.origin}); pass replace=True "
+                             "to "
                              "redefine it, or choose another name")
         sig = inspect.signature(func)
-        defaults = {k: p.default for k, p in sig.parameters.items() if p.default is not inspect.Parameter.empty}
+        empty = inspect.Parameter.empty
+        defaults = {k: p.default for k, p in sig.parameters.items() if p.default is not empty}
         doc = (inspect.getdoc(func) or name).splitlines()[0]
         origin = "builtin" if func.__module__.startswith("wetlandflow.") else _source_of(func)
-        REGISTRY[name] = FeatureDef(name, domain, func, tuple(needs), doc, defaults, tuple(bands), tuple(pols),
+        REGISTRY[name] = FeatureDef(name, domain, func, tuple(needs), doc, defaults, tuple(bands),
+                                    tuple(pols),
                                     default, check, origin)
         return func
 
@@ -198,7 +203,8 @@ def load_plugins(paths: Sequence[str | Path]) -> list[str]:
                                    "(run it in a notebook to see the traceback)", key=key) from exc
         found = [n for n, d in REGISTRY.items() if before.get(n) is not d.func]
         if not found:
-            raise ProjectFileError(f"the plugin {path.name} registers no feature; decorate its functions with "
+            raise ProjectFileError(f"the plugin {path.name} registers no feature; decorate its functions "
+                                   "with "
                                    "@wetlandflow.feature(\"name\", needs=(...), bands=(...))", key=key)
         names += found
     return names
@@ -217,7 +223,8 @@ def default_selection(avail: Availability, plugin_names: Sequence[str] = ()) -> 
     return chosen + [n for n in plugin_names if n not in chosen]
 
 
-def plan_selection(select: Sequence[str], avail: Availability, params: dict[str, dict[str, Any]] | None = None,
+def plan_selection(select: Sequence[str], avail: Availability,
+                   params: dict[str, dict[str, Any]] | None = None,
                    *, plugin_names: Sequence[str] = ()) -> tuple[list[FeatureDef], dict[str, str]]:
     """The features a run computes, and those it skips with the reason.
 
@@ -244,7 +251,8 @@ def plan_selection(select: Sequence[str], avail: Availability, params: dict[str,
         else:
             raise ProjectFileError(
                 f"unknown feature or domain {item!r}; domains: {', '.join(DOMAINS)}; features: "
-                f"{', '.join(sorted(REGISTRY))}; or {DEFAULT_KEYWORD!r} for every built-in feature the inputs can "
+                f"{', '.join(sorted(REGISTRY))}; or {DEFAULT_KEYWORD!r} for every built-in feature the "
+                "inputs can "
                 "compute (docs/methods.md lists them)", key="features.select")
     for name in explicit:
         reason = REGISTRY[name].missing(avail, params.get(name))
@@ -301,7 +309,8 @@ def registry_table() -> Any:
     import pandas as pd
 
     return pd.DataFrame(
-        [(d.name, d.domain, ", ".join(d.needs), ", ".join(d.bands + d.pols), d.default, d.description, d.defaults)
+        [(d.name, d.domain, ", ".join(d.needs), ", ".join(d.bands + d.pols), d.default, d.description,
+          d.defaults)
          for d in REGISTRY.values()],
         columns=["name", "domain", "needs", "bands", "default", "description", "defaults"],
     )
@@ -314,6 +323,6 @@ def registry_markdown() -> str:
         if d.origin != "builtin":
             continue
         needs = ", ".join([n for n in d.needs if n != "composite"] + [f"`{b}`" for b in d.bands + d.pols])
-        default = "yes" if d.default else "when named (or RGB/RGBN data)" if d.name == "band_medians" else "when named"
+        default = "yes" if d.default else "when named" + (" (or RGB/RGBN data)" * (d.name == "band_medians"))
         rows.append(f"| `{d.name}` | {d.domain} | {needs} | {default} | {d.description} |")
     return "\n".join(rows)

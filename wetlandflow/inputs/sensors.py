@@ -88,8 +88,13 @@ class Sensor:
 
     def scene_defaults(self) -> dict[str, Any]:
         """The scene keys this sensor provides, as they would be written in the project file."""
-        out: dict[str, Any] = {"bands": list(self.bands), "scale": self.scale, "offset_dn": self.offset_dn,
-                               "offset": self.offset, "nodata": self.nodata}
+        out: dict[str, Any] = {
+            "bands": list(self.bands),
+            "scale": self.scale,
+            "offset_dn": self.offset_dn,
+            "offset": self.offset,
+            "nodata": self.nodata,
+        }
         if self.mask_valid:
             out["mask_valid"] = list(self.mask_valid)
         return out
@@ -102,41 +107,105 @@ class Sensor:
 _S2_BANDS = ("blue", "green", "red", "re1", "re2", "re3", "nir", "nir_narrow", "swir1", "swir2")
 _S2_NATIVE = ("B02", "B03", "B04", "B05", "B06", "B07", "B08", "B8A", "B11", "B12")
 _S2_CENTRES = (492.4, 559.8, 664.6, 704.1, 740.5, 782.8, 832.8, 864.7, 1613.7, 2202.4)
-_S2_REF = ("ESA (2022) Sentinel-2 processing baseline 04.00: L2A_SR = (DN + BOA_ADD_OFFSET) / "
-           "QUANTIFICATION_VALUE, QUANTIFICATION_VALUE 10000, DN 0 no data; S2A centres from ESA S2-SRF "
-           "(COPE-GSEG-EOPG-TN-15-0007) via Montero et al. (2023) Awesome Spectral Indices")
-_LANDSAT_REF = ("USGS, How do I use a scale factor with Landsat Level-2 science products? (SR: DN x "
-                "0.0000275 - 0.2, fill 0, valid 7273-43636); USGS {guide}")
+_S2_REF = (
+    "ESA (2022) Sentinel-2 processing baseline 04.00: L2A_SR = (DN + BOA_ADD_OFFSET) / "
+    "QUANTIFICATION_VALUE, QUANTIFICATION_VALUE 10000, DN 0 no data; S2A centres from ESA S2-SRF "
+    "(COPE-GSEG-EOPG-TN-15-0007) via Montero et al. (2023) Awesome Spectral Indices"
+)
+_LANDSAT_REF = (
+    "USGS, How do I use a scale factor with Landsat Level-2 science products? (SR: DN x "
+    "0.0000275 - 0.2, fill 0, valid 7273-43636); USGS {guide}"
+)
 _L2_RANGE = (7273 * 0.0000275 - 0.2, 43636 * 0.0000275 - 0.2)  # USGS valid DN range, scaled: about 0.0 to 1.0
 
-SENSORS: MappingProxyType[str, Sensor] = MappingProxyType({s.name: s for s in (
-    Sensor("sentinel2_l2a", "Sentinel-2 MSI Level-2A, processing baseline 04.00 or later (from 2022-01-25)",
-           _S2_BANDS, _S2_NATIVE, _S2_CENTRES, scale=0.0001, offset_dn=-1000.0, nodata=0.0,
-           valid_range=(-0.1, 1.2), dark_object_check=True, mask_valid=(4, 5, 6, 7), reference=_S2_REF),
-    Sensor("sentinel2_l2a_pre2022", "Sentinel-2 MSI Level-2A, processing baseline before 04.00 (no offset)",
-           _S2_BANDS, _S2_NATIVE, _S2_CENTRES, scale=0.0001, offset_dn=0.0, nodata=0.0,
-           valid_range=(0.0, 1.2), dark_object_check=True, mask_valid=(4, 5, 6, 7), reference=_S2_REF),
-    Sensor("landsat89_oli_c2l2", "Landsat 8/9 OLI Collection 2 Level-2 surface reflectance (SR_B1-SR_B7)",
-           ("coastal", "blue", "green", "red", "nir", "swir1", "swir2"),
-           ("SR_B1", "SR_B2", "SR_B3", "SR_B4", "SR_B5", "SR_B6", "SR_B7"),
-           (440.0, 480.0, 560.0, 655.0, 865.0, 1610.0, 2200.0), scale=0.0000275, offset=-0.2, nodata=0.0,
-           valid_range=_L2_RANGE, dark_object_check=True,
-           reference=_LANDSAT_REF.format(guide="LSDS-1619 Landsat 8-9 Collection 2 Level 2 Science Product Guide")),
-    Sensor("landsat47_tm_etm_c2l2", "Landsat 4-7 TM/ETM+ Collection 2 Level-2 surface reflectance "
-           "(SR_B1-SR_B5, SR_B7)",
-           ("blue", "green", "red", "nir", "swir1", "swir2"),
-           ("SR_B1", "SR_B2", "SR_B3", "SR_B4", "SR_B5", "SR_B7"),
-           (485.0, 560.0, 660.0, 835.0, 1650.0, 2220.0), scale=0.0000275, offset=-0.2, nodata=0.0,
-           valid_range=_L2_RANGE, dark_object_check=True,
-           reference=_LANDSAT_REF.format(guide="LSDS-1618 Landsat 4-7 Collection 2 Level 2 Science Product Guide")),
-    Sensor("rgbn", "generic 4-band red, green, blue, near-infrared (aerial or commercial); set scale so that "
-           "values fall in [0, 1] (e.g. 1/255 for 8-bit data)",
-           ("red", "green", "blue", "nir"), (), (665.0, 560.0, 490.0, 842.0), scale=1.0, nodata=0.0,
-           valid_range=(0.0, 1.0), reference="nominal band centres (common practice, no source)"),
-    Sensor("rgb", "generic 3-band red, green, blue; set scale so that values fall in [0, 1]",
-           ("red", "green", "blue"), (), (665.0, 560.0, 490.0), scale=1.0, nodata=0.0,
-           valid_range=(0.0, 1.0), reference="nominal band centres (common practice, no source)"),
-)})
+SENSORS: MappingProxyType[str, Sensor] = MappingProxyType(
+    {
+        s.name: s
+        for s in (
+            Sensor(
+                "sentinel2_l2a",
+                "Sentinel-2 MSI Level-2A, processing baseline 04.00 or later (from 2022-01-25)",
+                _S2_BANDS,
+                _S2_NATIVE,
+                _S2_CENTRES,
+                scale=0.0001,
+                offset_dn=-1000.0,
+                nodata=0.0,
+                valid_range=(-0.1, 1.2),
+                dark_object_check=True,
+                mask_valid=(4, 5, 6, 7),
+                reference=_S2_REF,
+            ),
+            Sensor(
+                "sentinel2_l2a_pre2022",
+                "Sentinel-2 MSI Level-2A, processing baseline before 04.00 (no offset)",
+                _S2_BANDS,
+                _S2_NATIVE,
+                _S2_CENTRES,
+                scale=0.0001,
+                offset_dn=0.0,
+                nodata=0.0,
+                valid_range=(0.0, 1.2),
+                dark_object_check=True,
+                mask_valid=(4, 5, 6, 7),
+                reference=_S2_REF,
+            ),
+            Sensor(
+                "landsat89_oli_c2l2",
+                "Landsat 8/9 OLI Collection 2 Level-2 surface reflectance (SR_B1-SR_B7)",
+                ("coastal", "blue", "green", "red", "nir", "swir1", "swir2"),
+                ("SR_B1", "SR_B2", "SR_B3", "SR_B4", "SR_B5", "SR_B6", "SR_B7"),
+                (440.0, 480.0, 560.0, 655.0, 865.0, 1610.0, 2200.0),
+                scale=0.0000275,
+                offset=-0.2,
+                nodata=0.0,
+                valid_range=_L2_RANGE,
+                dark_object_check=True,
+                reference=_LANDSAT_REF.format(
+                    guide="LSDS-1619 Landsat 8-9 Collection 2 Level 2 Science Product Guide"
+                ),
+            ),
+            Sensor(
+                "landsat47_tm_etm_c2l2",
+                "Landsat 4-7 TM/ETM+ Collection 2 Level-2 surface reflectance (SR_B1-SR_B5, SR_B7)",
+                ("blue", "green", "red", "nir", "swir1", "swir2"),
+                ("SR_B1", "SR_B2", "SR_B3", "SR_B4", "SR_B5", "SR_B7"),
+                (485.0, 560.0, 660.0, 835.0, 1650.0, 2220.0),
+                scale=0.0000275,
+                offset=-0.2,
+                nodata=0.0,
+                valid_range=_L2_RANGE,
+                dark_object_check=True,
+                reference=_LANDSAT_REF.format(
+                    guide="LSDS-1618 Landsat 4-7 Collection 2 Level 2 Science Product Guide"
+                ),
+            ),
+            Sensor(
+                "rgbn",
+                "generic 4-band red, green, blue, near-infrared (aerial or commercial); set scale so that "
+                "values fall in [0, 1] (e.g. 1/255 for 8-bit data)",
+                ("red", "green", "blue", "nir"),
+                (),
+                (665.0, 560.0, 490.0, 842.0),
+                scale=1.0,
+                nodata=0.0,
+                valid_range=(0.0, 1.0),
+                reference="nominal band centres (common practice, no source)",
+            ),
+            Sensor(
+                "rgb",
+                "generic 3-band red, green, blue; set scale so that values fall in [0, 1]",
+                ("red", "green", "blue"),
+                (),
+                (665.0, 560.0, 490.0),
+                scale=1.0,
+                nodata=0.0,
+                valid_range=(0.0, 1.0),
+                reference="nominal band centres (common practice, no source)",
+            ),
+        )
+    }
+)
 
 
 def sensor_from_table(name: str, table: Any, *, key: str) -> Sensor:
@@ -146,11 +215,14 @@ def sensor_from_table(name: str, table: Any, *, key: str) -> Sensor:
     fields = {f.name for f in dataclasses.fields(Sensor)} - {"name"}
     unknown = sorted(set(table) - fields)
     if unknown:
-        raise ProjectFileError(f"unknown key {unknown[0]!r}; valid keys here are: {', '.join(sorted(fields))}",
-                               key=f"{key}.{unknown[0]}")
+        raise ProjectFileError(
+            f"unknown key {unknown[0]!r}; valid keys here are: {', '.join(sorted(fields))}",
+            key=f"{key}.{unknown[0]}",
+        )
     if "bands" not in table:
-        raise ProjectFileError("a sensor needs its band list, e.g. bands = [\"red\", \"green\", \"blue\", \"nir\"]",
-                               key=f"{key}.bands")
+        raise ProjectFileError(
+            'a sensor needs its band list, e.g. bands = ["red", "green", "blue", "nir"]', key=f"{key}.bands"
+        )
     kw = dict(table)
     for k in ("bands", "native", "centre_nm", "mask_valid", "valid_range"):
         if k in kw:
@@ -159,11 +231,14 @@ def sensor_from_table(name: str, table: Any, *, key: str) -> Sensor:
             kw[k] = tuple(kw[k])
     bad = [b for b in kw["bands"] if b not in BAND_NAMES]
     if bad:
-        raise ProjectFileError(f"unknown band name(s) {bad}; use the portable names {', '.join(BAND_NAMES)}",
-                               key=f"{key}.bands")
+        raise ProjectFileError(
+            f"unknown band name(s) {bad}; use the portable names {', '.join(BAND_NAMES)}", key=f"{key}.bands"
+        )
     if "valid_range" in kw and (len(kw["valid_range"]) != 2 or kw["valid_range"][0] >= kw["valid_range"][1]):
-        raise ProjectFileError(f"valid_range is [low, high] with low < high, got {list(kw['valid_range'])}",
-                               key=f"{key}.valid_range")
+        raise ProjectFileError(
+            f"valid_range is [low, high] with low < high, got {list(kw['valid_range'])}",
+            key=f"{key}.valid_range",
+        )
     for k in ("scale", "offset_dn", "offset", "nodata"):
         if k in kw and (isinstance(kw[k], bool) or not isinstance(kw[k], int | float)):
             raise ProjectFileError(f"expected a number, got {kw[k]!r}", key=f"{key}.{k}")
@@ -179,14 +254,28 @@ def resolve_sensor(name: str, inline: dict[str, Sensor], *, key: str) -> Sensor:
     raise ProjectFileError(
         f"unknown sensor {name!r}; shipped sensors: {', '.join(sorted(SENSORS))}"
         + (f"; described in this file: {', '.join(sorted(inline))}" if inline else "")
-        + ". Name one of these, or describe yours in a [sensors." + name + "] table (docs/project-file.md)",
-        key=key)
+        + ". Name one of these, or describe yours in a [sensors."
+        + name
+        + "] table (docs/project-file.md)",
+        key=key,
+    )
 
 
 def sensor_table() -> Any:
     """The shipped sensors as a DataFrame (for docs and ``check``)."""
     import pandas as pd
 
-    return pd.DataFrame([{"sensor": s.name, "bands": ", ".join(s.bands), "scale": s.scale,
-                          "offset_dn": s.offset_dn, "offset": s.offset, "valid_range": list(s.valid_range),
-                          "description": s.description} for s in SENSORS.values()])
+    return pd.DataFrame(
+        [
+            {
+                "sensor": s.name,
+                "bands": ", ".join(s.bands),
+                "scale": s.scale,
+                "offset_dn": s.offset_dn,
+                "offset": s.offset,
+                "valid_range": list(s.valid_range),
+                "description": s.description,
+            }
+            for s in SENSORS.values()
+        ]
+    )

@@ -24,7 +24,7 @@ from .. import CAUTION, __version__
 from ..errors import Cancelled, ProjectFileError
 from ..features.cube import build_cube, open_cube, save_cube, season_coverage
 from ..inputs.io import check_writable, sha256_file, write_figure, write_json, write_table
-from ..inputs.layers import load_inputs, project_grid, read_aoi
+from ..inputs.layers import grid_reference, input_inventory, load_inputs, project_grid, read_aoi
 from ..inputs.preflight import preflight
 from ..inputs.project import (
     Project,
@@ -398,6 +398,9 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
         grid = project_grid(project)
         inputs = load_inputs(project, grid)
         rec["grid"] = grid.to_dict()
+        rec["grid_follows"] = grid_reference(project)[0]
+        rec["to_grid"] = {f"{r.kind} {r.date} {r.file}".replace("  ", " "): r.to_grid
+                          for r in input_inventory(project, grid).itertuples()}
         rec["layers"] = {k: getattr(inputs, k).attrs if getattr(inputs, k) is not None else None
                          for k in ("optical", "dem", "sar")}
         rec["checks"] = plausibility_checks(project, inputs)
@@ -669,6 +672,13 @@ def format_summary(result: RunResult) -> str:
     if share is not None:
         lines += ["", f"Outside the area of applicability (Meyer & Pebesma 2021): {100 * share:.1f} % of the "
                       "mapped pixels; predictions there extrapolate beyond the training data."]
+    inputs_rec = steps.get("inputs", {})
+    if inputs_rec.get("grid_follows"):
+        moved = [k for k, v in inputs_rec.get("to_grid", {}).items() if v.startswith("resampled")]
+        lines += ["", f"Grid: follows {inputs_rec['grid_follows']}; "
+                      + (f"{len(moved)} input file(s) resampled onto it ({', '.join(moved[:3])}"
+                         f"{', ...' if len(moved) > 3 else ''}; see manifest.json steps.inputs.to_grid)"
+                         if moved else "every input file lies on its pixels (no resampling)")]
     skipped = steps.get("features", {}).get("skipped")
     if skipped:
         lines += ["", "Features skipped (the inputs cannot compute them):"]
