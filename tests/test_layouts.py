@@ -229,3 +229,25 @@ def test_plugin_that_registers_nothing_is_refused_by_check(tmp_path, capsys):
     pf = make_project(tmp_path, dem=False, extra={"features": {"plugins": ["empty.py"]}})
     assert main(["check", str(pf)]) == 2
     assert "features.plugins[0]" in capsys.readouterr().err
+
+
+def test_user_feature_registered_in_a_notebook_runs_through_run_project(tmp_path):
+    import wetlandflow
+    from wetlandflow.features.registry import REGISTRY
+    from wetlandflow.pipeline.run import run_project
+
+    @wetlandflow.feature("nir_minus_red", needs=("composite",), bands=("nir", "red"))
+    def nir_minus_red(inputs):
+        """NIR minus red reflectance of the seasonal composites."""
+        r = inputs.composite["reflectance"]
+        out = r.sel(band="nir", drop=True) - r.sel(band="red", drop=True)
+        return out.assign_attrs(units="1", formula="nir - red")
+
+    try:
+        pf = make_project(tmp_path, dem=False, extra={"features": {"select": ["ndvi", "nir_minus_red"]}})
+        result = run_project(pf, progress=False)
+        attrs = result.manifest["steps"]["features"]["features"]
+        assert set(attrs) == {"ndvi_all", "nir_minus_red_all"}
+        assert attrs["nir_minus_red_all"]["units"] == "1" and attrs["nir_minus_red_all"]["formula"] == "nir - red"
+    finally:
+        REGISTRY.pop("nir_minus_red", None)

@@ -34,12 +34,15 @@ def _as_variables(out: xr.DataArray | xr.Dataset, fdef: FeatureDef) -> dict[str,
 
 
 def _own_attrs(attrs: dict[str, Any], inputs: FeatureInputs) -> dict[str, Any]:
-    """Drop attrs that xarray carried over from an input layer (2 x DEM is not "elevation" in "m")."""
+    """A user's output that is an input layer unchanged keeps none of that layer's attrs.
+
+    (User functions run with ``keep_attrs=False``, so arithmetic drops the inputs' attrs; only what the
+    function assigns itself survives, and an input layer returned as it is would still carry its own.)
+    """
     layers = [getattr(inputs, n) for n in ("optical", "sar", "dem", "aoi")]
     if inputs.composite is not None:
         layers.append(inputs.composite["reflectance"])
-    inherited = {(k, str(v)) for da in layers if da is not None for k, v in da.attrs.items()}
-    return {k: v for k, v in attrs.items() if (k, str(v)) not in inherited}
+    return {} if any(da is not None and attrs == dict(da.attrs) for da in layers) and attrs else attrs
 
 
 def _finish(da: xr.DataArray, name: str, fdef: FeatureDef, inputs: FeatureInputs) -> xr.DataArray:
@@ -106,7 +109,12 @@ def build_cube(inputs: FeatureInputs, select: tuple[str, ...] | list[str],
     for fdef in defs:
         if "composite" in fdef.needs:
             composite(inputs)
-        out = fdef.func(inputs, **{**fdef.defaults, **params.get(fdef.name, {})})
+        kwargs = {**fdef.defaults, **params.get(fdef.name, {})}
+        if fdef.origin == "builtin":
+            out = fdef.func(inputs, **kwargs)
+        else:  # a user's arithmetic must not pass the inputs' units and names off as its own
+            with xr.set_options(keep_attrs=False):
+                out = fdef.func(inputs, **kwargs)
         for name, da in _as_variables(out, fdef).items():
             if name in variables:
                 raise ValueError(f"feature variable {name!r} produced twice (by {fdef.name!r})")
