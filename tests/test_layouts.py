@@ -248,6 +248,7 @@ def test_user_feature_registered_in_a_notebook_runs_through_run_project(tmp_path
         result = run_project(pf, progress=False)
         attrs = result.manifest["steps"]["features"]["features"]
         assert set(attrs) == {"ndvi_all", "nir_minus_red_all"}
-        assert attrs["nir_minus_red_all"]["units"] == "1" and attrs["nir_minus_red_all"]["formula"] == "nir - red"
+        mine = attrs["nir_minus_red_all"]
+        assert mine["units"] == "1" and mine["formula"] == "nir - red" and mine["domain"] == "user"
     finally:
         REGISTRY.pop("nir_minus_red", None)
