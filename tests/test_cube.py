@@ -83,16 +83,33 @@ def test_user_feature_flows_into_the_cube(inputs):
         REGISTRY.pop("green_red_ratio_test", None)
 
 
-def test_feature_without_provenance_is_refused(inputs):
+def test_user_feature_without_provenance_gets_honest_defaults(inputs):
+    """A user's function that says nothing about its output gets 'unspecified' units, never invented ones."""
     @feature("bare_test", domain="user", needs=("dem",), replace=True)
     def bare(inputs):
+        """Twice the elevation."""
         return inputs.dem * 2
 
     try:
-        with pytest.raises(ValueError, match="lacks provenance attrs"):
-            build_cube(inputs, ["bare_test"])
+        attrs = build_cube(inputs, ["bare_test"])["bare_test"].attrs
+        assert attrs["units"] == "unspecified" and attrs["domain"] == "user"
+        assert attrs["long_name"] == "Twice the elevation." and "bare" in attrs["method"]
     finally:
         REGISTRY.pop("bare_test", None)
+
+
+def test_builtin_feature_without_provenance_is_refused(inputs):
+    from wetlandflow.features.registry import FeatureDef
+
+    def bare(inputs):
+        return inputs.dem * 2
+
+    REGISTRY["bare_builtin_test"] = FeatureDef("bare_builtin_test", "terrain", bare, ("dem",), "bare", {})
+    try:
+        with pytest.raises(ValueError, match="lacks provenance attrs"):
+            build_cube(inputs, ["bare_builtin_test"])
+    finally:
+        REGISTRY.pop("bare_builtin_test", None)
 
 
 def test_sar_speckle_filter_and_hydroperiod_are_cube_options(inputs):

@@ -12,7 +12,6 @@ import warnings
 
 import dask.array as dsa
 import numpy as np
-import pandas as pd
 import pytest
 import xarray as xr
 from test_sar import sar_stack, speckle  # the shared synthetic SAR data

@@ -12,10 +12,12 @@ from .._lazy import exports
 from . import builtin  # noqa: F401  (registers the built-in features)
 
 __all__, __getattr__, __dir__ = exports(__name__, {
-    "registry": ["FeatureDef", "feature", "resolve_selection", "registry_table"],
-    "cube": ["build_cube", "save_cube", "open_cube", "cube_summary", "season_variable", "season_coverage"],
+    "registry": ["FeatureDef", "Availability", "feature", "resolve_selection", "plan_selection",
+                 "default_selection", "load_plugins", "registry_table", "registry_markdown"],
+    "plausibility": ["plausibility_checks", "optical_plausibility", "index_range_counts", "ReflectanceWarning"],
+    "cube": ["build_cube", "plan_features", "save_cube", "open_cube", "cube_summary", "season_variable", "season_coverage"],
     "composite": ["seasonal_composite", "reflectance_plausibility", "check_reflectance"],
-    "optical": ["normalized_difference", "normalized_differences", "optical_indices"],
+    "optical": ["normalized_difference", "normalized_differences", "optical_indices", "band_medians"],
     "sar": ["to_db", "from_db", "to_linear_power", "temporal_stats", "lee_filter", "temporal_ratio_filter"],
     "water": ["otsu_threshold", "ashman_d", "bimodality", "water_masks", "surface_water_frequency",
               "hydroperiod_class"],

@@ -39,30 +39,45 @@ def _reflectance(inputs: FeatureInputs) -> xr.DataArray:
 
 
 # -- optical ------------------------------------------------------------------------------
-def _optical_index(name: str, func) -> None:
-    @feature(name, domain="optical", needs=("optical",))
+def _optical_index(name: str, func, bands: tuple[str, ...]) -> None:
     def _index(inputs: FeatureInputs) -> xr.DataArray:
         return func(_reflectance(inputs))
 
     _index.__doc__ = (func.__doc__ or name).strip().splitlines()[0]
+    feature(name, domain="optical", needs=("optical",), bands=bands)(_index)
 
 
-for _name, _func in {
-    "ndvi": optical.ndvi,
-    "ndwi": optical.ndwi_mcfeeters,
-    "ndmi": optical.ndmi,
-    "mndwi": optical.mndwi,
-    "ndre1": optical.ndre1,
-    "ndre2": optical.ndre2,
-    "reip": optical.reip,
+for _name, (_func, _bands) in {
+    "ndvi": (optical.ndvi, ("nir", "red")),
+    "ndwi": (optical.ndwi_mcfeeters, ("green", "nir")),
+    "ndmi": (optical.ndmi, ("nir", "swir1")),
+    "mndwi": (optical.mndwi, ("green", "swir1")),
+    "ndre1": (optical.ndre1, ("nir", "re1")),
+    "ndre2": (optical.ndre2, ("nir", "re2")),
+    "reip": (optical.reip, ("red", "re1", "re2", "re3")),
 }.items():
-    _optical_index(_name, _func)
+    _optical_index(_name, _func, _bands)
 
 
-@feature("ndvi_season_difference", domain="optical", needs=("optical",))
+def _two_seasons(avail, params) -> str | None:
+    lacking = [params[k] for k in ("a", "b") if params[k] not in avail.seasons]
+    if lacking:
+        return (f"compares seasons {params['a']!r} and {params['b']!r}, and the project has no season "
+                f"{', '.join(map(repr, lacking))} (seasons: {', '.join(avail.seasons)}); set a and b in "
+                "[features.params.ndvi_season_difference] to two of them")
+    return None
+
+
+@feature("ndvi_season_difference", domain="optical", needs=("optical",), bands=("nir", "red"), check=_two_seasons)
 def ndvi_season_difference(inputs: FeatureInputs, *, a: str = "spring", b: str = "summer") -> xr.DataArray:
     """NDVI of season a minus season b (phenology contrast)."""
     return optical.season_difference(optical.ndvi(_reflectance(inputs)), a=a, b=b)
+
+
+@feature("band_medians", domain="optical", needs=("optical",), default=False)
+def band_medians(inputs: FeatureInputs) -> xr.Dataset:
+    """Seasonal median reflectance of every band, one variable per band and season (``red_summer``)."""
+    return optical.band_medians(composite(inputs))
 
 
 # -- SAR -----------------------------------------------------------------------------------
@@ -94,16 +109,25 @@ def _note_speckle(out: xr.Dataset | xr.DataArray, speckle: str, window: int):
     return out
 
 
-@feature("sar_temporal", domain="sar", needs=("sar",))
+def _vv_or_vh(avail, params) -> str | None:
+    if not {"VV", "VH"} & set(avail.pols):
+        return f"needs polarisation VV or VH; the SAR scenes have {', '.join(avail.pols)}"
+    return None
+
+
+@feature("sar_temporal", domain="sar", needs=("sar",), check=_vv_or_vh)
 def sar_temporal(inputs: FeatureInputs, *, speckle: str = "none", window: int = 7,
                  orbit_policy: str = "per_orbit") -> xr.Dataset:
-    """Temporal statistics of VV, VH and VH/VV, in linear power, levels in dB.
+    """Temporal statistics of VV, VH and VH/VV (those present), in linear power, levels in dB.
 
     ``speckle`` filters each date first: ``"lee"`` (Lee 1980) or
-    ``"multitemporal"`` (ratio-to-local-mean averaging over dates).
+    ``"multitemporal"`` (ratio-to-local-mean averaging over dates).  With a single date only the
+    mean level is computed.
     """
     stack = sar_stack(inputs, speckle, window)
-    out = sar.temporal_stats(stack, seasons=inputs.seasons, orbit_policy=orbit_policy)
+    # one date has a level but no spread: the spread statistics would be all NaN or all 0, so only the mean
+    stats = sar.STATS if stack.sizes["time"] >= 2 else ("mean",)
+    out = sar.temporal_stats(stack, stats, seasons=inputs.seasons, orbit_policy=orbit_policy)
     return _note_speckle(out, speckle, window)
 
 
@@ -114,13 +138,13 @@ def _water_frequency(inputs: FeatureInputs, speckle: str, window: int) -> xr.Dat
     return inputs.cached(f"water_frequency_{speckle}_{window}", make)
 
 
-@feature("water_frequency", domain="sar", needs=("sar",))
+@feature("water_frequency", domain="sar", needs=("sar",), pols=("VV",))
 def water_frequency(inputs: FeatureInputs, *, speckle: str = "none", window: int = 7) -> xr.DataArray:
     """Fraction of valid SAR dates detected as open water (Otsu per date on VV dB)."""
     return _note_speckle(_water_frequency(inputs, speckle, window).copy(), speckle, window)
 
 
-@feature("hydroperiod", domain="sar", needs=("sar",))
+@feature("hydroperiod", domain="sar", needs=("sar",), pols=("VV",))
 def hydroperiod(inputs: FeatureInputs, *, thresholds: tuple[float, float, float] = (0.1, 0.4, 0.8),
                 speckle: str = "none", window: int = 7) -> xr.DataArray:
     """Hydroperiod class (0 not flooded .. 4 permanent) from surface-water frequency; no data as NaN."""

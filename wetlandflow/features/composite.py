@@ -23,9 +23,12 @@ from ..inputs.seasons import season_mask
 from ._kernels import nanmedian_time
 
 _OFFSET_HINT = (
-    "reflectance = (DN + offset_dn) * scale; Sentinel-2 L2A products from processing baseline 04.00 "
-    "(2022) on carry offset_dn = -1000, earlier ones 0 (not verified in the product specification; check the product metadata "
-    "BOA_ADD_OFFSET)"
+    "reflectance = (DN + offset_dn) * scale + offset; Sentinel-2 L2A products from processing baseline 04.00 "
+    "(2022) on carry offset_dn = -1000, earlier ones 0 (not verified in the product specification; check the "
+    "product metadata's BOA_ADD_OFFSET). The advice "
+    "above assumes Sentinel-2-like surface reflectance: for other data name the sensor in the scene's table "
+    "(sensor = \"landsat89_oli_c2l2\", \"landsat47_tm_etm_c2l2\", \"rgbn\", \"rgb\", or your own "
+    "[sensors.<name>]), which sets the convention and the range checked, or set plausibility = \"warn\""
 )
 
 

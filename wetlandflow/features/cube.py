@@ -8,6 +8,7 @@ parameters).  It is built lazily and saved to Zarr.
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 from typing import Any
 
@@ -18,7 +19,7 @@ import xarray as xr
 from ..errors import ProjectFileError
 from ..inputs.grid import attach, require_match
 from ..inputs.layers import FeatureInputs
-from .registry import FeatureDef, resolve_selection
+from .registry import Availability, FeatureDef, load_plugins, plan_selection
 
 REQUIRED_ATTRS = ("long_name", "units", "domain", "reference", "parameters")
 
@@ -32,11 +33,30 @@ def _as_variables(out: xr.DataArray | xr.Dataset, fdef: FeatureDef) -> dict[str,
     return {fdef.name: out}
 
 
+def _own_attrs(attrs: dict[str, Any], inputs: FeatureInputs) -> dict[str, Any]:
+    """A user's output that is an input layer unchanged keeps none of that layer's attrs.
+
+    (User functions run with ``keep_attrs=False``, so arithmetic drops the inputs' attrs; only what the
+    function assigns itself survives, and an input layer returned as it is would still carry its own.)
+    """
+    layers = [getattr(inputs, n) for n in ("optical", "sar", "dem", "aoi")]
+    if inputs.composite is not None:
+        layers.append(inputs.composite["reflectance"])
+    return {} if any(da is not None and attrs == dict(da.attrs) for da in layers) and attrs else attrs
+
+
 def _finish(da: xr.DataArray, name: str, fdef: FeatureDef, inputs: FeatureInputs) -> xr.DataArray:
     extra = [d for d in da.dims if d not in ("y", "x")]
     if extra:
         raise ValueError(f"feature {fdef.name!r} returned {name!r} with extra dims {extra}; expected (y, x)")
     attrs = dict(da.attrs)
+    if fdef.origin != "builtin":  # a user's function: fill what it did not say, never invent a unit
+        attrs = _own_attrs(attrs, inputs)
+        attrs = {"long_name": fdef.description, "units": "unspecified", "domain": fdef.domain,
+                 "reference": "",
+                 "parameters": "{}", **attrs}
+        if "formula" not in attrs and "method" not in attrs:
+            attrs["method"] = f"user feature {fdef.func.__module__}.{fdef.func.__qualname__}"
     missing = [a for a in REQUIRED_ATTRS if a not in attrs] + ([] if ("formula" in attrs or "method" in attrs)
                                                                 else ["formula or method"])
     if missing:
@@ -53,27 +73,55 @@ def _finish(da: xr.DataArray, name: str, fdef: FeatureDef, inputs: FeatureInputs
     return da
 
 
+def plan_features(inputs: FeatureInputs | Availability, select: tuple[str, ...] | list[str],
+                  params: dict[str, dict[str, Any]] | None = None,
+                  plugins: tuple[str | Path, ...] | list[str | Path] = (),
+                  ) -> tuple[list[FeatureDef], dict[str, str]]:
+    """Load the plugin files, then resolve the selection against what the inputs offer.
+
+    Returns the features to compute and ``{skipped feature: reason}``; see
+    :func:`~wetlandflow.features.registry.plan_selection` for what is refused.
+    """
+    names = load_plugins(plugins) if plugins else []
+    avail = inputs if isinstance(inputs, Availability) else Availability.from_inputs(inputs)
+    return plan_selection(select, avail, params, plugin_names=names)
+
+
 def build_cube(inputs: FeatureInputs, select: tuple[str, ...] | list[str],
-               params: dict[str, dict[str, Any]] | None = None) -> xr.Dataset:
-    """Compute the selected features (lazily where the feature allows) into one Dataset."""
+               params: dict[str, dict[str, Any]] | None = None, *,
+               plugins: tuple[str | Path, ...] | list[str | Path] = ()) -> xr.Dataset:
+    """Compute the selected features (lazily where the feature allows) into one Dataset.
+
+    Features the inputs cannot compute are left out when reached through a domain or the default selection;
+    the cube's ``skipped`` attr (JSON) names them with the reason.
+    """
+    from .builtin import composite
+
     params = params or {}
-    defs = resolve_selection(select)
-    unknown = sorted(set(params) - {d.name for d in defs})
-    if unknown:
-        raise ProjectFileError(f"parameters given for feature(s) not selected: {unknown}", key="features.params")
+    defs, skipped = plan_features(inputs, select, params, plugins)
+    if not defs:
+        raise ProjectFileError(
+            "no feature can be computed from these inputs: "
+            + ("; ".join(f"{k} {v}" for k, v in skipped.items()) or "the selection is empty")
+            + ". Add the inputs the features need, or select features the inputs allow (docs/methods.md)",
+            key="features.select")
     variables: dict[str, xr.DataArray] = {}
     for fdef in defs:
-        missing = [n for n in fdef.needs if getattr(inputs, n) is None]
-        if missing:
-            raise ProjectFileError(f"feature {fdef.name!r} needs input(s) {missing}, which the project lacks",
-                                   key="features.select")
-        out = fdef.func(inputs, **{**fdef.defaults, **params.get(fdef.name, {})})
+        if "composite" in fdef.needs:
+            composite(inputs)
+        kwargs = {**fdef.defaults, **params.get(fdef.name, {})}
+        if fdef.origin == "builtin":
+            out = fdef.func(inputs, **kwargs)
+        else:  # a user's arithmetic must not pass the inputs' units and names off as its own
+            with xr.set_options(keep_attrs=False):
+                out = fdef.func(inputs, **kwargs)
         for name, da in _as_variables(out, fdef).items():
             if name in variables:
                 raise ValueError(f"feature variable {name!r} produced twice (by {fdef.name!r})")
             variables[name] = _finish(da, name, fdef, inputs)
     cube = xr.Dataset(variables)
-    cube.attrs = {"grid": str(inputs.grid.to_dict()), "features": ", ".join(d.name for d in defs)}
+    cube.attrs = {"grid": str(inputs.grid.to_dict()), "features": ", ".join(d.name for d in defs),
+                  "skipped": json.dumps(skipped)}
     return attach(cube, inputs.grid)
 
 

@@ -660,3 +660,32 @@ def season_difference(
             parameters={"a": a, "b": b},
         )
     return xr.Dataset(out)
+
+
+def band_medians(composite: xr.Dataset) -> xr.Dataset:
+    """The seasonal median reflectance of each band as features (``red_summer``, ``nir_all``).
+
+    Useful where the bands allow few indices (RGB, RGB+NIR data).  Stays lazy on dask input.
+
+    Parameters
+    ----------
+    composite : xarray.Dataset
+        From :func:`seasonal_composite`: ``reflectance`` with dims ``("season", "band", "y", "x")``.
+
+    Returns
+    -------
+    xarray.Dataset
+        One variable per band and season, surface reflectance (units "1").
+    """
+    refl = composite["reflectance"]
+    out = {}
+    for season in refl["season"].values:
+        for band in refl["band"].values:
+            name = f"{band}_{season}"
+            out[name] = with_attrs(
+                refl.sel(season=season, band=band, drop=True), name,
+                long_name=f"{band} surface reflectance, {season} median", units="1", domain="optical",
+                method="per-pixel median of the season's valid observations (seasonal composite)",
+                reference="", parameters={"band": str(band), "season": str(season),
+                                          "sentinel2": SENTINEL2_BAND.get(str(band))})
+    return xr.Dataset(out)

@@ -132,8 +132,9 @@ def _require_sar_stack(stack: xr.DataArray) -> None:
             "Transpose with stack.transpose('time', 'pol', 'y', 'x')."
         )
     pols = [str(p) for p in stack["pol"].values]
-    if not {"VV", "VH"} <= set(pols):
-        raise DataQualityError(f"the SAR stack needs pol 'VV' and 'VH'; received pol values {pols}.")
+    if not {"VV", "VH"} & set(pols):
+        raise DataQualityError(f"the SAR stack needs pol 'VV' or 'VH' (both for the VH/VV ratio); received pol "
+                               f"values {pols}. Name the polarisations in the bands list of the [[sar]] tables.")
 
 
 def _linear_stats(series: xr.DataArray, stats: Sequence[str]) -> dict[str, xr.DataArray]:
@@ -204,9 +205,12 @@ def _finish(prefix: str, label: str, stat: str, value: xr.DataArray, params: dic
 
 
 def _series(stack: xr.DataArray) -> dict[str, tuple[str, xr.DataArray]]:
-    vv = stack.sel(pol="VV", drop=True)
-    vh = stack.sel(pol="VH", drop=True)
-    return {"vv": ("VV", vv), "vh": ("VH", vh), "vhvv_ratio": ("VH/VV ratio", safe_ratio(vh, vv))}
+    """The series the stack holds: VV, VH, and their ratio when both are there (VV-only data is common)."""
+    pols = {str(p) for p in stack["pol"].values}
+    out = {p.lower(): (p, stack.sel(pol=p, drop=True)) for p in ("VV", "VH") if p in pols}
+    if len(out) == 2:
+        out["vhvv_ratio"] = ("VH/VV ratio", safe_ratio(out["vh"][1], out["vv"][1]))
+    return out
 
 
 def temporal_stats(
@@ -217,7 +221,7 @@ def temporal_stats(
     season_pairs: Sequence[tuple[str, str]] | None = None,
     orbit_policy: str = "per_orbit",
 ) -> xr.Dataset:
-    """Temporal statistics of VV, VH and the VH/VV ratio, computed in linear power.
+    """Temporal statistics of VV, VH and the VH/VV ratio (those the stack holds), in linear power.
 
     Levels (``mean``, ``median``, ``p10``, ``p90``) are converted to dB at the
     end (``vv_mean_db``); ``std`` is the linear-power sample standard

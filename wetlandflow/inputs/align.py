@@ -198,7 +198,9 @@ def read_aligned(
     if band_names is not None and len(band_names) != info.count:
         raise AlignmentError(
             f"{name} ({path}) has {info.count} band(s) but the project file lists {len(band_names)}: "
-            f"{list(band_names)}. Fix the band list or the file."
+            f"{list(band_names)}. Fix the band list or the file: bands in that scene's [[optical]] or [[sar]] "
+            "table names each band of the file, in the file's order (a named sensor's default list is its full "
+            "band set, so a file with fewer bands needs its own list)."
         )
     check_overlap(info, grid, name=name)
     same = _is_same_grid(path, grid)

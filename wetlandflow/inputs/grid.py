@@ -78,11 +78,18 @@ class Grid:
 
     # -- constructors -------------------------------------------------------------
     @classmethod
-    def from_bbox(cls, bounds: tuple[float, float, float, float], *, crs: object, resolution: float) -> Grid:
+    def from_bbox(cls, bounds: tuple[float, float, float, float], *, crs: object, resolution: float,
+                  anchor: tuple[float, float] | None = None) -> Grid:
         """Grid covering ``bounds`` (xmin, ymin, xmax, ymax), snapped outward to whole pixels.
 
-        The origin is snapped to a multiple of ``resolution`` so that grids of
-        neighbouring projects with the same pixel size share pixel edges.
+        The pixel edges pass through ``anchor`` (x, y), e.g. a corner of the raster the grid should
+        follow, so that raster's pixels are read without resampling; by default through multiples of
+        ``resolution``, so that grids of neighbouring projects with the same pixel size share pixel edges.
+
+        Examples
+        --------
+        >>> Grid.from_bbox((103, 207, 297, 390), crs="EPSG:32633", resolution=30, anchor=(15, 15)).bounds
+        (75.0, 195.0, 315.0, 405.0)
         """
         c = require_projected(crs)
         if resolution <= 0:
@@ -90,10 +97,14 @@ class Grid:
         xmin, ymin, xmax, ymax = bounds
         if not (xmax > xmin and ymax > ymin):
             raise AlignmentError(f"empty bounds {bounds}")
-        x0 = math.floor(xmin / resolution) * resolution
-        y1 = math.ceil(ymax / resolution) * resolution
-        x1 = math.ceil(xmax / resolution) * resolution
-        y0 = math.floor(ymin / resolution) * resolution
+        ax, ay = anchor if anchor is not None else (0.0, 0.0)
+
+        def steps(v: float, a: float, rounding) -> float:
+            # a few ULPs of slack so that an edge already on the lattice stays put
+            return a + rounding(round((v - a) / resolution, 9)) * resolution
+
+        x0, x1 = steps(xmin, ax, math.floor), steps(xmax, ax, math.ceil)
+        y0, y1 = steps(ymin, ay, math.floor), steps(ymax, ay, math.ceil)
         width = int(round((x1 - x0) / resolution))
         height = int(round((y1 - y0) / resolution))
         return cls(c.to_string(), Affine(resolution, 0.0, x0, 0.0, -resolution, y1), width, height)

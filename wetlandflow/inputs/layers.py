@@ -31,10 +31,10 @@ from .align import (
 )
 from .grid import Grid, attach, require_projected
 from .io import read_vector
-from .project import OPTICAL_BANDS, Project
+from .project import SAR_POLARISATIONS, Project, scene_files
+from .sensors import BAND_NAMES
 
 FEET_TO_M = 0.3048  # international foot, exact by definition
-SAR_POLARISATIONS = ("VV", "VH", "HH", "HV")
 _METRE_NAMES = {"m", "metre", "meter", "metres", "meters"}
 _FOOT_NAMES = {"ft", "foot", "feet", "us survey foot", "us_survey_foot", "ftus", "foot_us", "us-ft",
                "international foot"}
@@ -79,32 +79,71 @@ def read_aoi(project: Project):
     return aoi
 
 
+def grid_reference(project: Project) -> tuple[str, Path | None]:
+    """The input whose CRS, pixel size and pixel edges the default grid follows: ``(label, file)``.
+
+    ``grid.align_to`` names the kind (``optical``, ``sar``, ``dem``; ``none`` snaps the origin to whole
+    multiples of the pixel size instead); by default the first optical scene (by date), else the first SAR
+    scene, else the DEM.
+    """
+    choice = project.grid.align_to
+    candidates = {
+        "optical": [("optical", s) for s in sorted(project.optical, key=lambda s: s.date)],
+        "sar": [("sar", s) for s in sorted(project.sar, key=lambda s: s.date)],
+        "dem": [("dem", project.dem)] if project.dem is not None else [],
+    }
+    order = ["optical", "sar", "dem"] if choice in ("", "none") else [choice]
+    for kind in order:
+        if candidates[kind]:
+            _, item = candidates[kind][0]
+            path = scene_files(item)[0][0] if kind != "dem" else item.path
+            return f"{kind} {path.name}", path
+    if choice not in ("", "none"):
+        raise ProjectFileError(f"grid.align_to = {choice!r}, but the project has no {choice} input; name one it "
+                               "has (optical, sar, dem), or remove the key", key="grid.align_to",
+                               file=str(project.file))
+    raise ProjectFileError("the project has no raster input to take the grid from", key="grid")
+
+
 def project_grid(project: Project) -> Grid:
     """The reference grid: AOI bounds in the grid CRS, snapped outward to whole pixels.
 
-    Defaults: the CRS and pixel size of the first optical scene.
+    Defaults: the CRS and pixel size of the reference input (:func:`grid_reference`: the first optical
+    scene unless ``grid.align_to`` says otherwise).  When the grid has that input's CRS, its origin is
+    snapped to that input's pixel edges, so a grid of the same pixel size reads its pixels without any
+    resampling, and a grid of a whole multiple of its pixel size averages whole blocks of them.  With
+    ``grid.align_to = "none"`` (or another CRS) the origin is a whole multiple of the pixel size.
     """
-    first = inspect_raster(project.optical[0].path)
+    label, ref_path = grid_reference(project)
+    first = inspect_raster(ref_path)
     crs = project.grid.crs or first.crs
     require_projected(crs, what="grid")
     res = project.grid.pixel_size_m or first.resolution[0]
     if not project.grid.crs:
-        require_projected(first.crs, what=f"optical scene {project.optical[0].path.name}")
+        require_projected(first.crs, what=label)
     aoi = read_aoi(project).to_crs(crs)
-    return Grid.from_bbox(tuple(aoi.total_bounds), crs=crs, resolution=res)
+    anchor = None
+    if project.grid.align_to != "none" and require_projected(crs) == require_projected(first.crs):
+        anchor = (first.bounds[0], first.bounds[3])  # the reference's top-left pixel corner
+    return Grid.from_bbox(tuple(aoi.total_bounds), crs=crs, resolution=res, anchor=anchor)
 
 
 def _optical_scene(scene, grid: Grid, chunks: int) -> xr.DataArray:
     name = f"optical {scene.date.isoformat()}"
-    dn = read_aligned(scene.path, grid, kind="reflectance", name=name, band_names=scene.bands,
-                      nodata=scene.nodata, chunks=chunks)
+    parts = [read_aligned(path, grid, kind="reflectance", name=f"{name} {path.name}", band_names=bands,
+                          nodata=scene.nodata, chunks=chunks) for path, bands in scene_files(scene)]
+    dn = parts[0] if len(parts) == 1 else xr.concat(parts, dim="band", combine_attrs="drop_conflicts")
     refl = (dn + np.float32(scene.offset_dn)) * np.float32(scene.scale)
+    if scene.offset:
+        refl = refl + np.float32(scene.offset)
     if scene.mask is not None:
         qa = read_aligned(scene.mask, grid, kind="categorical", name=f"{name} mask", chunks=chunks).isel(band=0)
         refl = refl.where(qa.isin(list(scene.mask_valid)))
     refl = refl.astype(np.float32).expand_dims(time=[np.datetime64(scene.date, "ns")])
-    refl.attrs = {**dn.attrs, "units": "1", "long_name": "surface reflectance",
-                  "scaling": f"(DN + {scene.offset_dn:g}) * {scene.scale:g}",
+    refl.attrs = {**parts[0].attrs, "units": "1", "long_name": "surface reflectance",
+                  "scaling": f"(DN + {scene.offset_dn:g}) * {scene.scale:g} + {scene.offset:g}",
+                  "sensor": scene.sensor or "unnamed",
+                  "files": [p.name for p, _ in scene_files(scene)],
                   "mask": scene.mask.name if scene.mask else "none",
                   "mask_valid": list(scene.mask_valid)}
     return refl
@@ -138,23 +177,27 @@ def check_band_names(path: str | Path, bands: tuple[str, ...] | list[str], *, ke
         )
 
 
-def load_optical(project: Project, grid: Grid, *, chunks: int) -> xr.DataArray:
-    """All optical scenes as one (time, band, y, x) reflectance stack, sorted by date."""
+def load_optical(project: Project, grid: Grid, *, chunks: int) -> xr.DataArray | None:
+    """All optical scenes as one (time, band, y, x) reflectance stack, sorted by date (None without any)."""
+    if not project.optical:
+        return None
     bands = project.optical[0].bands
     scenes = []
     for i, s in sorted(enumerate(project.optical), key=lambda t: t[1].date):
         if set(s.bands) != set(bands):
             raise AlignmentError(
-                f"optical scene {s.path.name} (optical[{i}].bands) has bands {list(s.bands)}, the first "
+                f"optical scene {s.label} (optical[{i}].bands) has bands {list(s.bands)}, the first "
                 f"scene {list(bands)}; every scene must carry the same bands: fix the band lists in the "
-                "project file"
+                "project file (or leave out the bands only some scenes have)"
             )
-        check_band_names(s.path, s.bands, key=f"optical[{i}].bands", vocabulary=OPTICAL_BANDS,
-                         project_file=project.file)
+        for path, file_bands in scene_files(s):
+            check_band_names(path, file_bands, key=f"optical[{i}].bands", vocabulary=BAND_NAMES,
+                             project_file=project.file)
         scenes.append(_optical_scene(s, grid, chunks).sel(band=list(bands)))
     stack = xr.concat(scenes, dim="time", combine_attrs="drop_conflicts")
     stack.attrs = {"units": "1", "long_name": "surface reflectance", "kind": "reflectance",
-                   "resampling": scenes[0].attrs["resampling"]}
+                   "resampling": scenes[0].attrs["resampling"],
+                   "sensor": ", ".join(dict.fromkeys(s.sensor or "unnamed" for s in project.optical))}
     return attach(stack.rename("optical"), grid)
 
 
@@ -204,12 +247,20 @@ def load_sar(project: Project, grid: Grid, *, chunks: int) -> xr.DataArray | Non
     pols = project.sar[0].bands
     layers, orbits = [], []
     for i, s in sorted(enumerate(project.sar), key=lambda t: t[1].date):
-        check_band_names(s.path, s.bands, key=f"sar[{i}].bands", vocabulary=SAR_POLARISATIONS,
-                         project_file=project.file)
-        da = read_aligned(s.path, grid, kind="sar_power", name=f"sar {s.date.isoformat()}", band_names=s.bands,
-                          nodata=s.nodata, chunks=chunks).sel(band=list(pols))
-        check_sar_file_units(s.path, s.units, nodata=s.nodata, key=f"sar[{i}].units")
-        da = _to_linear_power(da, s.units).rename({"band": "pol"})
+        if set(s.bands) != set(pols):
+            raise AlignmentError(
+                f"SAR scene {s.label} (sar[{i}].bands) has polarisations {list(s.bands)}, the first scene "
+                f"{list(pols)}; every SAR date must carry the same polarisations: fix the band lists in the "
+                "project file, or leave out the polarisation only some dates have")
+        parts = []
+        for path, file_bands in scene_files(s):
+            check_band_names(path, file_bands, key=f"sar[{i}].bands", vocabulary=SAR_POLARISATIONS,
+                             project_file=project.file)
+            parts.append(read_aligned(path, grid, kind="sar_power", name=f"sar {s.date.isoformat()} {path.name}",
+                                      band_names=file_bands, nodata=s.nodata, chunks=chunks))
+            check_sar_file_units(path, s.units, nodata=s.nodata, key=f"sar[{i}].units")
+        da = parts[0] if len(parts) == 1 else xr.concat(parts, dim="band", combine_attrs="drop_conflicts")
+        da = _to_linear_power(da.sel(band=list(pols)), s.units).rename({"band": "pol"})
         layers.append(da.astype(np.float32).expand_dims(time=[np.datetime64(s.date, "ns")]))
         orbits.append(s.orbit)
     stack = xr.concat(layers, dim="time", combine_attrs="drop_conflicts").assign_coords(orbit=("time", orbits))
@@ -218,8 +269,10 @@ def load_sar(project: Project, grid: Grid, *, chunks: int) -> xr.DataArray | Non
     return attach(stack.rename("sar"), grid)
 
 
-def load_dem(project: Project, grid: Grid, *, chunks: int) -> xr.DataArray:
-    """The DEM on the grid in metres (reprojected before any derivative is taken)."""
+def load_dem(project: Project, grid: Grid, *, chunks: int) -> xr.DataArray | None:
+    """The DEM on the grid in metres (reprojected before any derivative is taken); None without a DEM."""
+    if project.dem is None:
+        return None
     da = read_aligned(project.dem.path, grid, kind="elevation", name="dem", nodata=project.dem.nodata,
                       chunks=chunks).isel(band=0, drop=True)
     if project.dem.units == "ft":
@@ -277,6 +330,8 @@ def check_dem(project: Project, grid: Grid, aoi, *, max_nodata_share: float = 0.
         Too much of the AOI has no elevation.
     """
     dem = project.dem
+    if dem is None:
+        return float("nan")
     found, where = _file_elevation_units(dem.path)
     if found is not None and found != dem.units:
         unit = "feet" if found == "ft" else "metres"
@@ -304,7 +359,7 @@ def check_dem(project: Project, grid: Grid, aoi, *, max_nodata_share: float = 0.
 
 def _clear_share(scene, coarse: Grid, inside: np.ndarray) -> float:
     """Share of the AOI where a scene has data in its first band and, with a mask, a valid mask code."""
-    ok = np.isfinite(values_on_coarse_grid(scene.path, coarse, nodata=scene.nodata))
+    ok = np.isfinite(values_on_coarse_grid(scene_files(scene)[0][0], coarse, nodata=scene.nodata))
     if scene.mask is not None:
         codes = values_on_coarse_grid(scene.mask, coarse, nodata=0)
         ok &= np.isin(codes, list(scene.mask_valid))
@@ -332,6 +387,8 @@ def check_observations(project: Project, grid: Grid, aoi, *, max_side: int = 256
     """
     from .seasons import season_mask
 
+    if not project.optical:
+        return {}
     coarse = grid.coarsen(max(1, math.ceil(max(grid.width, grid.height) / max_side)))
     inside = aoi_on_grid(aoi, coarse)
     if not inside.any():
@@ -340,21 +397,21 @@ def check_observations(project: Project, grid: Grid, aoi, *, max_side: int = 256
     for i, share in shares.items():
         if share == 0:
             s = project.optical[i]
-            warnings.warn(f"optical[{i}] {s.path.name}: no clear pixel inside the area of interest (fully "
+            warnings.warn(f"optical[{i}] {s.label}: no clear pixel inside the area of interest (fully "
                           f"clouded, or no data under mask codes {list(s.mask_valid)}); the scene adds "
                           "nothing to the composites", InputCoverageWarning, stacklevel=2)
     dates = np.array([np.datetime64(s.date, "D") for s in project.optical])
     for name, (start, end) in project.seasons.items():
         members = np.flatnonzero(season_mask(dates, start, end))
         if members.size and all(shares[i] == 0 for i in members):
-            files = [project.optical[i].path.name for i in members]
+            files = [project.optical[i].label for i in members]
             raise DataQualityError(
                 f"[seasons.{name}] season {name!r} ({start} to {end}) has no valid observation inside the "
                 f"area of interest: its scene(s) {files} are fully clouded or without data. Add a clear "
                 "scene in that window, widen the window in [seasons], or remove the season from the project "
                 "file"
             )
-    return {f"optical[{i}] {project.optical[i].path.name}": round(v, 4) for i, v in shares.items()}
+    return {f"optical[{i}] {project.optical[i].label}": round(v, 4) for i, v in shares.items()}
 
 
 def load_inputs(project: Project, grid: Grid | None = None, *, check: bool = True) -> FeatureInputs:
@@ -382,21 +439,30 @@ def load_inputs(project: Project, grid: Grid | None = None, *, check: bool = Tru
 
 
 def input_inventory(project: Project, grid: Grid | None = None) -> pd.DataFrame:
-    """One row per input raster: kind, date, bands, CRS, pixel size, share of the grid covered."""
+    """One row per input raster file: kind, date, bands, CRS, pixel size, share of the grid covered, and
+    how it reaches the grid (read as is when it shares the grid's pixels, else the resampling used)."""
+    from .align import _is_same_grid, _source_resolution_on_grid, choose_resampling
+
     grid = grid or project_grid(project)
     rows = []
 
-    def add(kind, date, path, bands, extra=""):
+    def add(kind, date, path, bands, extra="", layer_kind="reflectance"):
         info = inspect_raster(path)
         frac = check_overlap(info, grid, name=f"{kind} {path.name}")
+        same = _is_same_grid(str(path), grid)[0]
+        how = "on the grid's pixels" if same else \
+            f"resampled ({choose_resampling(layer_kind, _source_resolution_on_grid(info, grid), grid).name})"
         rows.append({"kind": kind, "date": date, "file": path.name, "bands": ",".join(bands) or str(info.count),
                      "crs": info.crs, "pixel_m": round(info.resolution[0], 3),
-                     "covers_grid": round(min(frac, 1.0), 3), "notes": extra})
+                     "covers_grid": round(min(frac, 1.0), 3), "to_grid": how, "notes": extra})
 
     for s in sorted(project.optical, key=lambda s: s.date):
-        add("optical", s.date.isoformat(), s.path, s.bands, f"scale {s.scale:g}, offset {s.offset_dn:g} DN")
+        for path, bands in scene_files(s):
+            add("optical", s.date.isoformat(), path, bands, f"{s.sensor or 'no sensor named'}; scale {s.scale:g}, "
+                f"offset {s.offset_dn:g} DN, {s.offset:+g}")
     for s in sorted(project.sar, key=lambda s: s.date):
-        add("sar", s.date.isoformat(), s.path, s.bands, f"{s.units}, {s.orbit}")
-    add("dem", "", project.dem.path, (), f"units {project.dem.units}")
+        for path, bands in scene_files(s):
+            add("sar", s.date.isoformat(), path, bands, f"{s.units}, {s.orbit}", layer_kind="sar_power")
+    if project.dem is not None:
+        add("dem", "", project.dem.path, (), f"units {project.dem.units}", layer_kind="elevation")
     return pd.DataFrame(rows)
-

@@ -167,7 +167,9 @@ def estimate_memory_bytes(project: Any, grid: Grid) -> dict[str, int]:
     """
     px = grid.width * grid.height
     k = len(project.classes.names)
-    uses_terrain = any(s == "terrain" or s in GLOBAL_TERRAIN_FEATURES for s in project.features.select)
+    select = project.features.select or ("default",)
+    uses_terrain = project.dem is not None and any(
+        s in ("default", "terrain") or s in GLOBAL_TERRAIN_FEATURES for s in select)
     return {
         "terrain": TERRAIN_FIXED_BYTES + px * TERRAIN_BYTES_PER_PIXEL if uses_terrain else 0,
         "inventory": px * (1 + INVENTORY_BYTES_PER_PIXEL_PER_CLASS * k),

@@ -29,6 +29,11 @@ else:  # pragma: no cover
 from ..errors import ProjectFileError
 
 OPTICAL_BANDS = ("blue", "green", "red", "re1", "re2", "re3", "nir", "nir_narrow", "swir1", "swir2")
+SAR_POLARISATIONS = ("VV", "VH", "HH", "HV")
+# Without a [seasons] table a project has one season spanning the whole year: every date falls in it.
+DEFAULT_SEASONS: dict[str, tuple[str, str]] = {"all": ("01-01", "12-31")}
+PLAUSIBILITY = ("raise", "warn")
+ALIGN_TO = ("", "optical", "sar", "dem", "none")
 SAR_UNITS = ("linear", "amplitude", "db")
 ORBITS = ("ascending", "descending")
 MODEL_KINDS = ("xgboost", "random_forest")
@@ -53,6 +58,7 @@ class AreaSection:
 class GridSection:
     crs: str = ""
     pixel_size_m: float = 0.0
+    align_to: str = ""  # "" first optical scene (else SAR, else DEM); "optical", "sar", "dem"; "none"
 
 
 @dataclass(frozen=True)
@@ -70,24 +76,56 @@ class PlotsSection:
 
 @dataclass(frozen=True)
 class OpticalScene:
+    """One optical acquisition: one multi-band file (``path``) or one file per band (``files``)."""
+
     date: dt.date
-    path: Path
+    path: Path | None = None
+    files: dict[str, Path] = field(default_factory=dict)  # band name -> single-band file
     bands: tuple[str, ...] = OPTICAL_BANDS
+    sensor: str = ""  # a shipped or [sensors.<name>] description: defaults of the keys below
     scale: float = 0.0001
     offset_dn: float = 0.0
+    offset: float = 0.0  # added after scaling: reflectance = (DN + offset_dn) * scale + offset
     nodata: float = 0.0
     mask: Path | None = None
     mask_valid: tuple[int, ...] = (4, 5, 6, 7)
+    plausibility: str = "raise"  # "raise": refuse implausible reflectance; "warn": warn and go on
+
+    @property
+    def label(self) -> str:
+        """A short name for messages: the file, or the first per-band file with its band count."""
+        return scene_label(self)
 
 
 @dataclass(frozen=True)
 class SarScene:
+    """One SAR acquisition: one file with every polarisation (``path``) or one per polarisation (``files``)."""
+
     date: dt.date
-    path: Path
+    path: Path | None = None
+    files: dict[str, Path] = field(default_factory=dict)  # polarisation -> single-band file
     bands: tuple[str, ...] = ("VV", "VH")
     units: str = "linear"
     orbit: str = "ascending"
     nodata: float = -9999.0
+
+    @property
+    def label(self) -> str:
+        return scene_label(self)
+
+
+def scene_label(scene: OpticalScene | SarScene) -> str:
+    if scene.path is not None:
+        return scene.path.name
+    first = next(iter(scene.files.values()))
+    return f"{first.name} (+{len(scene.files) - 1} per-band files)" if len(scene.files) > 1 else first.name
+
+
+def scene_files(scene: OpticalScene | SarScene) -> list[tuple[Path, tuple[str, ...]]]:
+    """The files of a scene with the bands each holds, in the scene's band order."""
+    if scene.path is not None:
+        return [(scene.path, tuple(scene.bands))]
+    return [(scene.files[b], (b,)) for b in scene.bands]
 
 
 @dataclass(frozen=True)
@@ -99,8 +137,9 @@ class DemSection:
 
 @dataclass(frozen=True)
 class FeaturesSection:
-    select: tuple[str, ...] = ("optical", "sar", "terrain")
+    select: tuple[str, ...] = ()  # () = every built-in feature the inputs can compute
     params: dict[str, dict[str, Any]] = field(default_factory=dict)
+    plugins: tuple[Path, ...] = ()  # Python files whose @wetlandflow.feature functions are registered
 
 
 @dataclass(frozen=True)
@@ -160,10 +199,11 @@ class Project:
     area: AreaSection
     classes: ClassesSection
     plots: PlotsSection
-    optical: tuple[OpticalScene, ...]
-    sar: tuple[SarScene, ...]
-    dem: DemSection
-    seasons: dict[str, tuple[str, str]]
+    optical: tuple[OpticalScene, ...] = ()
+    sar: tuple[SarScene, ...] = ()
+    dem: DemSection | None = None
+    seasons: dict[str, tuple[str, str]] = field(default_factory=dict)  # {} -> DEFAULT_SEASONS
+    sensors: dict[str, dict[str, Any]] = field(default_factory=dict)  # inline sensor descriptions
     grid: GridSection = GridSection()
     features: FeaturesSection = FeaturesSection()
     model: ModelSection = ModelSection()
@@ -386,23 +426,50 @@ def check_model_section(p: Project) -> None:
                 "remove the group", key=f"classes.parents.{parent}")
 
 
+def _check_scene_files(s: OpticalScene | SarScene, key: str) -> None:
+    """One layout per scene, every file present, the band list matching the per-band files."""
+    if (s.path is None) == (not s.files):
+        raise ProjectFileError("give either path (one multi-band file) or files (one file per band), not both",
+                               key=key)
+    if len(set(s.bands)) != len(s.bands):
+        raise ProjectFileError(f"duplicate band names in {list(s.bands)}; give each band of the file its own "
+                               "name, in the file's band order", key=f"{key}.bands")
+    if s.path is not None:
+        _require_file(s.path, f"{key}.path")
+        return
+    missing = [b for b in s.bands if b not in s.files]
+    if missing:
+        raise ProjectFileError(f"bands {missing} have no file in files (bands with a file: {list(s.files)}); "
+                               "add their files or remove them from bands", key=f"{key}.bands")
+    for band, path in s.files.items():
+        _require_file(path, f"{key}.files.{band}")
+
+
 def _validate(p: Project) -> None:
     _require_file(p.area.aoi, "area.aoi")
     _require_file(p.plots.path, "plots.path")
-    _require_file(p.dem.path, "dem.path")
-    _check_choice(p.dem.units, ("m", "ft"), "dem.units")
-    if not p.optical:
-        raise ProjectFileError("at least one [[optical]] scene is required", key="optical")
+    if p.dem is not None:
+        _require_file(p.dem.path, "dem.path")
+        _check_choice(p.dem.units, ("m", "ft"), "dem.units")
+    if not p.optical and not p.sar:
+        raise ProjectFileError(
+            "the project has no image: add at least one [[optical]] or [[sar]] table, e.g. [[optical]] with "
+            "date = 2024-05-14 and path = \"optical/scene.tif\" (docs/project-file.md, 'Your own data')",
+            key="optical")
+    _check_choice(p.grid.align_to, ALIGN_TO, "grid.align_to")
+    for kind, scenes in (("optical", p.optical), ("sar", p.sar)):
+        for i, s in enumerate(scenes):
+            _check_scene_files(s, f"{kind}[{i}]")
     for i, s in enumerate(p.optical):
-        _require_file(s.path, f"optical[{i}].path")
         _require_file(s.mask, f"optical[{i}].mask")
-        if len(set(s.bands)) != len(s.bands):
-            raise ProjectFileError(f"duplicate band names in {list(s.bands)}; give each band of the file its own "
-                                   "name, in the file's band order", key=f"optical[{i}].bands")
         if s.scale <= 0:
             raise ProjectFileError(f"scale must be > 0, got {s.scale}", key=f"optical[{i}].scale")
+        _check_choice(s.plausibility, PLAUSIBILITY, f"optical[{i}].plausibility")
     for i, s in enumerate(p.sar):
-        _require_file(s.path, f"sar[{i}].path")
+        bad = [b for b in s.bands if b not in SAR_POLARISATIONS]
+        if bad:
+            raise ProjectFileError(f"unknown polarisation(s) {bad}; use {', '.join(SAR_POLARISATIONS)}",
+                                   key=f"sar[{i}].bands")
         _check_choice(s.units, SAR_UNITS, f"sar[{i}].units")
         _check_choice(s.orbit, ORBITS, f"sar[{i}].orbit")
         if len(set(s.bands)) != len(s.bands):
@@ -455,8 +522,14 @@ def parse_project(data: dict[str, Any], *, file: Path) -> Project:
             file=str(file),
         )
     try:
-        data = {"sar": [], **data}
+        from .scenes import expand_scene_tables, inline_sensors
+
+        sensors = inline_sensors(data.get("sensors"))
+        data = {**data, "optical": expand_scene_tables(data.get("optical", []), "optical", file.parent, sensors),
+                "sar": expand_scene_tables(data.get("sar", []), "sar", file.parent, sensors)}
         project = _build(Project, data, "", file.parent, fixed={"file": file})
+        if not project.seasons:
+            project = dataclasses.replace(project, seasons=dict(DEFAULT_SEASONS))
     except ProjectFileError as exc:
         raise ProjectFileError(exc.detail, key=exc.key, file=str(file)) from None
     try:

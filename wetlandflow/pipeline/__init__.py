@@ -12,6 +12,7 @@ from .._lazy import exports
 __all__, __getattr__, __dir__ = exports(__name__, {
     "run": ["RunResult", "run_project", "make_model", "make_splitter", "training_weights",
             "cross_validate", "feature_names", "format_summary"],
+    "check": ["CheckReport", "check_project"],
     "steps": ["applicability_model", "write_inventory_outputs", "write_explanations", "top_drivers"],
     "lock": ["run_folder_lock", "read_lock", "LockHolder", "LOCK_NAME"],
     "manifest": ["Manifest", "step_key"],

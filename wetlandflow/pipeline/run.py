@@ -10,6 +10,7 @@ when its outputs check out (:mod:`.checks`).  The run holds the folder's lock
 from __future__ import annotations
 
 import datetime as dt
+import json
 import sys
 from collections.abc import Callable
 from contextlib import contextmanager
@@ -32,9 +33,9 @@ from ..inputs.io import (
     write_json,
     write_table,
 )
-from ..inputs.layers import load_inputs, project_grid, read_aoi
+from ..inputs.layers import grid_reference, input_inventory, load_inputs, project_grid, read_aoi
 from ..inputs.preflight import preflight
-from ..inputs.project import Project, check_model_section, load_project, portable_dict
+from ..inputs.project import Project, check_model_section, load_project, portable_dict, scene_files
 from ..mapping.predict import AOA_LAYERS, LAYERS, class_areas, code_counts, predict_map
 from ..models.bundle import load_bundle, save_bundle
 from ..models.classifier import ClassScheme, WetlandClassifier, data_hash, scheme_proba
@@ -77,13 +78,17 @@ class RunResult:
 
 
 def _record_inputs(manifest: Manifest, project: Project) -> None:
-    files = {"aoi": project.area.aoi, "plots": project.plots.path, "dem": project.dem.path}
-    for s in project.optical:
-        files[f"optical {s.date}"] = s.path
-        if s.mask is not None:
-            files[f"optical mask {s.date}"] = s.mask
-    for s in project.sar:
-        files[f"sar {s.date}"] = s.path
+    files = {"aoi": project.area.aoi, "plots": project.plots.path}
+    if project.dem is not None:
+        files["dem"] = project.dem.path
+    for kind, scenes in (("optical", project.optical), ("sar", project.sar)):
+        for s in scenes:  # one file per band or polarisation: the first under the date, the others by band
+            for j, (path, bands) in enumerate(scene_files(s)):
+                files[f"{kind} {s.date}" + (f" {bands[0]}" if j else "")] = path
+            if getattr(s, "mask", None) is not None:
+                files[f"optical mask {s.date}"] = s.mask
+    for path in project.features.plugins:  # a changed plugin recomputes the features
+        files[f"plugin {path.name}"] = path
     manifest.data["inputs"] = {k: {"file": str(Path(p).relative_to(project.root)) if Path(p).is_relative_to(
         project.root) else str(p), "sha256": sha256_file(p)} for k, p in files.items()}
 
@@ -317,8 +322,11 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
         grid = project_grid(project)
         inputs = load_inputs(project, grid)
         rec["grid"] = grid.to_dict()
-        rec["layers"] = {"optical": inputs.optical.attrs, "dem": inputs.dem.attrs,
-                         "sar": inputs.sar.attrs if inputs.sar is not None else None}
+        rec["grid_follows"] = grid_reference(project)[0]
+        rec["to_grid"] = {f"{r.kind} {r.date} {r.file}".replace("  ", " "): r.to_grid
+                          for r in input_inventory(project, grid).itertuples()}
+        rec["layers"] = {k: getattr(inputs, k).attrs if getattr(inputs, k) is not None else None
+                         for k in ("optical", "dem", "sar")}
         rec["checks"] = plausibility_checks(project, inputs)
     hashes = {k: v["sha256"] for k, v in manifest.data["inputs"].items()}
 
@@ -330,7 +338,9 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
         manifest.data["preflight"] = preflight(project, grid, n_features=len(cube.data_vars), cube_written=True)
     else:
         with manifest.step("features", k_feat, outputs=[zarr_path]) as rec:
-            cube = build_cube(inputs, project.features.select, project.features.params)
+            cube = build_cube(inputs, project.features.select, project.features.params,
+                              plugins=project.features.plugins)
+            rec["skipped"] = json.loads(cube.attrs.get("skipped", "{}"))
             # the lazy cube tells the number of layers: refuse now, not half-way, if disk or memory is short
             manifest.data["preflight"] = preflight(project, grid, n_features=len(cube.data_vars))
             cube = save_cube(cube, zarr_path, chunk=project.output.chunk_size)
@@ -352,8 +362,6 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     vdir = run_dir / "validation"
     if manifest.reusable("validation", k_val, [vdir], uses=[samples_path],
                           verify=lambda: missing_files(vdir, ("metrics.json", "oof_predictions.parquet"))):
-        import json
-
         metrics = json.loads((vdir / "metrics.json").read_text())
         folds = pd.read_parquet(vdir / "oof_predictions.parquet", columns=["fold"])["fold"].to_numpy()
     else:
@@ -589,20 +597,10 @@ def _metrics_dict(measures: dict[str, Any]) -> dict[str, Any]:
 
 
 def plausibility_checks(project: Project, inputs) -> dict[str, Any]:
-    """Reflectance offset/scale and SAR unit checks on a sample of each layer; raise on a likely mislabel."""
-    from ..features.optical import check_reflectance
-    from ..inputs.sar_units import check_sar_units
+    """Reflectance (per sensor) and SAR unit checks on a sample of each layer; raise on a likely mislabel."""
+    from ..features.plausibility import plausibility_checks as checks
 
-    out: dict[str, Any] = {}
-    step = max(1, inputs.grid.height // 256)
-    for scene, t in zip(sorted(project.optical, key=lambda s: s.date), inputs.optical["time"].values, strict=True):
-        sub = inputs.optical.sel(time=t).isel(y=slice(None, None, step), x=slice(None, None, step)).compute()
-        out[f"optical {scene.date}"] = check_reflectance(sub, name=scene.path.name)
-    if inputs.sar is not None:
-        for scene, t in zip(sorted(project.sar, key=lambda s: s.date), inputs.sar["time"].values, strict=True):
-            sub = inputs.sar.sel(time=t).isel(y=slice(None, None, step), x=slice(None, None, step)).compute()
-            out[f"sar {scene.date}"] = check_sar_units(sub, "linear", name=scene.path.name)
-    return out
+    return checks(project, inputs)
 
 
 def format_summary(result: RunResult) -> str:
@@ -620,6 +618,17 @@ def format_summary(result: RunResult) -> str:
     if share is not None:
         lines += ["", f"Outside the area of applicability (Meyer & Pebesma 2021): {100 * share:.1f} % of the "
                       "mapped pixels; predictions there extrapolate beyond the training data."]
+    inputs_rec = steps.get("inputs", {})
+    if inputs_rec.get("grid_follows"):
+        moved = [k for k, v in inputs_rec.get("to_grid", {}).items() if v.startswith("resampled")]
+        lines += ["", f"Grid: follows {inputs_rec['grid_follows']}; "
+                      + (f"{len(moved)} input file(s) resampled onto it ({', '.join(moved[:3])}"
+                         f"{', ...' if len(moved) > 3 else ''}; see manifest.json steps.inputs.to_grid)"
+                         if moved else "every input file lies on its pixels (no resampling)")]
+    skipped = steps.get("features", {}).get("skipped")
+    if skipped:
+        lines += ["", "Features skipped (the inputs cannot compute them):"]
+        lines += [f"  {name}: {why}" for name, why in skipped.items()]
     inv = steps.get("inventory", {})
     if inv:
         lines += [f"Inventory: {inv['n_polygons']:,} polygons after a minimum mapping unit of "

@@ -15,20 +15,9 @@ from ..errors import WetlandflowError
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
-    from ..inputs.layers import input_inventory, project_grid
-    from ..inputs.project import load_project
+    from ..pipeline.check import check_project
 
-    project = load_project(args.project)
-    grid = project_grid(project)
-    inv = input_inventory(project, grid)
-    x0, y0, x1, y1 = grid.bounds
-    print(f"project: {project.project.name} ({project.file.name}) - valid")
-    print(f"grid: {grid.crs}, {grid.resolution:g} m pixels, {grid.height} x {grid.width} "
-          f"({grid.height * grid.width * grid.pixel_area_m2 / 1e6:,.1f} km2), bounds {x0:.0f} {y0:.0f} {x1:.0f} {y1:.0f}")
-    print(f"classes: {', '.join(project.classes.names)}")
-    print(f"seasons: {', '.join(f'{k} {a}..{b}' for k, (a, b) in project.seasons.items())}")
-    with _pandas_wide():
-        print(inv.to_string(index=False))
+    print(check_project(args.project).text())
     return 0
 
 
@@ -192,7 +181,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--debug", action="store_true", help="show the full traceback on errors")
     sub = p.add_subparsers(dest="command", required=True)
 
-    c = sub.add_parser("check", help="validate a project file and list its inputs, without running")
+    c = sub.add_parser("check", help="refuse what a run would refuse before its features step, and list the "
+                                     "inputs, features and plots, without computing features")
     c.add_argument("project", help="project file (TOML)")
     c.set_defaults(func=_cmd_check)
 

@@ -167,7 +167,10 @@ class FeaturePicker(w.VBox):
         out: list[str] = []
         for domain, rows in self.table.groupby("domain", sort=False):
             names = [n for n in rows["name"] if self.checkboxes[n].value]
-            out += [str(domain)] if len(names) == len(rows) else names
+            # a domain stands for its default features (band_medians, say, is named on its own)
+            defaults = [n for n, d in zip(rows["name"], rows["default"], strict=True) if d]
+            whole = bool(defaults) and set(defaults) <= set(names)
+            out += [str(domain), *[n for n in names if n not in defaults]] if whole else names
         return tuple(out)
 
     @property
