@@ -11,7 +11,7 @@ from .._lazy import exports
 __all__, __getattr__, __dir__ = exports(__name__, {
     "estimators": ["Estimate", "AreaAccuracyResult", "error_matrix", "accuracy_measures", "disagreement",
                    "collapse_matrix", "stratified_estimates", "simple_random_estimates", "plot_error_matrix",
-                   "plot_areas", "write_area_table"],
+                   "plot_areas", "write_area_table", "proportion_interval"],
     "sampling": ["sample_size_overall", "allocate", "mapped_proportions", "draw_stratified_sample",
                  "write_sample", "read_labelled_sample", "estimates_from_sample"],
     "assessment": ["final_class_map", "class_codes", "design_sample", "assess", "label_from_reference",

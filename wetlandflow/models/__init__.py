@@ -13,7 +13,7 @@ from .._lazy import exports
 __all__, __getattr__, __dir__ = exports(__name__, {
     "classifier": ["ClassScheme", "WetlandClassifier", "canonical_order", "check_no_sentinels", "data_hash",
                    "openmp_threads", "FeatureAlignmentWarning", "FeatureCheck", "check_features",
-                   "align_features"],
+                   "align_features", "scheme_proba", "NotFittedModelError"],
     "hierarchy": ["HierarchicalClassifier"],
     "bundle": ["save_bundle", "load_bundle"],
     "calibration": ["reliability_table", "brier_score", "expected_calibration_error", "plot_reliability",

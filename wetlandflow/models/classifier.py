@@ -334,7 +334,7 @@ def _positions(order: np.ndarray, labels: np.ndarray) -> np.ndarray:
 
 
 def _check_matrix(X: Any, owner: str) -> np.ndarray:
-    """A 2-D float32 matrix (NaN allowed; inf, complex, sparse, empty refused), checked as scikit-learn does."""
+    """A 2-D float32 matrix, checked like scikit-learn (NaN allowed; inf, complex, sparse, empty refused)."""
     from sklearn.utils.validation import check_array
 
     try:
