@@ -14,6 +14,7 @@ import dataclasses
 import datetime as dt
 import hashlib
 import json
+import math
 import sys
 import types
 import typing
@@ -34,6 +35,7 @@ SAR_POLARISATIONS = ("VV", "VH", "HH", "HV")
 DEFAULT_SEASONS: dict[str, tuple[str, str]] = {"all": ("01-01", "12-31")}
 PLAUSIBILITY = ("raise", "warn")
 ALIGN_TO = ("", "optical", "sar", "dem", "none")
+PRIOR_ADJUSTMENTS = ("none", "em", "given")
 SAR_UNITS = ("linear", "amplitude", "db")
 ORBITS = ("ascending", "descending")
 MODEL_KINDS = ("xgboost", "random_forest")
@@ -185,6 +187,13 @@ class OutputSection:
 
 
 @dataclass(frozen=True)
+class PriorsSection:
+    adjust: str = "none"  # "em": estimate the area's class priors (Saerens et al. 2002); "given": use shares
+    shares: dict[str, float] = field(default_factory=dict)  # adjust = "given": class -> share of the area
+    sample_pixels: int = 20000  # adjust = "em": pixels drawn at random from the AOI for the estimate
+
+
+@dataclass(frozen=True)
 class ComputeSection:
     scheduler: str = ""  # "" threads in this process; "local" a LocalCluster; else a scheduler address
     n_workers: int = 2
@@ -210,6 +219,7 @@ class Project:
     validation: ValidationSection = ValidationSection()
     samples: SamplesSection = SamplesSection()
     output: OutputSection = OutputSection()
+    priors: PriorsSection = PriorsSection()
     compute: ComputeSection = ComputeSection()
 
     @property
@@ -445,6 +455,23 @@ def _check_scene_files(s: OpticalScene | SarScene, key: str) -> None:
         _require_file(path, f"{key}.files.{band}")
 
 
+def given_shares(shares: dict[str, float], classes: tuple[str, ...]) -> list[float]:
+    """``[priors] shares`` in scheme order, normalised to sum 1; refused naming the key when incomplete."""
+    unknown = sorted(set(shares) - set(classes))
+    if unknown:
+        raise ProjectFileError(f"names {unknown}, not in classes.names {list(classes)}; use the scheme's "
+                               "class names", key="priors.shares")
+    missing = [c for c in classes if c not in shares]
+    if missing:
+        raise ProjectFileError(f"lacks {missing}: give a share for every class (0 for a class absent from the "
+                               "area)", key="priors.shares")
+    values = [float(shares[c]) for c in classes]
+    if any(not math.isfinite(v) or v < 0 for v in values) or sum(values) <= 0:
+        raise ProjectFileError(f"shares must be non-negative numbers with a positive sum, got {dict(shares)}",
+                               key="priors.shares")
+    return [v / sum(values) for v in values]
+
+
 def _validate(p: Project) -> None:
     _require_file(p.area.aoi, "area.aoi")
     _require_file(p.plots.path, "plots.path")
@@ -493,6 +520,19 @@ def _validate(p: Project) -> None:
             "use design = 'blocks', or set allow_random_pixels = true to run it for comparison only",
             key="validation.design",
         )
+    _check_choice(p.priors.adjust, PRIOR_ADJUSTMENTS, "priors.adjust")
+    if p.priors.sample_pixels < 1000:
+        raise ProjectFileError(f"sample_pixels must be >= 1000 (the estimate's sampling error grows as the "
+                               f"sample shrinks), got {p.priors.sample_pixels}", key="priors.sample_pixels")
+    if p.priors.adjust == "given":
+        if not p.priors.shares:
+            raise ProjectFileError("adjust = \"given\" needs the area's class shares: add a [priors.shares] "
+                                   "table with one share per class (e.g. from a previous inventory), or set "
+                                   "adjust = \"em\" to estimate them", key="priors.shares")
+        given_shares(p.priors.shares, p.classes.names)
+    elif p.priors.shares:
+        raise ProjectFileError(f"shares are used only with adjust = \"given\" (adjust is {p.priors.adjust!r}); "
+                               "set adjust = \"given\" or remove [priors.shares]", key="priors.shares")
     if p.output.chunk_size < 64:
         raise ProjectFileError(f"chunk_size must be >= 64, got {p.output.chunk_size}", key="output.chunk_size")
     if p.output.mmu_pixels < 1:

@@ -214,6 +214,10 @@ def _model_signature(model) -> str:
     """
     import hashlib
 
+    if hasattr(model, "base") and hasattr(model, "train_priors"):  # a PriorAdjustedClassifier
+        parts = [_model_signature(model.base), np.asarray(model.train_priors, np.float64).round(12).tolist(),
+                 np.asarray(model.priors, np.float64).round(12).tolist()]
+        return hashlib.sha256(json.dumps(parts).encode()).hexdigest()[:16]
     if hasattr(model, "top_model_") and hasattr(model, "child_models_"):  # a fitted HierarchicalClassifier
         levels = {"top": _model_signature(model.top_model_)}
         # a parent with one child in training has no model: its priors (recorded below) are its output

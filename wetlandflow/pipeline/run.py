@@ -389,7 +389,8 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
             rec["hyperparameters"] = model_hyperparameters(model)
 
     applicability = project.output.applicability
-    k_map = step_key(k_model, k_val if applicability else None, applicability, cfg["output"]["chunk_size"])
+    k_map = step_key(k_model, k_val if applicability else None, applicability, cfg["output"]["chunk_size"],
+                     *((cfg["priors"], seed) if project.priors.adjust != "none" else ()))
     layers = LAYERS + (AOA_LAYERS if applicability else ())
     map_paths = {n: run_dir / "maps" / f"{n}.tif" for n in layers}
     map_uses = [model_dir, zarr_path] + ([vdir] if applicability else [])
@@ -402,7 +403,11 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
             if applicability:
                 aoa_model = applicability_model(model, samples, features, folds)
                 rec["applicability_threshold"] = round(aoa_model.threshold, 6)
-            map_paths = predict_map(model, cube, features, grid, run_dir / "maps", valid=inputs.aoi,
+            map_model = model
+            if project.priors.adjust != "none":
+                map_model, rec["priors"] = prior_adjusted_model(project, model, samples, features, cube,
+                                                                inputs.aoi, run_dir / "maps")
+            map_paths = predict_map(map_model, cube, features, grid, run_dir / "maps", valid=inputs.aoi,
                                     class_names=project.classes.names, window_size=project.output.chunk_size,
                                     aoa_model=aoa_model, memory_budget_gb=project.output.memory_budget_gb,
                                     progress=progress, check=check)
@@ -456,6 +461,38 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     manifest.data["finished"] = dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")
     manifest.save()
     return RunResult(run_dir, manifest.data, areas, metrics, balance)
+
+
+def prior_adjusted_model(project: Project, model, samples: pd.DataFrame, features: list[str], cube, valid,
+                         out_dir: Path) -> tuple[Any, dict[str, Any]]:
+    """The model predicting under the area's class priors (``[priors]``), and the record of them.
+
+    The priors the model was fitted under are the weighted class shares of its training samples (balanced
+    when ``model.class_weighting``); the area's priors are estimated by EM on a random pixel sample of the
+    AOI (Saerens, Latinne & Decaestecker 2002) or taken from ``priors.shares``.  Writes ``priors.csv``
+    (class, training prior, area prior) into ``out_dir``.
+    """
+    from ..mapping.prior_shift import adjusted_model, area_priors, given_priors
+    from ..models.priors import SOURCE, training_priors
+
+    names = project.classes.names
+    w = training_weights(project, samples)
+    y = samples["class"].to_numpy()
+    fitted = (training_priors(y, names, w) if w is not None
+              else training_priors(y, names, balanced=project.model.class_weighting))
+    if project.priors.adjust == "em":
+        est = area_priors(model, cube, features, valid, fitted, n_pixels=project.priors.sample_pixels,
+                          seed=project.project.seed, classes=names)
+        priors, record = est.estimated, est.to_dict()
+    else:
+        priors = given_priors(project.priors.shares, names)
+        record = {"method": "given (priors.shares)", "source": SOURCE,
+                  "priors": {c: {"training": round(float(t), 6), "estimated": round(float(e), 6)}
+                             for c, t, e in zip(names, fitted, priors, strict=True)}}
+    out_dir.mkdir(parents=True, exist_ok=True)
+    write_table(pd.DataFrame({"class": list(names), "training_prior": fitted, "area_prior": priors}),
+                out_dir / "priors.csv")
+    return adjusted_model(model, fitted, priors), record
 
 
 def _samples_step(project: Project, grid, cube, rec: dict[str, Any]) -> pd.DataFrame:
@@ -618,6 +655,11 @@ def format_summary(result: RunResult) -> str:
     if share is not None:
         lines += ["", f"Outside the area of applicability (Meyer & Pebesma 2021): {100 * share:.1f} % of the "
                       "mapped pixels; predictions there extrapolate beyond the training data."]
+    priors = steps.get("mapping", {}).get("priors")
+    if priors:
+        lines += ["", f"Probabilities adjusted to the area's class priors ({priors['method']}); training -> area:"]
+        lines += [f"  {c:<12s} {100 * v['training']:5.1f} % -> {100 * v['estimated']:5.1f} %"
+                  for c, v in priors["priors"].items()]
     inputs_rec = steps.get("inputs", {})
     if inputs_rec.get("grid_follows"):
         moved = [k for k, v in inputs_rec.get("to_grid", {}).items() if v.startswith("resampled")]

@@ -15,5 +15,6 @@ __all__, __getattr__, __dir__ = exports(__name__, {
              "knndm_folds", "KNNDM", "cv_distance_diagnostics", "plot_distance_ecdf", "plot_folds"],
     "variogram": ["BlockSizeSuggestion", "suggest_block_size"],
     "nested": ["subset_splitter", "NestedCVResult", "spatial_grid_search", "spatial_early_stopping"],
-    "honesty": ["random_pixel_cv_predictions", "map_accuracy_against_truth", "cv_honesty"],
+    "honesty": ["random_pixel_cv_predictions", "map_accuracy_against_truth", "map_error_matrix_against_truth",
+                "cv_honesty"],
 })

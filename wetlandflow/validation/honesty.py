@@ -37,7 +37,8 @@ from ..errors import GridMismatchError, ParameterError
 from ..inputs.grid import Grid
 from .splitters import random_pixel_kfold
 
-__all__ = ["cv_honesty", "map_accuracy_against_truth", "random_pixel_cv_predictions"]
+__all__ = ["cv_honesty", "map_accuracy_against_truth", "map_error_matrix_against_truth",
+           "random_pixel_cv_predictions"]
 
 
 def random_pixel_cv_predictions(
@@ -152,6 +153,31 @@ def map_accuracy_against_truth(
         raise GridMismatchError("the class map and the truth raster have no valid pixel in common; "
                                 "check that they cover the same area.")
     return {"overall_accuracy": float((m[both] == t_codes[both]).mean()), "n_pixels": int(both.sum())}
+
+
+def map_error_matrix_against_truth(
+    class_map: Any, truth: Any, *, map_classes: ArrayLike, truth_classes: ArrayLike | None = None
+) -> pd.DataFrame:
+    """The census error matrix of a class map against a wall-to-wall truth raster (pixel counts).
+
+    Rows are map classes, columns truth classes (the layout of
+    :func:`wetlandflow.accuracy.estimators.error_matrix`); every pixel both rasters cover counts once,
+    so :func:`~wetlandflow.accuracy.estimators.accuracy_measures` on it gives the map's census overall,
+    user's and producer's accuracies (their intervals are meaningless: nothing is sampled).
+    """
+    m, mgrid = _read_codes(class_map)
+    t, tgrid = _read_codes(truth)
+    names = [str(c) for c in np.asarray(map_classes)]
+    t_names = names if truth_classes is None else [str(c) for c in np.asarray(truth_classes)]
+    t_codes = _recode(_truth_on_map_grid(t, tgrid, mgrid), t_names, names)
+    both = (m > 0) & (t_codes > 0)
+    if not both.any():
+        raise GridMismatchError("the class map and the truth raster have no valid pixel in common; "
+                                "check that they cover the same area.")
+    k = len(names)
+    counts = np.bincount((m[both].astype(np.int64) - 1) * k + (t_codes[both] - 1), minlength=k * k)
+    return pd.DataFrame(counts.reshape(k, k), index=pd.Index(names, name="map"),
+                        columns=pd.Index(names, name="reference"))
 
 
 def _run_model(run: Path) -> tuple[Any, list[str], list[str]]:
