@@ -65,7 +65,8 @@ class InputCoverageWarning(UserWarning):
 
 
 def read_aoi(project: Project):
-    aoi = read_vector(project.area.aoi, layer=project.area.layer or None, what="AOI polygon file")
+    aoi = read_vector(project.area.aoi, layer=project.area.layer or None, what="AOI polygon file",
+                      key="area.layer")
     aoi = aoi[~aoi.geometry.is_empty & aoi.geometry.notna()]
     if aoi.empty:
         raise InputFileError("the AOI file holds no polygon; draw the project area and save it", path=str(project.area.aoi))

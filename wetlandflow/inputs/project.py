@@ -72,6 +72,7 @@ class PlotsSection:
     path: Path
     class_field: str = "class"
     id_field: str = ""
+    layer: str = ""  # the layer to read from a file with several (a GeoPackage); "" = the file's only layer
 
 
 @dataclass(frozen=True)
@@ -485,29 +486,68 @@ def _validate(p: Project) -> None:
         raise ProjectFileError(f"max_plot_share must be in [0, 1] (0 = no cap), got {p.model.max_plot_share}",
                                key="model.max_plot_share")
     _check_choice(p.validation.design, CV_DESIGNS, "validation.design")
-    if p.validation.n_folds < 2:
-        raise ProjectFileError(f"n_folds must be >= 2, got {p.validation.n_folds}", key="validation.n_folds")
+    check_ranges(p)
     if p.validation.design == "random" and not p.validation.allow_random_pixels:
         raise ProjectFileError(
             "random pixel folds leak (neighbouring pixels of one plot land on both sides) and overstate accuracy; "
             "use design = 'blocks', or set allow_random_pixels = true to run it for comparison only",
             key="validation.design",
         )
-    if p.output.chunk_size < 64:
-        raise ProjectFileError(f"chunk_size must be >= 64, got {p.output.chunk_size}", key="output.chunk_size")
-    if p.output.mmu_pixels < 1:
-        raise ProjectFileError(f"mmu_pixels must be >= 1 (1 keeps every patch), got {p.output.mmu_pixels}",
-                               key="output.mmu_pixels")
     if p.output.connectivity not in (4, 8):
-        raise ProjectFileError(f"connectivity must be 4 or 8, got {p.output.connectivity}", key="output.connectivity")
-    if p.output.memory_budget_gb <= 0:
-        raise ProjectFileError(f"memory_budget_gb must be > 0, got {p.output.memory_budget_gb}",
-                               key="output.memory_budget_gb")
-    if p.compute.n_workers < 1:
-        raise ProjectFileError(f"n_workers must be >= 1, got {p.compute.n_workers}", key="compute.n_workers")
-    if p.grid.pixel_size_m < 0:
-        raise ProjectFileError(f"pixel_size_m must be > 0 (or 0 for the default), got {p.grid.pixel_size_m}",
-                               key="grid.pixel_size_m")
+        raise ProjectFileError(f"connectivity must be 4 or 8, got {p.output.connectivity}; set "
+                               "output.connectivity = 4 (edge neighbours) or 8 (edge and corner neighbours)",
+                               key="output.connectivity")
+
+
+INF = float("inf")
+# Numeric keys and their valid ranges: (key, low, high, low included, high included, why).  Where a value goes
+# straight to XGBoost or scikit-learn, the bounds are theirs:
+# * XGBoost parameter documentation (doc/parameter.rst, "Parameters for Tree Booster"): eta (learning_rate)
+#   range [0, 1], max_depth range [0, inf] (0 = no limit, accepted by the hist tree method used here); a
+#   learning rate of 0 never learns, so it is excluded here;
+# * scikit-learn RandomForestClassifier._parameter_constraints: n_estimators Interval(Integral, 1, None);
+#   the seed becomes numpy's RandomState seed (sklearn.utils.check_random_state), which must lie in
+#   [0, 2**32 - 1];
+# * the rest are wetlandflow's own (a count of at least one, a size or distance that is positive).
+RANGES: tuple[tuple[str, float, float, bool, bool, str], ...] = (
+    ("project.seed", 0, 2**32 - 1, True, True, "numpy's seed range"),
+    ("model.n_estimators", 1, INF, True, True, "number of trees or boosting rounds"),
+    ("model.max_depth", 0, INF, True, True, "0 = no depth limit"),
+    ("model.learning_rate", 0, 1, False, True, "XGBoost's eta"),
+    ("model.n_threads", 1, INF, True, True, "threads per model fit"),
+    ("validation.n_folds", 2, INF, True, True, "at least two folds"),
+    ("validation.block_size_m", 0, INF, False, False, "side of the square blocks, metres"),
+    ("samples.max_pixels_per_plot", 1, INF, True, True, "pixels drawn per plot"),
+    ("samples.inward_buffer_m", 0, INF, True, False, "metres, 0 = no buffer"),
+    ("output.chunk_size", 64, INF, True, True, "pixels per side of a window"),
+    ("output.mmu_pixels", 1, INF, True, True, "1 keeps every patch"),
+    ("output.memory_budget_gb", 0, INF, False, False, "gigabytes"),
+    ("output.explain_rows", 1, INF, True, True, "samples explained"),
+    ("output.explain_window", 1, INF, True, True, "pixels per side"),
+    ("output.explain_seeds", 0, INF, True, True, "refits, < 2 = off"),
+    ("compute.n_workers", 1, INF, True, True, "worker processes"),
+    ("grid.pixel_size_m", 0, INF, True, False, "metres, 0 = the reference input's"),
+)
+
+
+def _interval(low: float, high: float, low_in: bool, high_in: bool) -> str:
+    if high == INF:
+        return f"{'>=' if low_in else '>'} {low:g}"
+    return f"{'[' if low_in else '('}{low:g}, {high:g}{']' if high_in else ')'}"
+
+
+def check_ranges(p: Project) -> None:
+    """Refuse a numeric key outside its valid range (:data:`RANGES`), naming the key and the range."""
+    for key, low, high, low_in, high_in, why in RANGES:
+        section, name = key.split(".")
+        value = getattr(getattr(p, section), name)
+        above = value >= low if low_in else value > low
+        below = value <= high if high_in else value < high
+        if not (above and below):  # NaN fails both
+            rng = _interval(low, high, low_in, high_in)
+            raise ProjectFileError(
+                f"{name} must be {'in ' if rng[0] in '[(' else ''}{rng} ({why}), got {value!r}; set {key} to a "
+                "value in that range", key=key)
 
 
 # -- public API ----------------------------------------------------------------------------
@@ -551,7 +591,7 @@ def load_project(path: str | Path) -> Project:
     if not path.exists():
         raise ProjectFileError("project file not found; check the path", file=str(path))
     try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
+        data = tomllib.loads(path.read_text(encoding="utf-8-sig"))  # a byte-order mark (some editors) is fine
     except tomllib.TOMLDecodeError as exc:
         raise ProjectFileError(f"not valid TOML: {exc}; fix the syntax at the line and column shown "
                                "(docs/project-file.md describes the format)", file=str(path)) from None

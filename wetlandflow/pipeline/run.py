@@ -41,6 +41,7 @@ from ..models.bundle import load_bundle, save_bundle
 from ..models.classifier import ClassScheme, WetlandClassifier, data_hash, scheme_proba
 from ..models.hierarchy import HierarchicalClassifier
 from ..training.samples import (
+    check_class_plots,
     check_training_features,
     class_balance,
     drop_incomplete,
@@ -104,9 +105,9 @@ def make_splitter(project: Project, coords: np.ndarray):
     from ..validation.splitters import SpatialBlockKFold
 
     v = project.validation
-    if v.design == "blocks":
+    if v.design == "blocks":  # classes missing from folds are refused the same way for every design
         return SpatialBlockKFold(n_splits=v.n_folds, block_size_m=v.block_size_m, random_state=project.project.seed,
-                                 coords=coords)
+                                 coords=coords, on_class_missing="ignore")
     if v.design == "group":
         return GroupKFold(n_splits=v.n_folds)
     from ..validation.splitters import random_pixel_kfold
@@ -217,21 +218,10 @@ def cross_validate(project: Project, samples: pd.DataFrame, features: list[str],
     """Out-of-fold class probabilities for every sample, and each sample's test fold
     (``check`` is called before every fold: a cancel point)."""
     from ..progress import progress_bar
-    from ..validation.splitters import assign_folds, check_folds
 
-    splitter = make_splitter(project, samples[["x", "y"]].to_numpy())
     X = samples[features].to_numpy(np.float32)
     y = samples["class"].to_numpy()
-    groups = samples["plot_id"].to_numpy()
-    n_plots = len(np.unique(groups))
-    if project.validation.n_folds > n_plots:
-        raise ProjectFileError(
-            f"validation.n_folds = {project.validation.n_folds} but the samples come from {n_plots} plot(s); "
-            "plots are never split across folds, so there can be at most one fold per plot. Use fewer folds "
-            "or add plots", key="validation.n_folds", file=str(project.file))
-    folds = assign_folds(splitter, X, y, groups)
-    # a class absent from a fold's training side cannot be predicted there: say so, with the fix, and go on
-    check_folds(y, folds, groups, on_missing="warn")
+    folds = design_folds(project, samples)
     oof = np.full((len(samples), len(project.classes.names)), np.nan, np.float32)
     for k in progress_bar(np.unique(folds), desc="cross-validating", unit="fold", disable=not progress):
         test = folds == k
@@ -241,6 +231,28 @@ def cross_validate(project: Project, samples: pd.DataFrame, features: list[str],
         model = make_model(project).fit(X[~test], y[~test], sample_weight=w)
         oof[test] = scheme_proba(model, X[test])  # columns in scheme order, as the oof table
     return oof, folds
+
+
+def design_folds(project: Project, samples: pd.DataFrame) -> np.ndarray:
+    """The test fold of every sample under the project's design, refused (for every design alike) when the
+    cross-validated accuracy would be a silently wrong number (:func:`require_testable_folds`).
+
+    ``samples`` needs ``plot_id``, ``class``, ``x`` and ``y``; ``check`` calls this on the plot pixels.
+    """
+    from ..validation.splitters import assign_folds, require_testable_folds
+
+    y = samples["class"].to_numpy()
+    groups = samples["plot_id"].to_numpy()
+    n_plots = len(np.unique(groups))
+    if project.validation.n_folds > n_plots:
+        raise ProjectFileError(
+            f"validation.n_folds = {project.validation.n_folds} but the samples come from {n_plots} plot(s); "
+            "plots are never split across folds, so there can be at most one fold per plot. Use fewer folds "
+            "or add plots", key="validation.n_folds", file=str(project.file))
+    coords = samples[["x", "y"]].to_numpy()
+    folds = assign_folds(make_splitter(project, coords), coords, y, groups)
+    require_testable_folds(y, folds, groups, design=project.validation.design)
+    return folds
 
 
 SCHEDULER_ENV = "WETLANDFLOW_SCHEDULER"
@@ -460,9 +472,10 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
 
 def _samples_step(project: Project, grid, cube, rec: dict[str, Any]) -> pd.DataFrame:
     plots = read_plots(project.plots.path, class_field=project.plots.class_field, id_field=project.plots.id_field,
-                       classes=project.classes.names, grid=grid, aoi=read_aoi(project))
+                       classes=project.classes.names, grid=grid, aoi=read_aoi(project), layer=project.plots.layer)
     px = plot_pixels(plots, grid, inward_buffer_m=project.samples.inward_buffer_m,
                      max_pixels_per_plot=project.samples.max_pixels_per_plot, seed=project.project.seed)
+    check_class_plots(px, plots, project.classes.names, where=f"plot file {project.plots.path}")
     samples = extract_samples(cube, px, grid)
     features = feature_names(samples)
     check_training_features(samples, features)

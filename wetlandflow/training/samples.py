@@ -21,10 +21,17 @@ from ..inputs.grid import Grid
 from ..inputs.io import read_vector
 
 
-def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...], grid: Grid, aoi=None):
-    """Read and check training plots; return a GeoDataFrame in the grid CRS with ``plot_id`` and ``class``."""
-    gdf = read_vector(path, what="plot file")
-    where = f"plot file {path}"
+def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...], grid: Grid, aoi=None,
+               layer: str = ""):
+    """Read and check training plots; return a GeoDataFrame in the grid CRS with ``plot_id`` and ``class``.
+
+    ``layer`` names the layer of a file with several (``plots.layer``); such a file without it is refused.
+    """
+    gdf = read_vector(path, layer=layer or None, what="plot file", key="plots.layer")
+    where = f"plot file {path}" + (f" (layer {layer!r})" if layer else "")
+    if len(gdf) == 0:
+        raise SamplesError(f"{where}: the file holds no plot (no feature); add the labelled plots to it, or set "
+                           "plots.path (and plots.layer) to the file and layer that hold them")
     if class_field not in gdf.columns:
         raise SamplesError(f"{where}: no class field {class_field!r}; fields are {list(gdf.columns.drop('geometry'))}. "
                            "Set plots.class_field in the project file")
@@ -67,6 +74,24 @@ def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...
 
 
 PLOT_GEOMETRIES = ("Polygon", "MultiPolygon", "Point")
+
+
+def check_class_plots(pixels: pd.DataFrame, plots, classes: tuple[str, ...], *, where: str) -> None:
+    """Refuse a class of the scheme that no plot trains: no plot at all, or plots without a pixel centre.
+
+    A model cannot learn such a class; a run would map an inventory that can never show it, and the
+    accuracy figures would not say so.
+    """
+    with_pixels = set(pixels["class"]) if len(pixels) else set()
+    n_plots = plots.groupby("class").size() if len(plots) else pd.Series(dtype=int)
+    empty = [c for c in classes if c not in with_pixels]
+    if not empty:
+        return
+    detail = "; ".join(f"{c!r}: no plot" if not n_plots.get(c, 0) else
+                       f"{c!r}: {int(n_plots[c])} plot(s), none holding a pixel centre" for c in empty)
+    raise SamplesError(f"{where}: class(es) of the scheme without training data ({detail}); the model "
+                       "could never map them. Add plots of these classes to the plot file, or remove them from "
+                       "[classes].names (and [classes.parents]) in the project file")
 
 
 def _check_geometries(gdf, where: str) -> None:
