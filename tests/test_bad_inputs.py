@@ -255,6 +255,10 @@ def aoi_variant(make: Callable[[gpd.GeoDataFrame, Path], None]):
     return corrupt
 
 
+# the base project selects optical and terrain features: SAR files are read (and checked) only when selected
+SELECT_SAR = edit(lambda d: d["features"].update(select=["optical", "sar", "terrain"]))
+
+
 def raw_text(text: str):
     def corrupt(doc: dict, folder: Path, tmp: Path) -> str:
         return text
@@ -473,13 +477,13 @@ CASES = [
     ),
     Case(
         "sar-bands-mislabelled",
-        edit(lambda d: [s.update(bands=["HH", "HV"]) for s in d["sar"]]),
+        both(SELECT_SAR, edit(lambda d: [s.update(bands=["HH", "HV"]) for s in d["sar"]])),
         r"\[sar\[0\]\.bands\].*sar_\d+\.tif",
         r"List the bands in the file's order",
     ),
     Case(
         "sar-band-count",
-        edit(lambda d: [s.update(bands=["VV"]) for s in d["sar"]]),
+        both(SELECT_SAR, edit(lambda d: [s.update(bands=["VV"]) for s in d["sar"]])),
         r"sar_\d+\.tif",
         r"Fix the band list or the file",
     ),
@@ -523,13 +527,13 @@ CASES = [
     ),
     Case(
         "sar-linear-declared-db",
-        edit(lambda d: [s.update(units="db") for s in d["sar"]]),
+        both(SELECT_SAR, edit(lambda d: [s.update(units="db") for s in d["sar"]])),
         r"\[sar\[0\]\.units\].*sar_\d+\.tif",
         r'set units = "linear"',
     ),
     Case(
         "sar-db-declared-linear",
-        raster("sar", 0, to_db, "sar_db.tif"),
+        both(SELECT_SAR, raster("sar", 0, to_db, "sar_db.tif")),
         r"\[sar\[0\]\.units\].*sar_db\.tif",
         r'set units = "db"',
     ),

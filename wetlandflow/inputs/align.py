@@ -62,6 +62,12 @@ class RasterInfo:
     descriptions: tuple[str | None, ...]
 
 
+def _ordered_bounds(b) -> tuple[float, float, float, float]:
+    """(xmin, ymin, xmax, ymax) whatever the row order: a south-up file (positive y pixel size, first row at
+    the bottom) is valid, and rasterio then gives a bottom above the top."""
+    return (min(b.left, b.right), min(b.bottom, b.top), max(b.left, b.right), max(b.bottom, b.top))
+
+
 def inspect_raster(path: str | Path) -> RasterInfo:
     """Read a raster's header, with clear errors for unreadable files and missing CRS."""
     try:
@@ -76,7 +82,7 @@ def inspect_raster(path: str | Path) -> RasterInfo:
                      boundless=True)
             return RasterInfo(
                 str(path), src.crs.to_string(), src.count, src.width, src.height, src.dtypes[0], src.nodata,
-                (abs(src.transform.a), abs(src.transform.e)), tuple(src.bounds), tuple(src.descriptions),
+                (abs(src.transform.a), abs(src.transform.e)), _ordered_bounds(src.bounds), tuple(src.descriptions),
             )
     except AlignmentError:
         raise

@@ -259,6 +259,28 @@ SCHEDULER_ENV = "WETLANDFLOW_SCHEDULER"
 
 
 @contextmanager
+def kept_warnings(manifest: Manifest, step: str):
+    """Record the :class:`~wetlandflow.errors.PlausibilityWarning` raised inside in ``manifest.json``
+    (``plausibility_warnings``: step and message, each once), and pass every warning on to the user."""
+    import warnings
+
+    from ..errors import PlausibilityWarning
+
+    kept = manifest.data.setdefault("plausibility_warnings", [])
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", PlausibilityWarning)
+        try:
+            yield kept
+        finally:
+            for w in caught:
+                message = str(w.message)
+                if issubclass(w.category, PlausibilityWarning) and not any(k["message"] == message for k in kept):
+                    kept.append({"step": step, "message": message})
+    for w in caught:
+        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+
+
+@contextmanager
 def compute_context(project: Project):
     """Where dask work runs: this process's threads, a LocalCluster, or a cluster at an address.
 
@@ -329,7 +351,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     cfg = portable_dict(project)
     seed = project.project.seed
 
-    with manifest.step("inputs") as rec:
+    with manifest.step("inputs") as rec, kept_warnings(manifest, "inputs"):
         _record_inputs(manifest, project)
         grid = project_grid(project)
         inputs = load_inputs(project, grid)
@@ -363,8 +385,11 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     samples_path = run_dir / "samples.parquet"
     if manifest.reusable("samples", k_samples, [samples_path], uses=[zarr_path]):
         samples = pd.read_parquet(samples_path)
+        manifest.data["plausibility_warnings"] += [w for w in manifest.previous.get("plausibility_warnings", [])
+                                                   if w.get("step") == "samples"]
     else:
-        with manifest.step("samples", k_samples, outputs=[samples_path], uses=[zarr_path]) as rec:
+        with (manifest.step("samples", k_samples, outputs=[samples_path], uses=[zarr_path]) as rec,
+              kept_warnings(manifest, "samples")):
             samples = _samples_step(project, grid, cube, rec)
             write_table(samples, samples_path)
     features = model_features(project, samples)
@@ -638,6 +663,10 @@ def format_summary(result: RunResult) -> str:
                       + (f"{len(moved)} input file(s) resampled onto it ({', '.join(moved[:3])}"
                          f"{', ...' if len(moved) > 3 else ''}; see manifest.json steps.inputs.to_grid)"
                          if moved else "every input file lies on its pixels (no resampling)")]
+    plausibility = result.manifest.get("plausibility_warnings", [])
+    if plausibility:
+        lines += ["", f"Plausibility warnings ({len(plausibility)}; also in manifest.json plausibility_warnings):"]
+        lines += [f"  - {w['message']}" for w in plausibility]
     skipped = steps.get("features", {}).get("skipped")
     if skipped:
         lines += ["", "Features skipped (the inputs cannot compute them):"]

@@ -60,6 +60,7 @@ def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...
             raise SamplesError(f"{where}: duplicate plot id(s) with different labels: {bad[:10]}; "
                                "give each plot a unique id")
     gdf = gdf.to_crs(grid.crs)
+    plot_warnings(gdf, where)
     if aoi is not None:
         inside = gdf.geometry.intersects(aoi.to_crs(grid.crs).union_all())
         if not inside.any():
@@ -74,6 +75,43 @@ def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...
 
 
 PLOT_GEOMETRIES = ("Polygon", "MultiPolygon", "Point")
+
+
+def plot_warnings(gdf, where: str) -> list[str]:
+    """Warn (:class:`~wetlandflow.errors.PlausibilityWarning`) about plots that are valid but look wrong.
+
+    * one id on several features with the same label: read as one multipart plot (its pixels share a fold),
+      which is right for a plot drawn in parts and wrong for two plots given the same id by mistake;
+    * plots of different labels that overlap: the pixels they share train both classes.
+    """
+    import geopandas as gpd
+
+    from ..errors import PlausibilityWarning
+
+    found = []
+    counts = gdf.groupby("plot_id").size()
+    dup = counts[counts > 1].index.tolist()
+    if dup:
+        found.append(f"{where}: {len(dup)} plot id(s) on several features with the same label, read as one "
+                     f"multipart plot each: {dup[:10]}. If they are separate plots, give each a unique id")
+    polys = gdf[gdf.geom_type.isin(["Polygon", "MultiPolygon"])]
+    if len(polys) > 1:
+        pairs = gpd.sjoin(polys[["plot_id", "class", "geometry"]], polys[["plot_id", "class", "geometry"]],
+                          predicate="intersects")
+        pairs = pairs[(pairs["class_left"] != pairs["class_right"])
+                      & (pairs["plot_id_left"] < pairs["plot_id_right"])]
+        # shared area, not a shared edge (neighbouring plots drawn against each other touch)
+        other = gpd.GeoSeries(polys.geometry.loc[pairs["index_right"]].to_numpy(), index=pairs.index, crs=polys.crs)
+        pairs = pairs[pairs.geometry.intersection(other).area > 0]
+        if len(pairs):
+            shown = [f"{a} ({ca}) / {b} ({cb})" for a, ca, b, cb in pairs[
+                ["plot_id_left", "class_left", "plot_id_right", "class_right"]].itertuples(index=False)][:10]
+            found.append(f"{where}: {len(pairs)} pair(s) of overlapping plots with different labels: "
+                         f"{', '.join(shown)}; their shared pixels train both classes. Correct the outlines "
+                         "or the labels")
+    for message in found:
+        warnings.warn(message, PlausibilityWarning, stacklevel=3)
+    return found
 
 
 def check_class_plots(pixels: pd.DataFrame, plots, classes: tuple[str, ...], *, where: str) -> None:
