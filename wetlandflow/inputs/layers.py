@@ -467,6 +467,7 @@ def needed_inputs(project: Project) -> set[str]:
     what runs).
     """
     import wetlandflow.features  # noqa: F401  (registers the built-in features)
+
     from ..features.registry import REGISTRY
 
     everything = {"optical", "sar", "dem"}
