@@ -309,14 +309,15 @@ def _build(cls: type, table: Any, key: str, root: Path, fixed: dict[str, Any] | 
         if name in table:
             kwargs[name] = _coerce(table[name], hints[name], sub, root)
         elif f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING:
-            raise ProjectFileError(f"missing required key {name!r}", key=sub)
+            raise ProjectFileError(f"missing required key {name!r}; add it to the project file (docs/project-file.md "
+                                   "shows every key)", key=sub)
     return cls(**kwargs)
 
 
 # -- semantic checks ---------------------------------------------------------------------
 def _check_choice(value: str, allowed: tuple[str, ...], key: str) -> None:
     if value not in allowed:
-        raise ProjectFileError(f"{value!r} is not one of {', '.join(allowed)}", key=key)
+        raise ProjectFileError(f"{value!r} is not one of {', '.join(allowed)}; set {key} to one of these", key=key)
 
 
 def _require_file(path: Path | None, key: str) -> None:
@@ -342,11 +343,13 @@ def _check_seasons(seasons: dict[str, tuple[str, str]]) -> None:
     spans = []
     for name, window in seasons.items():
         if len(window) != 2:
-            raise ProjectFileError(f"a season is [start, end], got {list(window)}", key=f"seasons.{name}")
+            raise ProjectFileError(f"a season is [start, end], got {list(window)}; give two month-days like "
+                                   "['06-01', '08-31']", key=f"seasons.{name}")
         a, b = (_month_day(s, f"seasons.{name}") for s in window)
         if b < a:
             raise ProjectFileError(
-                f"season ends ({window[1]}) before it starts ({window[0]}); windows may not wrap the year",
+                f"season ends ({window[1]}) before it starts ({window[0]}); windows may not wrap the year: split "
+                "it into two seasons (one ending 12-31, one starting 01-01) or swap the dates",
                 key=f"seasons.{name}",
             )
         spans.append((a, b, name))
@@ -373,22 +376,26 @@ def _check_season_scenes(p: Project) -> None:
 
 def _check_classes(c: ClassesSection) -> None:
     if len(c.names) < 2:
-        raise ProjectFileError("a class scheme needs at least two classes", key="classes.names")
+        raise ProjectFileError(f"a class scheme needs at least two classes, got {list(c.names)}; list every class "
+                               "the plots are labelled with", key="classes.names")
     if len(set(c.names)) != len(c.names):
         dup = sorted({n for n in c.names if c.names.count(n) > 1})
-        raise ProjectFileError(f"duplicate class names: {dup}", key="classes.names")
+        raise ProjectFileError(f"duplicate class names: {dup}; list each class once", key="classes.names")
     seen: dict[str, str] = {}
     for parent, children in c.parents.items():
         if parent in c.names:
-            raise ProjectFileError(f"parent {parent!r} must not also be a leaf class", key=f"classes.parents.{parent}")
+            raise ProjectFileError(f"parent {parent!r} must not also be a leaf class; rename the group",
+                                   key=f"classes.parents.{parent}")
         for child in children:
             if child not in c.names:
                 raise ProjectFileError(
-                    f"unknown class {child!r}; known classes: {', '.join(c.names)}", key=f"classes.parents.{parent}"
+                    f"unknown class {child!r}; known classes: {', '.join(c.names)}. Correct the name or add the "
+                    "class to [classes].names", key=f"classes.parents.{parent}"
                 )
             if child in seen:
                 raise ProjectFileError(
-                    f"class {child!r} is under both {seen[child]!r} and {parent!r}", key=f"classes.parents.{parent}"
+                    f"class {child!r} is under both {seen[child]!r} and {parent!r}; put each class in one group",
+                    key=f"classes.parents.{parent}"
                 )
             seen[child] = parent
 
@@ -401,7 +408,8 @@ def check_model_section(p: Project) -> None:
     :func:`wetlandflow.pipeline.run.make_model`, for a project built without :func:`load_project`)."""
     m = p.model
     if not 0 <= m.gate_threshold < 1:
-        raise ProjectFileError(f"gate_threshold must be in [0, 1) (0 = no gate), got {m.gate_threshold}",
+        raise ProjectFileError(f"gate_threshold must be in [0, 1) (0 = no gate), got {m.gate_threshold}; set "
+                               "model.gate_threshold to a value in that range",
                                key="model.gate_threshold")
     if m.gate_threshold and not m.hierarchical:
         raise ProjectFileError(
@@ -464,7 +472,8 @@ def _validate(p: Project) -> None:
     for i, s in enumerate(p.optical):
         _require_file(s.mask, f"optical[{i}].mask")
         if s.scale <= 0:
-            raise ProjectFileError(f"scale must be > 0, got {s.scale}", key=f"optical[{i}].scale")
+            raise ProjectFileError(f"scale must be > 0, got {s.scale}; set the factor that turns DN into "
+                                   "reflectance (0.0001 for Sentinel-2)", key=f"optical[{i}].scale")
         _check_choice(s.plausibility, PLAUSIBILITY, f"optical[{i}].plausibility")
     for i, s in enumerate(p.sar):
         bad = [b for b in s.bands if b not in SAR_POLARISATIONS]
@@ -483,7 +492,8 @@ def _validate(p: Project) -> None:
     check_model_section(p)
     _check_choice(p.samples.missing, ("keep", "drop"), "samples.missing")
     if not 0 <= p.model.max_plot_share <= 1:
-        raise ProjectFileError(f"max_plot_share must be in [0, 1] (0 = no cap), got {p.model.max_plot_share}",
+        raise ProjectFileError(f"max_plot_share must be in [0, 1] (0 = no cap), got {p.model.max_plot_share}; set "
+                               "model.max_plot_share to a value in that range",
                                key="model.max_plot_share")
     _check_choice(p.validation.design, CV_DESIGNS, "validation.design")
     check_ranges(p)
@@ -592,6 +602,9 @@ def load_project(path: str | Path) -> Project:
         raise ProjectFileError("project file not found; check the path", file=str(path))
     try:
         data = tomllib.loads(path.read_text(encoding="utf-8-sig"))  # a byte-order mark (some editors) is fine
+    except UnicodeDecodeError as exc:
+        raise ProjectFileError(f"not UTF-8 text (byte {exc.start}: {exc.reason}); save the file as UTF-8 (an "
+                               "editor's 'save with encoding' menu)", file=str(path)) from None
     except tomllib.TOMLDecodeError as exc:
         raise ProjectFileError(f"not valid TOML: {exc}; fix the syntax at the line and column shown "
                                "(docs/project-file.md describes the format)", file=str(path)) from None

@@ -159,7 +159,8 @@ def check_project(project: Project | str | Path) -> CheckReport:
         max_pixels_per_plot=project.samples.max_pixels_per_plot,
         seed=project.project.seed,
     )
-    check_class_plots(px, plots, project.classes.names, where=f"plot file {project.plots.path}")
+    check_class_plots(px, plots, project.classes.names, where=f"plot file {project.plots.path}",
+                      pixel_size_m=grid.resolution)
     table = _plot_table(project, plots, px)
     ours = (InputCoverageWarning, ReflectanceWarning)
     notes = list(dict.fromkeys(str(w.message) for w in caught if issubclass(w.category, ours)))

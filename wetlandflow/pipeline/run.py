@@ -500,7 +500,8 @@ def _samples_step(project: Project, grid, cube, rec: dict[str, Any]) -> pd.DataF
                        classes=project.classes.names, grid=grid, aoi=read_aoi(project), layer=project.plots.layer)
     px = plot_pixels(plots, grid, inward_buffer_m=project.samples.inward_buffer_m,
                      max_pixels_per_plot=project.samples.max_pixels_per_plot, seed=project.project.seed)
-    check_class_plots(px, plots, project.classes.names, where=f"plot file {project.plots.path}")
+    check_class_plots(px, plots, project.classes.names, where=f"plot file {project.plots.path}",
+                      pixel_size_m=grid.resolution)
     samples = extract_samples(cube, px, grid)
     features = feature_names(samples)
     check_training_features(samples, features)

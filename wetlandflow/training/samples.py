@@ -114,7 +114,8 @@ def plot_warnings(gdf, where: str) -> list[str]:
     return found
 
 
-def check_class_plots(pixels: pd.DataFrame, plots, classes: tuple[str, ...], *, where: str) -> None:
+def check_class_plots(pixels: pd.DataFrame, plots, classes: tuple[str, ...], *, where: str,
+                      pixel_size_m: float | None = None) -> None:
     """Refuse a class of the scheme that no plot trains: no plot at all, or plots without a pixel centre.
 
     A model cannot learn such a class; a run would map an inventory that can never show it, and the
@@ -126,10 +127,12 @@ def check_class_plots(pixels: pd.DataFrame, plots, classes: tuple[str, ...], *, 
     if not empty:
         return
     detail = "; ".join(f"{c!r}: no plot" if not n_plots.get(c, 0) else
-                       f"{c!r}: {int(n_plots[c])} plot(s), none holding a pixel centre" for c in empty)
+                       f"{c!r}: {int(n_plots[c])} plot(s), none holding a pixel centre"
+                       + (f" of the {pixel_size_m:g} m grid" if pixel_size_m else "") for c in empty)
     raise SamplesError(f"{where}: class(es) of the scheme without training data ({detail}); the model "
-                       "could never map them. Add plots of these classes to the plot file, or remove them from "
-                       "[classes].names (and [classes.parents]) in the project file")
+                       "could never map them. Add plots of these classes to the plot file (or, for plots smaller "
+                       "than a pixel, use a smaller grid.pixel_size_m), or remove the classes from [classes].names "
+                       "(and [classes.parents]) in the project file")
 
 
 def _check_geometries(gdf, where: str) -> None:
