@@ -338,7 +338,9 @@ def one_pixel_class(cls: str):
 
 def scale_aoi(factor: float):
     def make(g: gpd.GeoDataFrame, p: Path) -> None:
-        g.set_geometry(g.geometry.scale(factor, factor, origin=g.union_all().centroid)).to_file(p, layer="aoi")
+        g.set_geometry(g.geometry.scale(factor, factor, origin=g.union_all().centroid)).to_file(
+            p, layer="aoi"
+        )
 
     return make
 
@@ -797,7 +799,7 @@ CASES = [
     ),
     Case(
         "model-learning-rate-nan",
-        edit(lambda d: d.setdefault("model", {}).update(learning_rate=float('nan'))),
+        edit(lambda d: d.setdefault("model", {}).update(learning_rate=float("nan"))),
         r"\[model\.learning_rate\]",
         r"got nan; set model\.learning_rate to a value in that range",
     ),
@@ -833,7 +835,7 @@ CASES = [
     ),
     Case(
         "validation-block-size-infinite",
-        edit(lambda d: d.setdefault("validation", {}).update(block_size_m=float('inf'))),
+        edit(lambda d: d.setdefault("validation", {}).update(block_size_m=float("inf"))),
         r"\[validation\.block_size_m\]",
         r"got inf; set validation\.block_size_m",
     ),
@@ -917,37 +919,37 @@ CASES = [
     ),
     Case(
         "model-kind-unknown",
-        edit(lambda d: d.setdefault("model", {}).update(kind='svm')),
+        edit(lambda d: d.setdefault("model", {}).update(kind="svm")),
         r"\[model\.kind\]",
         r"not one of xgboost, random_forest; set model\.kind",
     ),
     Case(
         "validation-design-unknown",
-        edit(lambda d: d.setdefault("validation", {}).update(design='leave_one_out')),
+        edit(lambda d: d.setdefault("validation", {}).update(design="leave_one_out")),
         r"\[validation\.design\]",
         r"not one of blocks, group, random",
     ),
     Case(
         "samples-missing-policy-unknown",
-        edit(lambda d: d.setdefault("samples", {}).update(missing='fill')),
+        edit(lambda d: d.setdefault("samples", {}).update(missing="fill")),
         r"\[samples\.missing\]",
         r"not one of keep, drop",
     ),
     Case(
         "grid-align-to-unknown",
-        edit(lambda d: d.setdefault("grid", {}).update(align_to='lidar')),
+        edit(lambda d: d.setdefault("grid", {}).update(align_to="lidar")),
         r"\[grid\.align_to\]",
         r"set grid\.align_to to one of these",
     ),
     Case(
         "model-wrong-type-trees",
-        edit(lambda d: d.setdefault("model", {}).update(n_estimators='300')),
+        edit(lambda d: d.setdefault("model", {}).update(n_estimators="300")),
         r"\[model\.n_estimators\]",
         r"expected a whole number",
     ),
     Case(
         "model-wrong-type-rate",
-        edit(lambda d: d.setdefault("model", {}).update(learning_rate='fast')),
+        edit(lambda d: d.setdefault("model", {}).update(learning_rate="fast")),
         r"\[model\.learning_rate\]",
         r"expected a number",
     ),
@@ -1163,7 +1165,8 @@ CASES = [
     Case(
         "group-folds-one-plot-class",
         plots_variant(keep_one_plot_of("fen")),
-        r"class 'fen' \(1 plot\(s\) in total\) is missing from the training side .*validation\.design = 'group'",
+        r"class 'fen' \(1 plot\(s\) in total\) is missing from the training side "
+        r".*validation\.design = 'group'",
         r"collect more plots of it, or use fewer folds",
         seeded=True,
     ),
@@ -1173,7 +1176,8 @@ CASES = [
             plots_variant(one_pixel_class("fen")),
             edit(lambda d: d["validation"].update(design="random", allow_random_pixels=True)),
         ),
-        r"class 'fen' \(1 plot\(s\) in total\) is missing from the training side .*validation\.design = 'random'",
+        r"class 'fen' \(1 plot\(s\) in total\) is missing from the training side "
+        r".*validation\.design = 'random'",
         r"collect more plots of it, or use fewer folds",
         seeded=True,
     ),
@@ -1192,10 +1196,21 @@ CASES = [
         seeded=True,
         check=False,  # check does not build the cube whose variables it would compare with
     ),
-    Case("output-dir-is-a-file", output_is_a_file, r"run_file", r"choose another project\.output_dir", check=False),
+    Case(
+        "output-dir-is-a-file",
+        output_is_a_file,
+        r"run_file",
+        r"choose another project\.output_dir",
+        check=False,
+    ),
     # the run folder
-    Case("output-folder-not-writable", output_under_a_file, r"a_file", r"choose another project\.output_dir",
-         check=False),
+    Case(
+        "output-folder-not-writable",
+        output_under_a_file,
+        r"a_file",
+        r"choose another project\.output_dir",
+        check=False,
+    ),
 ]
 
 
@@ -1267,7 +1282,7 @@ def test_bad_input_is_refused_clearly(demo, case, tmp_path, capsys):
 
 @pytest.mark.parametrize("case", [c for c in CASES if c.check], ids=[c.id for c in CASES if c.check])
 def test_check_refuses_it_too(demo, case, tmp_path, capsys):
-    """``wetlandflow check`` refuses what the run refuses before writing anything final, with the same words."""
+    """``wetlandflow check`` refuses what the run refuses before any final output, in the same words."""
     rc, err, run_dir = run_case(demo, case, tmp_path, capsys, verb="check")
     assert rc == 2, err
     assert "Traceback" not in err, err
@@ -1474,3 +1489,177 @@ def test_a_plot_smaller_than_a_pixel_is_named_in_a_warning(demo):
     with pytest.warns(UserWarning, match=r"1 plot\(s\) contain no pixel centre.*\['tiny'\]"):
         px = plot_pixels(plots, grid)
     assert set(px["plot_id"]) == {"big"}
+
+
+# -- issue 18 part C: findings, one test each -------------------------------------------------------------
+
+
+def test_random_design_warns_only_what_is_true_and_hides_the_groups_warning(demo):
+    """The random design splits pixels: a one-plot class reaches every test fold, so no 'few plots' warning
+    is true there; scikit-learn's 'groups parameter is ignored' (KFold) must not reach the user either."""
+    import dataclasses
+    import warnings
+
+    from wetlandflow.pipeline.run import design_folds
+
+    project = load_project(demo.base_file)
+    project = dataclasses.replace(
+        project,
+        validation=dataclasses.replace(project.validation, design="random", allow_random_pixels=True),
+    )
+    samples = pd.read_parquet(demo.run_dir / "samples.parquet")
+    one_plot = samples["plot_id"] == samples.loc[samples["class"] == "fen", "plot_id"].iloc[0]
+    samples = samples[(samples["class"] != "fen") | one_plot].reset_index(drop=True)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        folds = design_folds(project, samples)
+    messages = [str(w.message) for w in caught]
+    assert not [m for m in messages if "groups parameter is ignored" in m], messages
+    assert not [m for m in messages if "'fen' has 1 plot(s)" in m], messages
+    assert set(folds[samples["class"].to_numpy() == "fen"]) == {0, 1, 2}  # the warning would have been false
+
+
+def test_a_named_plot_layer_is_the_one_read(demo, tmp_path):
+    from wetlandflow.inputs.layers import project_grid
+    from wetlandflow.training.samples import read_plots
+
+    project = load_project(demo.base_file)
+    plots = gpd.read_file(project.plots.path)
+    path = tmp_path / "two.gpkg"
+    plots.to_file(path, layer="plots")
+    plots.iloc[:12].to_file(path, layer="plots_2023", mode="a")
+    kwargs = dict(
+        class_field="label", id_field="plot_id", classes=project.classes.names, grid=project_grid(project)
+    )
+    assert len(read_plots(path, layer="plots_2023", **kwargs)) == 12
+    assert len(read_plots(path, layer="plots", **kwargs)) == len(plots)
+
+
+def test_sar_amplitude_and_power_in_the_overlap_are_warned():
+    """Values in the overlap of the two units (median 0.03 to 0.5) are accepted, with a warning when the
+    median sits on the other unit's side (limits: common practice, no source; see SAR_UNIT_LIMITS)."""
+    import xarray as xr
+
+    from wetlandflow.errors import PlausibilityWarning
+    from wetlandflow.inputs.sar_units import check_sar_units
+
+    rng = np.random.default_rng(0)
+    power = xr.DataArray(rng.gamma(4.0, 0.05 / 4.0, 5000))  # median about 0.05: linear power
+    amplitude = np.sqrt(power) * 1.8  # median about 0.4: amplitude
+    with pytest.warns(PlausibilityWarning, match=r"declared units = 'linear' .*set units = \"amplitude\""):
+        check_sar_units(amplitude, "linear", name="sar_a.tif")
+    with pytest.warns(PlausibilityWarning, match=r"declared units = 'amplitude' .*set units = \"linear\""):
+        check_sar_units(power, "amplitude", name="sar_p.tif")
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", PlausibilityWarning)
+        assert check_sar_units(power, "linear")["likely_units"] in ("linear", "linear or amplitude")
+
+
+def test_dem_in_centimetres_declared_metres_is_warned():
+    from wetlandflow.errors import PlausibilityWarning
+    from wetlandflow.inputs.layers import dem_range_warning
+
+    metres = np.linspace(2.0, 38.0, 400)  # a lowland: 36 m of relief over about 1.8 km
+    assert dem_range_warning(metres, "m", extent_m=1800.0, name="dem.tif") is None
+    with pytest.warns(PlausibilityWarning, match=r"\[dem\.units\] the DEM dem_cm\.tif .*centimetres"):
+        dem_range_warning(metres * 100, "m", extent_m=1800.0, name="dem_cm.tif")
+
+
+def test_one_file_for_two_dates_is_warned(demo, tmp_path):
+    import shutil as shutil_module
+
+    from wetlandflow.errors import PlausibilityWarning
+    from wetlandflow.features.plausibility import duplicate_inputs
+
+    doc = copy.deepcopy(demo.doc)
+    copy_path = tmp_path / "copy_of_first.tif"
+    shutil_module.copy(demo.folder / doc["optical"][0]["path"], copy_path)  # another name, same content
+    doc["optical"][1]["path"] = str(copy_path)
+    (demo.folder / "dup.toml").write_text(tomli_w.dumps(doc))
+    with pytest.warns(
+        PlausibilityWarning, match=r"optical\[0\] .* and optical\[1\] .*copy_of_first\.tif.*same"
+    ):
+        found = duplicate_inputs(load_project(demo.folder / "dup.toml"))
+    assert len(found) == 1
+    assert duplicate_inputs(load_project(demo.base_file)) == []
+
+
+def test_plot_warnings_reach_the_manifest_and_the_summary(demo, tmp_path, capsys):
+    """Overlapping plots with different labels and one id on two features with one label: the run goes on,
+    and manifest.json and the printed summary keep both warnings."""
+    doc = copy.deepcopy(demo.doc)
+    plots = gpd.read_file(demo.folder / doc["plots"]["path"])
+    other = plots.index[plots["label"] != plots.loc[0, "label"]][0]
+    plots.loc[other, "geometry"] = affinity.translate(plots.geometry[0], 3.0, 0.0)  # overlaps plot 0
+    same = plots.index[(plots["label"] == plots.loc[1, "label"]) & (plots.index > 1)][0]
+    plots.loc[same, "plot_id"] = plots.loc[1, "plot_id"]
+    plots.to_file(tmp_path / "plots_warn.gpkg", layer="plots")
+    doc["plots"]["path"] = str(tmp_path / "plots_warn.gpkg")
+    doc["project"]["output_dir"] = str(tmp_path / "run")
+    (tmp_path / "run").mkdir()
+    shutil.copytree(demo.run_dir / "features.zarr", tmp_path / "run" / "features.zarr")
+    shutil.copy(demo.run_dir / "manifest.json", tmp_path / "run" / "manifest.json")
+    project_file = demo.folder / "plot_warnings.toml"
+    project_file.write_text(tomli_w.dumps(doc))
+    assert main(["run", "--quiet", str(project_file)]) == 0
+    kept = json.loads((tmp_path / "run" / "manifest.json").read_text())["plausibility_warnings"]
+    messages = " | ".join(w["message"] for w in kept)
+    assert "overlapping plots with different labels" in messages and "same label" in messages, messages
+    assert {w["step"] for w in kept} == {"samples"}
+    from wetlandflow.pipeline.run import RunResult, format_summary
+
+    summary = format_summary(
+        RunResult(
+            tmp_path / "run",
+            json.loads((tmp_path / "run" / "manifest.json").read_text()),
+            pd.read_csv(tmp_path / "run" / "areas.csv"),
+            {},
+        )
+    )
+    assert "Plausibility warnings (2" in summary and "overlapping plots" in summary
+
+
+def test_a_south_up_raster_is_read_like_its_north_up_twin(demo, tmp_path):
+    """A positive y pixel size (first row at the bottom) is valid GeoTIFF: same values on the grid."""
+    from wetlandflow.inputs.layers import load_optical, project_grid
+
+    src = demo.folder / demo.doc["optical"][0]["path"]
+    with rasterio.open(src) as s:
+        t, h = s.transform, s.height
+    south_up = rewrite_raster(
+        src,
+        tmp_path / "south_up.tif",
+        lambda a: a[:, ::-1, :],
+        transform=Affine(t.a, 0, t.c, 0, -t.e, t.f + t.e * h),
+    )
+    doc = copy.deepcopy(demo.doc)
+    doc["optical"][0]["path"] = str(south_up)
+    (demo.folder / "south_up.toml").write_text(tomli_w.dumps(doc))
+    flipped, base = load_project(demo.folder / "south_up.toml"), load_project(demo.base_file)
+    grid = project_grid(base)
+    assert project_grid(flipped) == grid
+    a = load_optical(flipped, grid, chunks=128).isel(time=0).values
+    b = load_optical(base, grid, chunks=128).isel(time=0).values
+    np.testing.assert_array_equal(a, b)
+
+
+def test_inputs_no_selected_feature_reads_are_not_checked(demo, tmp_path):
+    """The base project selects optical and terrain features only: SAR in dB declared linear is no refusal."""
+    from wetlandflow.inputs.layers import load_inputs, needed_inputs
+
+    doc = copy.deepcopy(demo.doc)
+    doc["sar"][0]["path"] = str(to_db(demo.folder / doc["sar"][0]["path"], tmp_path / "sar_db.tif"))
+    (demo.folder / "sar_unused.toml").write_text(tomli_w.dumps(doc))
+    project = load_project(demo.folder / "sar_unused.toml")
+    assert needed_inputs(project) == {"optical", "dem"}
+    inputs = load_inputs(project)
+    assert inputs.sar is None and inputs.optical is not None and inputs.dem is not None
+
+
+def test_a_byte_order_mark_at_the_start_of_the_project_file_is_accepted(demo):
+    text = demo.base_file.read_text(encoding="utf-8")
+    with_bom = demo.folder / "bom.toml"
+    with_bom.write_bytes(b"\xef\xbb\xbf" + text.encode("utf-8"))
+    assert load_project(with_bom).classes == load_project(demo.base_file).classes
