@@ -1619,6 +1619,10 @@ def test_plot_warnings_reach_the_manifest_and_the_summary(demo, tmp_path, capsys
         )
     )
     assert "Plausibility warnings (2" in summary and "overlapping plots" in summary
+    from wetlandflow.pipeline.check import check_project
+
+    notes = " | ".join(check_project(project_file).notes)
+    assert "overlapping plots with different labels" in notes and "same label" in notes, notes
 
 
 def test_a_south_up_raster_is_read_like_its_north_up_twin(demo, tmp_path):

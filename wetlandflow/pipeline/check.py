@@ -17,7 +17,7 @@ from typing import Any
 
 import pandas as pd
 
-from ..errors import ProjectFileError
+from ..errors import PlausibilityWarning, ProjectFileError
 from ..features.cube import plan_features
 from ..features.plausibility import ReflectanceWarning, plausibility_checks
 from ..inputs.grid import Grid
@@ -143,15 +143,18 @@ def check_project(project: Project | str | Path) -> CheckReport:
         )
     check_memory(estimate_memory_bytes(project, grid), project.output.memory_budget_gb)
     raw = read_vector(project.plots.path, layer=project.plots.layer or None, what="plot file", key="plots.layer")
-    plots = read_plots(
-        project.plots.path,
-        layer=project.plots.layer,
-        class_field=project.plots.class_field,
-        id_field=project.plots.id_field,
-        classes=project.classes.names,
-        grid=grid,
-        aoi=read_aoi(project),
-    )
+    with warnings.catch_warnings(record=True) as caught_plots:
+        warnings.simplefilter("always", PlausibilityWarning)
+        plots = read_plots(
+            project.plots.path,
+            layer=project.plots.layer,
+            class_field=project.plots.class_field,
+            id_field=project.plots.id_field,
+            classes=project.classes.names,
+            grid=grid,
+            aoi=read_aoi(project),
+        )
+    caught += caught_plots
     px = plot_pixels(
         plots,
         grid,
@@ -162,7 +165,7 @@ def check_project(project: Project | str | Path) -> CheckReport:
     check_class_plots(px, plots, project.classes.names, where=f"plot file {project.plots.path}",
                       pixel_size_m=grid.resolution)
     table = _plot_table(project, plots, px)
-    ours = (InputCoverageWarning, ReflectanceWarning)
+    ours = (InputCoverageWarning, ReflectanceWarning, PlausibilityWarning)
     notes = list(dict.fromkeys(str(w.message) for w in caught if issubclass(w.category, ours)))
     notes += _fold_notes(project, grid, px)
     info = {
