@@ -104,5 +104,7 @@ class Cancelled(WetlandflowError):
 
 
 class PlausibilityWarning(UserWarning):
-    """Inputs that are valid but look wrong (a unit, a duplicated file, overlapping plots); a run records every
-    such warning in ``manifest.json`` (``plausibility_warnings``) and shows it in its summary."""
+    """Inputs that are valid but look wrong (a unit, a duplicated file, overlapping plots).
+
+    A run records every such warning in ``manifest.json`` (``plausibility_warnings``) and shows it in its
+    summary."""

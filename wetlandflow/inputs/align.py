@@ -82,7 +82,8 @@ def inspect_raster(path: str | Path) -> RasterInfo:
                      boundless=True)
             return RasterInfo(
                 str(path), src.crs.to_string(), src.count, src.width, src.height, src.dtypes[0], src.nodata,
-                (abs(src.transform.a), abs(src.transform.e)), _ordered_bounds(src.bounds), tuple(src.descriptions),
+                (abs(src.transform.a), abs(src.transform.e)), _ordered_bounds(src.bounds),
+                tuple(src.descriptions),
             )
     except AlignmentError:
         raise
@@ -158,7 +159,8 @@ def _read_block(_template: np.ndarray, path: str, grid: Grid, bands: list[int], 
             fill_value = nodata if nodata is not None else 0
             if same[3]:  # south-up: grid rows r0..r1 are file rows counted from the bottom
                 w = Window(c0 + same[2], src.height - (r1 + same[1]), c1 - c0, r1 - r0)
-                data = src.read(bands, window=w, boundless=True, fill_value=fill_value, masked=False)[:, ::-1, :]
+                data = src.read(bands, window=w, boundless=True, fill_value=fill_value, masked=False)
+                data = data[:, ::-1, :]
             else:
                 w = Window(c0 + same[2], r0 + same[1], c1 - c0, r1 - r0)
                 data = src.read(bands, window=w, boundless=True, fill_value=fill_value, masked=False)

@@ -200,7 +200,8 @@ def read_vector(path: str | Path, *, layer: str | None = None, what: str = "vect
     layers = vector_layers(path)
     set_it = f"set {key} in the project file" if key else "name the layer"
     if not layer and len(layers) > 1:
-        raise InputFileError(f"the {what} holds {len(layers)} layers ({', '.join(sorted(layers))}) and no layer is named; "
+        raise InputFileError(f"the {what} holds {len(layers)} layers ({', '.join(sorted(layers))}) and no "
+                             "layer is named; "
                              f"{set_it} to the one to read (e.g. {key or 'layer'} = {sorted(layers)[0]!r})",
                              path=str(path))
     if layer and layers and layer not in layers:

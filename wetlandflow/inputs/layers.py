@@ -129,15 +129,17 @@ def project_grid(project: Project) -> Grid:
     grid = Grid.from_bbox(tuple(aoi.total_bounds), crs=crs, resolution=res, anchor=anchor)
     if min(grid.width, grid.height) < MIN_GRID_SIDE:
         key = "grid.pixel_size_m" if project.grid.pixel_size_m else "grid.align_to"
+        x0, y0, x1, y1 = aoi.total_bounds
         raise ProjectFileError(
-            f"pixels of {res:g} m give a grid of only {grid.height} x {grid.width} over the AOI; a map (and the "
-            f"checks of every input on it) needs at least {MIN_GRID_SIDE} pixels a side. Set grid.pixel_size_m "
-            f"to at most {min(aoi.total_bounds[2] - aoi.total_bounds[0], aoi.total_bounds[3] - aoi.total_bounds[1]) / MIN_GRID_SIDE:.0f} m"
-            " (0 = the reference input's pixel size)", key=key, file=str(project.file))
+            f"pixels of {res:g} m give a grid of only {grid.height} x {grid.width} over the AOI; a map (and "
+            f"the checks of every input on it) needs at least {MIN_GRID_SIDE} pixels a side. Set "
+            f"grid.pixel_size_m to at most {min(x1 - x0, y1 - y0) / MIN_GRID_SIDE:.0f} m (0 = the reference "
+            "input's pixel size)", key=key, file=str(project.file))
     return grid
 
 
-MIN_GRID_SIDE = 10  # pixels a side of the smallest grid worth mapping (a rule of thumb: common practice, no source)
+# pixels a side of the smallest grid worth mapping (a rule of thumb: common practice, no source)
+MIN_GRID_SIDE = 10
 
 
 def _optical_scene(scene, grid: Grid, chunks: int) -> xr.DataArray:
@@ -324,8 +326,9 @@ ELEVATION_RANGE_M = (-450.0, 8850.0)
 
 
 def dem_range_warning(values: np.ndarray, units: str, *, extent_m: float, name: str) -> str | None:
-    """Warn (:class:`~wetlandflow.errors.PlausibilityWarning`) when elevations contradict their declared unit:
-    beyond the elevations of land, or a relief steeper than the area is wide (centimetres declared as metres)."""
+    """Warn (:class:`~wetlandflow.errors.PlausibilityWarning`) when elevations contradict their declared
+    unit: beyond the elevations of land, or a relief steeper than the area is wide (centimetres declared as
+    metres)."""
     from ..errors import PlausibilityWarning
 
     v = values[np.isfinite(values)] * (0.3048 if units == "ft" else 1.0)
@@ -338,8 +341,9 @@ def dem_range_warning(values: np.ndarray, units: str, *, extent_m: float, name: 
         return None
     why = (f"beyond the elevations of land ({ELEVATION_RANGE_M[0]:g} to {ELEVATION_RANGE_M[1]:g} m)" if beyond
            else f"a relief of {hi - lo:,.0f} m over an area {extent_m:,.0f} m across")
-    message = (f"[dem.units] the DEM {name} declared in {'feet' if units == 'ft' else 'metres'} holds elevations "
-               f"from {lo:,.1f} to {hi:,.1f} m, {why}: the values may be in another unit (centimetres, "
+    unit = "feet" if units == "ft" else "metres"
+    message = (f"[dem.units] the DEM {name} declared in {unit} holds elevations from {lo:,.1f} to "
+               f"{hi:,.1f} m, {why}: the values may be in another unit (centimetres, "
                "decimetres). Convert the file to metres (or feet and set dem.units = 'ft'); slope, TWI and "
                "height above drainage scale with it")
     warnings.warn(message, PlausibilityWarning, stacklevel=3)
@@ -388,8 +392,8 @@ def check_dem(project: Project, grid: Grid, aoi, *, max_nodata_share: float = 0.
         return float("nan")
     values = values_on_coarse_grid(dem.path, coarse, nodata=dem.nodata)
     share = float(np.isfinite(values)[inside].mean())
-    dem_range_warning(values[inside], dem.units, extent_m=float(np.hypot(grid.width, grid.height) * grid.resolution),
-                      name=dem.path.name)
+    extent = float(np.hypot(grid.width, grid.height) * grid.resolution)
+    dem_range_warning(values[inside], dem.units, extent_m=extent, name=dem.path.name)
     if share < 1.0 - max_nodata_share:
         raise DataQualityError(
             f"[dem.path] the DEM {dem.path.name} has no elevation over {1 - share:.0%} of the area of "
@@ -520,11 +524,12 @@ def check_aoi_covered(project: Project, grid: Grid, aoi, *, max_uncovered: float
         return 0.0
     uncovered = area.difference(unary_union(footprints)).area / area.area
     if uncovered > max_uncovered:
+        aoi_bounds = tuple(round(v) for v in aoi.to_crs(grid.crs).total_bounds)
+        raster_bounds = tuple(round(v) for v in unary_union(footprints).bounds)
         raise AlignmentError(
-            f"[area.aoi] the AOI {project.area.aoi.name} reaches beyond every input raster: {uncovered:.0%} of "
-            f"its area (AOI bounds {tuple(round(v) for v in aoi.to_crs(grid.crs).total_bounds)}, rasters up to "
-            f"{tuple(round(v) for v in unary_union(footprints).bounds)} in {grid.crs}) has no image. Shrink "
-            "the AOI to the rasters' extent, or add rasters that cover it")
+            f"[area.aoi] the AOI {project.area.aoi.name} reaches beyond every input raster: {uncovered:.0%} "
+            f"of its area (AOI bounds {aoi_bounds}, rasters up to {raster_bounds} in {grid.crs}) has no "
+            "image. Shrink the AOI to the rasters' extent, or add rasters that cover it")
     return uncovered
 
 

@@ -309,15 +309,16 @@ def _build(cls: type, table: Any, key: str, root: Path, fixed: dict[str, Any] | 
         if name in table:
             kwargs[name] = _coerce(table[name], hints[name], sub, root)
         elif f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING:
-            raise ProjectFileError(f"missing required key {name!r}; add it to the project file (docs/project-file.md "
-                                   "shows every key)", key=sub)
+            raise ProjectFileError(f"missing required key {name!r}; add it to the project file "
+                                   "(docs/project-file.md shows every key)", key=sub)
     return cls(**kwargs)
 
 
 # -- semantic checks ---------------------------------------------------------------------
 def _check_choice(value: str, allowed: tuple[str, ...], key: str) -> None:
     if value not in allowed:
-        raise ProjectFileError(f"{value!r} is not one of {', '.join(allowed)}; set {key} to one of these", key=key)
+        raise ProjectFileError(f"{value!r} is not one of {', '.join(allowed)}; set {key} to one of these",
+                               key=key)
 
 
 def _require_file(path: Path | None, key: str) -> None:
@@ -348,8 +349,8 @@ def _check_seasons(seasons: dict[str, tuple[str, str]]) -> None:
         a, b = (_month_day(s, f"seasons.{name}") for s in window)
         if b < a:
             raise ProjectFileError(
-                f"season ends ({window[1]}) before it starts ({window[0]}); windows may not wrap the year: split "
-                "it into two seasons (one ending 12-31, one starting 01-01) or swap the dates",
+                f"season ends ({window[1]}) before it starts ({window[0]}); windows may not wrap the year: "
+                "split it into two seasons (one ending 12-31, one starting 01-01) or swap the dates",
                 key=f"seasons.{name}",
             )
         spans.append((a, b, name))
@@ -376,8 +377,8 @@ def _check_season_scenes(p: Project) -> None:
 
 def _check_classes(c: ClassesSection) -> None:
     if len(c.names) < 2:
-        raise ProjectFileError(f"a class scheme needs at least two classes, got {list(c.names)}; list every class "
-                               "the plots are labelled with", key="classes.names")
+        raise ProjectFileError(f"a class scheme needs at least two classes, got {list(c.names)}; list every "
+                               "class the plots are labelled with", key="classes.names")
     if len(set(c.names)) != len(c.names):
         dup = sorted({n for n in c.names if c.names.count(n) > 1})
         raise ProjectFileError(f"duplicate class names: {dup}; list each class once", key="classes.names")
@@ -389,12 +390,13 @@ def _check_classes(c: ClassesSection) -> None:
         for child in children:
             if child not in c.names:
                 raise ProjectFileError(
-                    f"unknown class {child!r}; known classes: {', '.join(c.names)}. Correct the name or add the "
-                    "class to [classes].names", key=f"classes.parents.{parent}"
+                    f"unknown class {child!r}; known classes: {', '.join(c.names)}. Correct the name or add "
+                    "the class to [classes].names", key=f"classes.parents.{parent}"
                 )
             if child in seen:
                 raise ProjectFileError(
-                    f"class {child!r} is under both {seen[child]!r} and {parent!r}; put each class in one group",
+                    f"class {child!r} is under both {seen[child]!r} and {parent!r}; put each class in one "
+                    "group",
                     key=f"classes.parents.{parent}"
                 )
             seen[child] = parent
@@ -492,8 +494,8 @@ def _validate(p: Project) -> None:
     check_model_section(p)
     _check_choice(p.samples.missing, ("keep", "drop"), "samples.missing")
     if not 0 <= p.model.max_plot_share <= 1:
-        raise ProjectFileError(f"max_plot_share must be in [0, 1] (0 = no cap), got {p.model.max_plot_share}; set "
-                               "model.max_plot_share to a value in that range",
+        raise ProjectFileError("max_plot_share must be in [0, 1] (0 = no cap), got "
+                               f"{p.model.max_plot_share}; set model.max_plot_share to a value in that range",
                                key="model.max_plot_share")
     _check_choice(p.validation.design, CV_DESIGNS, "validation.design")
     check_ranges(p)
@@ -555,9 +557,10 @@ def check_ranges(p: Project) -> None:
         below = value <= high if high_in else value < high
         if not (above and below):  # NaN fails both
             rng = _interval(low, high, low_in, high_in)
+            within = f"in {rng}" if rng[0] in "[(" else rng
             raise ProjectFileError(
-                f"{name} must be {'in ' if rng[0] in '[(' else ''}{rng} ({why}), got {value!r}; set {key} to a "
-                "value in that range", key=key)
+                f"{name} must be {within} ({why}), got {value!r}; set {key} to a value in that range",
+                key=key)
 
 
 # -- public API ----------------------------------------------------------------------------

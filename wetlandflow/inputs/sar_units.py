@@ -143,9 +143,9 @@ def _warn_ambiguous(what: str, declared: str, s: Mapping[str, Any], lim: Mapping
         other, typical = "linear", f"an amplitude median is usually above {lim['amplitude_typical_min']:g}"
     if other:
         s = {**s, "likely_units": other}
-        warnings.warn(f"{what} declared units = {declared!r} has median {s['median']:.3g}; {typical}. If the "
-                      f"file holds {other} values, set units = \"{other}\" in its [[sar]] table (a wrong unit "
-                      "squares or roots every backscatter value)", PlausibilityWarning, stacklevel=3)
+        warnings.warn(f"{what} declared units = {declared!r} has median {s['median']:.3g}; {typical}. If "
+                      f"the file holds {other} values, set units = \"{other}\" in its [[sar]] table (a wrong "
+                      "unit squares or roots every backscatter value)", PlausibilityWarning, stacklevel=3)
 
 
 def _units_message(what: str, declared: str, s: Mapping[str, Any]) -> str:

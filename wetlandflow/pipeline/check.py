@@ -142,7 +142,8 @@ def check_project(project: Project | str | Path) -> CheckReport:
             file=str(project.file),
         )
     check_memory(estimate_memory_bytes(project, grid), project.output.memory_budget_gb)
-    raw = read_vector(project.plots.path, layer=project.plots.layer or None, what="plot file", key="plots.layer")
+    raw = read_vector(project.plots.path, layer=project.plots.layer or None, what="plot file",
+                      key="plots.layer")
     with warnings.catch_warnings(record=True) as caught_plots:
         warnings.simplefilter("always", PlausibilityWarning)
         plots = read_plots(

@@ -274,7 +274,8 @@ def kept_warnings(manifest: Manifest, step: str):
         finally:
             for w in caught:
                 message = str(w.message)
-                if issubclass(w.category, PlausibilityWarning) and not any(k["message"] == message for k in kept):
+                known = any(k["message"] == message for k in kept)
+                if issubclass(w.category, PlausibilityWarning) and not known:
                     kept.append({"step": step, "message": message})
     for w in caught:
         warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
@@ -385,8 +386,8 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     samples_path = run_dir / "samples.parquet"
     if manifest.reusable("samples", k_samples, [samples_path], uses=[zarr_path]):
         samples = pd.read_parquet(samples_path)
-        manifest.data["plausibility_warnings"] += [w for w in manifest.previous.get("plausibility_warnings", [])
-                                                   if w.get("step") == "samples"]
+        earlier = manifest.previous.get("plausibility_warnings", [])
+        manifest.data["plausibility_warnings"] += [w for w in earlier if w.get("step") == "samples"]
     else:
         with (manifest.step("samples", k_samples, outputs=[samples_path], uses=[zarr_path]) as rec,
               kept_warnings(manifest, "samples")):
@@ -497,7 +498,8 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
 
 def _samples_step(project: Project, grid, cube, rec: dict[str, Any]) -> pd.DataFrame:
     plots = read_plots(project.plots.path, class_field=project.plots.class_field, id_field=project.plots.id_field,
-                       classes=project.classes.names, grid=grid, aoi=read_aoi(project), layer=project.plots.layer)
+                       classes=project.classes.names, grid=grid, aoi=read_aoi(project),
+                       layer=project.plots.layer)
     px = plot_pixels(plots, grid, inward_buffer_m=project.samples.inward_buffer_m,
                      max_pixels_per_plot=project.samples.max_pixels_per_plot, seed=project.project.seed)
     check_class_plots(px, plots, project.classes.names, where=f"plot file {project.plots.path}",
@@ -666,7 +668,8 @@ def format_summary(result: RunResult) -> str:
                          if moved else "every input file lies on its pixels (no resampling)")]
     plausibility = result.manifest.get("plausibility_warnings", [])
     if plausibility:
-        lines += ["", f"Plausibility warnings ({len(plausibility)}; also in manifest.json plausibility_warnings):"]
+        lines += ["", f"Plausibility warnings ({len(plausibility)}; also in manifest.json "
+                      "plausibility_warnings):"]
         lines += [f"  - {w['message']}" for w in plausibility]
     skipped = steps.get("features", {}).get("skipped")
     if skipped:

@@ -30,8 +30,8 @@ def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...
     gdf = read_vector(path, layer=layer or None, what="plot file", key="plots.layer")
     where = f"plot file {path}" + (f" (layer {layer!r})" if layer else "")
     if len(gdf) == 0:
-        raise SamplesError(f"{where}: the file holds no plot (no feature); add the labelled plots to it, or set "
-                           "plots.path (and plots.layer) to the file and layer that hold them")
+        raise SamplesError(f"{where}: the file holds no plot (no feature); add the labelled plots to it, or "
+                           "set plots.path (and plots.layer) to the file and layer that hold them")
     if class_field not in gdf.columns:
         raise SamplesError(f"{where}: no class field {class_field!r}; fields are {list(gdf.columns.drop('geometry'))}. "
                            "Set plots.class_field in the project file")
@@ -101,7 +101,8 @@ def plot_warnings(gdf, where: str) -> list[str]:
         pairs = pairs[(pairs["class_left"] != pairs["class_right"])
                       & (pairs["plot_id_left"] < pairs["plot_id_right"])]
         # shared area, not a shared edge (neighbouring plots drawn against each other touch)
-        other = gpd.GeoSeries(polys.geometry.loc[pairs["index_right"]].to_numpy(), index=pairs.index, crs=polys.crs)
+        other = gpd.GeoSeries(polys.geometry.loc[pairs["index_right"]].to_numpy(), index=pairs.index,
+                              crs=polys.crs)
         pairs = pairs[pairs.geometry.intersection(other).area > 0]
         if len(pairs):
             shown = [f"{a} ({ca}) / {b} ({cb})" for a, ca, b, cb in pairs[
@@ -130,9 +131,9 @@ def check_class_plots(pixels: pd.DataFrame, plots, classes: tuple[str, ...], *, 
                        f"{c!r}: {int(n_plots[c])} plot(s), none holding a pixel centre"
                        + (f" of the {pixel_size_m:g} m grid" if pixel_size_m else "") for c in empty)
     raise SamplesError(f"{where}: class(es) of the scheme without training data ({detail}); the model "
-                       "could never map them. Add plots of these classes to the plot file (or, for plots smaller "
-                       "than a pixel, use a smaller grid.pixel_size_m), or remove the classes from [classes].names "
-                       "(and [classes.parents]) in the project file")
+                       "could never map them. Add plots of these classes to the plot file (or, for plots "
+                       "smaller than a pixel, use a smaller grid.pixel_size_m), or remove the classes from "
+                       "[classes].names (and [classes.parents]) in the project file")
 
 
 def _check_geometries(gdf, where: str) -> None:

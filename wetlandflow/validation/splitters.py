@@ -414,17 +414,17 @@ def check_splits(
     plots = _groups_or_rows(groups, y_arr.size)
     splits = list(splits)
     n_plots = pd.Series(plots).groupby(y_arr).nunique()
-    tested = {cls: [f for f, (_, test) in enumerate(splits) if (y_arr[np.asarray(test, dtype=int)] == cls).any()]
-              for cls in n_plots.index}
+    tested = {cls: [f for f, (_, test) in enumerate(splits)
+                    if (y_arr[np.asarray(test, dtype=int)] == cls).any()] for cls in n_plots.index}
     # warn only when the folds in use really leave the class out of a test side (a random pixel design
     # puts a one-plot class in every test fold: no warning is due there)
     few = n_plots[[n < len(splits) and len(tested[cls]) < len(splits) for cls, n in n_plots.items()]]
     for cls, n in few.items():
         absent = [f for f in range(len(splits)) if f not in tested[cls]]
         warnings.warn(
-            f"class {cls!r} has {n} plot(s) but there are {len(splits)} folds, so it is absent from the test "
-            f"side of fold(s) {absent}. Collect more plots, merge it with a similar class, or use fewer folds "
-            "(validation.n_folds in the project file).",
+            f"class {cls!r} has {n} plot(s) but there are {len(splits)} folds, so it is absent from the "
+            f"test side of fold(s) {absent}. Collect more plots, merge it with a similar class, or use fewer "
+            "folds (validation.n_folds in the project file).",
             FewPlotsWarning,
             stacklevel=3,
         )
@@ -474,9 +474,10 @@ def require_testable_folds(
             f"class {never[0]!r} ({n_plots[never[0]]} plot(s) in total) is in no test fold "
             f"(validation.design = {design!r}), so the cross-validated accuracy would never test it. Collect "
             "more plots of it, or use fewer folds (validation.n_folds)")
-    if len(set(y_arr[folds >= 0])) < 2:
+    n_tested = len(set(y_arr[folds >= 0]))
+    if n_tested < 2:
         raise ValidationDesignError(
-            f"the test folds hold {len(set(y_arr[folds >= 0]))} class(es) (validation.design = {design!r}): an "
+            f"the test folds hold {n_tested} class(es) (validation.design = {design!r}): an "
             "overall accuracy over fewer than two classes says nothing about the map. Collect plots of more "
             "classes, or use fewer folds (validation.n_folds)")
     idx = np.arange(folds.size)
