@@ -66,12 +66,37 @@ def project_variant(project_file: Path, name: str, **changes) -> Path:
     return out
 
 
+def _drop_thin_classes(folder: Path, doc: dict, *, min_plots: int) -> None:
+    """Leave out classes with fewer than ``min_plots`` plots (their plots and their names): a one-plot class
+    cannot be on both sides of plot-grouped folds, and a run refuses it."""
+    import geopandas as gpd
+
+    path = folder / doc["plots"]["path"]
+    plots = gpd.read_file(path)
+    field = doc["plots"].get("class_field", "class")
+    counts = plots[field].value_counts()
+    thin = {c for c in doc["classes"]["names"] if counts.get(c, 0) < min_plots}
+    if not thin:
+        return
+    plots[~plots[field].isin(thin)].to_file(path, layer=plots_layer(path))
+    doc["classes"]["names"] = [c for c in doc["classes"]["names"] if c not in thin]
+    for parent, children in doc["classes"].get("parents", {}).items():
+        doc["classes"]["parents"][parent] = [c for c in children if c not in thin]
+
+
+def plots_layer(path: Path) -> str:
+    import pyogrio
+
+    return str(pyogrio.list_layers(path)[0, 0])
+
+
 def tiny_project_doc(folder: Path, *, chunk_size: int) -> dict:
     """The project document of a 128 x 128 px demo with optical and terrain features only, a 30-tree model
     and 3 plot folds: the smallest project that runs end to end, for tests that corrupt or kill a run."""
     from wetlandflow.demo.landscape import make_demo
 
     doc = read_toml(make_demo(folder, size=128, seed=3, n_optical=3, n_sar=2))
+    _drop_thin_classes(folder, doc, min_plots=2)
     doc["features"] = {"select": ["optical", "terrain"]}
     doc["model"].update(n_estimators=30)
     doc["validation"].update(design="group", n_folds=3)

@@ -35,7 +35,7 @@ import tomli_w
 from affine import Affine
 from conftest import tiny_project_doc
 from shapely import affinity
-from shapely.geometry import LineString, Point, Polygon
+from shapely.geometry import LineString, MultiPoint, Point, Polygon
 
 from wetlandflow.errors import BudgetError, ModelError, OutputError, SamplesError
 from wetlandflow.inputs.project import load_project
@@ -255,6 +255,10 @@ def aoi_variant(make: Callable[[gpd.GeoDataFrame, Path], None]):
     return corrupt
 
 
+# the base project selects optical and terrain features: SAR files are read (and checked) only when selected
+SELECT_SAR = edit(lambda d: d["features"].update(select=["optical", "sar", "terrain"]))
+
+
 def raw_text(text: str):
     def corrupt(doc: dict, folder: Path, tmp: Path) -> str:
         return text
@@ -265,6 +269,100 @@ def raw_text(text: str):
 def output_under_a_file(doc: dict, folder: Path, tmp: Path) -> None:
     (tmp / "a_file").write_text("not a folder")
     doc["project"]["output_dir"] = str(tmp / "a_file" / "run")
+
+
+def output_is_a_file(doc: dict, folder: Path, tmp: Path) -> None:
+    (tmp / "run_file").write_text("not a folder")
+    doc["project"]["output_dir"] = str(tmp / "run_file")
+
+
+def plots_with_layers(*, layer: str | None = None, empty: bool = False):
+    """The plots written as two layers of one GeoPackage (``plots`` and a copy ``plots_2023``), or as one
+    empty layer; ``layer`` is the plots.layer key set (None: not set)."""
+
+    def corrupt(doc: dict, folder: Path, tmp: Path) -> None:
+        plots = gpd.read_file(folder / doc["plots"]["path"])
+        path = tmp / "plots_layers.gpkg"
+        if empty:
+            plots.iloc[:0].to_file(path, layer="plots")
+        else:
+            plots.to_file(path, layer="plots")
+            plots.to_file(path, layer="plots_2023", mode="a")
+        doc["plots"]["path"] = str(path)
+        if layer is not None:
+            doc["plots"]["layer"] = layer
+
+    return corrupt
+
+
+def aoi_with_two_layers(doc: dict, folder: Path, tmp: Path) -> None:
+    aoi = gpd.read_file(folder / doc["area"]["aoi"])
+    aoi.to_file(tmp / "aoi_layers.gpkg", layer="aoi")
+    aoi.to_file(tmp / "aoi_layers.gpkg", layer="aoi_buffered", mode="a")
+    doc["area"]["aoi"] = str(tmp / "aoi_layers.gpkg")
+    doc["area"].pop("layer", None)
+
+
+def drop_class(cls: str):
+    def change(g):
+        return g[g["label"] != cls].reset_index(drop=True)
+
+    return change
+
+
+def shrink_class(cls: str):
+    """Every plot of ``cls`` replaced by a 1 m circle on the pixel corner nearest its centre (the demo's
+    10 m pixels have edges on multiples of 10 m): no pixel centre falls inside."""
+
+    def change(g):
+        rows = g["label"] == cls
+        c = g.geometry[rows].centroid
+        corners = gpd.points_from_xy(np.round(c.x / 10) * 10, np.round(c.y / 10) * 10)
+        g.loc[rows, "geometry"] = gpd.GeoSeries(corners, crs=g.crs).buffer(1.0).to_numpy()
+        return g
+
+    return change
+
+
+def one_pixel_class(cls: str):
+    """One plot of ``cls`` left, as a single point: the class has one sample."""
+
+    def change(g):
+        g = keep_one_plot_of(cls)(g)
+        i = g.index[g["label"] == cls][0]
+        g.loc[i, "geometry"] = g.geometry[i].centroid
+        return g
+
+    return change
+
+
+def scale_aoi(factor: float):
+    def make(g: gpd.GeoDataFrame, p: Path) -> None:
+        g.set_geometry(g.geometry.scale(factor, factor, origin=g.union_all().centroid)).to_file(
+            p, layer="aoi"
+        )
+
+    return make
+
+
+def utf16_text(doc: dict, folder: Path, tmp: Path) -> bytes:
+    return tomli_w.dumps(doc).encode("utf-16")
+
+
+def multipoint_plot(g):
+    c = g.geometry[0].centroid
+    g.loc[0, "geometry"] = MultiPoint([c, affinity.translate(c, 5, 5)])
+    return g
+
+
+def files_and_path(d: dict) -> None:
+    s = d["optical"][0]
+    s["files"] = {b: s["path"] for b in s["bands"]}
+
+
+def sar_files_missing_band(d: dict) -> None:
+    s = d["sar"][0]
+    s["files"] = {"VV": s.pop("path")}
 
 
 def garbage_gpkg(path: Path) -> Path:
@@ -282,6 +380,7 @@ class Case:
     names: str  # pattern: the file or the key the message must name
     fix: str  # pattern: what the message tells the user to do
     seeded: bool = False  # start from the base run's cube (the case fails at the samples or validation step)
+    check: bool = True  # ``wetlandflow check`` refuses it too, with the same message
 
 
 CASES = [
@@ -473,13 +572,13 @@ CASES = [
     ),
     Case(
         "sar-bands-mislabelled",
-        edit(lambda d: [s.update(bands=["HH", "HV"]) for s in d["sar"]]),
+        both(SELECT_SAR, edit(lambda d: [s.update(bands=["HH", "HV"]) for s in d["sar"]])),
         r"\[sar\[0\]\.bands\].*sar_\d+\.tif",
         r"List the bands in the file's order",
     ),
     Case(
         "sar-band-count",
-        edit(lambda d: [s.update(bands=["VV"]) for s in d["sar"]]),
+        both(SELECT_SAR, edit(lambda d: [s.update(bands=["VV"]) for s in d["sar"]])),
         r"sar_\d+\.tif",
         r"Fix the band list or the file",
     ),
@@ -523,13 +622,13 @@ CASES = [
     ),
     Case(
         "sar-linear-declared-db",
-        edit(lambda d: [s.update(units="db") for s in d["sar"]]),
+        both(SELECT_SAR, edit(lambda d: [s.update(units="db") for s in d["sar"]])),
         r"\[sar\[0\]\.units\].*sar_\d+\.tif",
         r'set units = "linear"',
     ),
     Case(
         "sar-db-declared-linear",
-        raster("sar", 0, to_db, "sar_db.tif"),
+        both(SELECT_SAR, raster("sar", 0, to_db, "sar_db.tif")),
         r"\[sar\[0\]\.units\].*sar_db\.tif",
         r'set units = "db"',
     ),
@@ -538,6 +637,7 @@ CASES = [
         edit(lambda d: d["features"].update(select=["optical", "sar", "terrain"])),
         r"\[seasons\]",
         r"Widen the window",
+        check=False,  # refused while the SAR season differences are built (the features step), after check
     ),
     # the AOI
     Case(
@@ -679,14 +779,444 @@ CASES = [
         r"Use smaller blocks or fewer folds",
         seeded=True,
     ),
+    Case(
+        "model-no-trees",
+        edit(lambda d: d.setdefault("model", {}).update(n_estimators=0)),
+        r"\[model\.n_estimators\]",
+        r">= 1 \(number of trees",
+    ),
+    Case(
+        "model-learning-rate-zero",
+        edit(lambda d: d.setdefault("model", {}).update(learning_rate=0.0)),
+        r"\[model\.learning_rate\]",
+        r"in \(0, 1\]",
+    ),
+    Case(
+        "model-learning-rate-above-one",
+        edit(lambda d: d.setdefault("model", {}).update(learning_rate=1.5)),
+        r"\[model\.learning_rate\]",
+        r"in \(0, 1\]",
+    ),
+    Case(
+        "model-learning-rate-nan",
+        edit(lambda d: d.setdefault("model", {}).update(learning_rate=float("nan"))),
+        r"\[model\.learning_rate\]",
+        r"got nan; set model\.learning_rate to a value in that range",
+    ),
+    Case(
+        "model-depth-negative",
+        edit(lambda d: d.setdefault("model", {}).update(max_depth=-1)),
+        r"\[model\.max_depth\]",
+        r">= 0 \(0 = no depth limit\)",
+    ),
+    Case(
+        "model-threads-zero",
+        edit(lambda d: d.setdefault("model", {}).update(n_threads=0)),
+        r"\[model\.n_threads\]",
+        r"set model\.n_threads to a value in that range",
+    ),
+    Case(
+        "project-seed-negative",
+        edit(lambda d: d.setdefault("project", {}).update(seed=-1)),
+        r"\[project\.seed\]",
+        r"in \[0, 4\.29497e\+09\]",
+    ),
+    Case(
+        "project-seed-too-large",
+        edit(lambda d: d.setdefault("project", {}).update(seed=2**40)),
+        r"\[project\.seed\]",
+        r"set project\.seed to a value in that range",
+    ),
+    Case(
+        "validation-block-size-zero",
+        edit(lambda d: d.setdefault("validation", {}).update(block_size_m=0.0)),
+        r"\[validation\.block_size_m\]",
+        r"> 0 \(side of the square blocks",
+    ),
+    Case(
+        "validation-block-size-infinite",
+        edit(lambda d: d.setdefault("validation", {}).update(block_size_m=float("inf"))),
+        r"\[validation\.block_size_m\]",
+        r"got inf; set validation\.block_size_m",
+    ),
+    Case(
+        "samples-no-pixels",
+        edit(lambda d: d.setdefault("samples", {}).update(max_pixels_per_plot=0)),
+        r"\[samples\.max_pixels_per_plot\]",
+        r"set samples\.max_pixels_per_plot to a value",
+    ),
+    Case(
+        "samples-negative-buffer",
+        edit(lambda d: d.setdefault("samples", {}).update(inward_buffer_m=-5.0)),
+        r"\[samples\.inward_buffer_m\]",
+        r">= 0 \(metres, 0 = no buffer\)",
+    ),
+    Case(
+        "output-explain-rows-zero",
+        edit(lambda d: d.setdefault("output", {}).update(explain_rows=0)),
+        r"\[output\.explain_rows\]",
+        r"set output\.explain_rows to a value",
+    ),
+    Case(
+        "output-explain-window-zero",
+        edit(lambda d: d.setdefault("output", {}).update(explain_window=0)),
+        r"\[output\.explain_window\]",
+        r"set output\.explain_window to a value",
+    ),
+    Case(
+        "output-explain-seeds-negative",
+        edit(lambda d: d.setdefault("output", {}).update(explain_seeds=-2)),
+        r"\[output\.explain_seeds\]",
+        r"set output\.explain_seeds to a value",
+    ),
+    Case(
+        "output-memory-budget-zero",
+        edit(lambda d: d.setdefault("output", {}).update(memory_budget_gb=0.0)),
+        r"\[output\.memory_budget_gb\]",
+        r"> 0 \(gigabytes\)",
+    ),
+    Case(
+        "output-mmu-zero",
+        edit(lambda d: d.setdefault("output", {}).update(mmu_pixels=0)),
+        r"\[output\.mmu_pixels\]",
+        r"1 keeps every patch",
+    ),
+    Case(
+        "output-connectivity-six",
+        edit(lambda d: d.setdefault("output", {}).update(connectivity=6)),
+        r"\[output\.connectivity\]",
+        r"set output\.connectivity = 4",
+    ),
+    Case(
+        "output-chunk-too-small",
+        edit(lambda d: d.setdefault("output", {}).update(chunk_size=32)),
+        r"\[output\.chunk_size\]",
+        r">= 64",
+    ),
+    Case(
+        "compute-no-workers",
+        edit(lambda d: d.setdefault("compute", {}).update(n_workers=0)),
+        r"\[compute\.n_workers\]",
+        r"set compute\.n_workers to a value",
+    ),
+    Case(
+        "grid-pixel-size-negative",
+        edit(lambda d: d.setdefault("grid", {}).update(pixel_size_m=-10.0)),
+        r"\[grid\.pixel_size_m\]",
+        r"set grid\.pixel_size_m to a value",
+    ),
+    Case(
+        "model-gate-threshold-one",
+        edit(lambda d: d.setdefault("model", {}).update(gate_threshold=1.0)),
+        r"\[model\.gate_threshold\]",
+        r"set model\.gate_threshold to a value in that range",
+    ),
+    Case(
+        "model-plot-share-above-one",
+        edit(lambda d: d.setdefault("model", {}).update(max_plot_share=1.5)),
+        r"\[model\.max_plot_share\]",
+        r"set model\.max_plot_share to a value",
+    ),
+    Case(
+        "model-kind-unknown",
+        edit(lambda d: d.setdefault("model", {}).update(kind="svm")),
+        r"\[model\.kind\]",
+        r"not one of xgboost, random_forest; set model\.kind",
+    ),
+    Case(
+        "validation-design-unknown",
+        edit(lambda d: d.setdefault("validation", {}).update(design="leave_one_out")),
+        r"\[validation\.design\]",
+        r"not one of blocks, group, random",
+    ),
+    Case(
+        "samples-missing-policy-unknown",
+        edit(lambda d: d.setdefault("samples", {}).update(missing="fill")),
+        r"\[samples\.missing\]",
+        r"not one of keep, drop",
+    ),
+    Case(
+        "grid-align-to-unknown",
+        edit(lambda d: d.setdefault("grid", {}).update(align_to="lidar")),
+        r"\[grid\.align_to\]",
+        r"set grid\.align_to to one of these",
+    ),
+    Case(
+        "model-wrong-type-trees",
+        edit(lambda d: d.setdefault("model", {}).update(n_estimators="300")),
+        r"\[model\.n_estimators\]",
+        r"expected a whole number",
+    ),
+    Case(
+        "model-wrong-type-rate",
+        edit(lambda d: d.setdefault("model", {}).update(learning_rate="fast")),
+        r"\[model\.learning_rate\]",
+        r"expected a number",
+    ),
+    Case(
+        "validation-folds-float",
+        edit(lambda d: d.setdefault("validation", {}).update(n_folds=2.5)),
+        r"\[validation\.n_folds\]",
+        r"expected a whole number",
+    ),
+    Case(
+        "model-gate-without-hierarchy",
+        edit(lambda d: d["model"].update(gate_threshold=0.5)),
+        r"\[model\.gate_threshold\]",
+        r"set model\.hierarchical = true, or remove gate_threshold",
+    ),
+    Case(
+        "model-hierarchy-without-parents",
+        edit(lambda d: (d["model"].update(hierarchical=True), d["classes"].pop("parents", None))),
+        r"\[model\.hierarchical\]",
+        r"add a \[classes\.parents\] table",
+    ),
+    Case(
+        "classes-parent-reserved-name",
+        edit(
+            lambda d: (
+                d["model"].update(hierarchical=True),
+                d["classes"].update(parents={"top": d["classes"]["names"][2:]}),
+            )
+        ),
+        r"\[classes\.parents\.top\]",
+        r"rename the group",
+    ),
+    Case(
+        "classes-parent-unknown-child",
+        edit(lambda d: d["classes"].update(parents={"wetland": ["mire"]})),
+        r"\[classes\.parents\.wetland\].*'mire'",
+        r"add the class to \[classes\]\.names",
+    ),
+    Case(
+        "classes-child-in-two-groups",
+        edit(lambda d: d["classes"].update(parents={"wet": ["fen"], "peat": ["fen"]})),
+        r"\[classes\.parents\.peat\]",
+        r"put each class in one group",
+    ),
+    Case(
+        "classes-only-one",
+        edit(lambda d: d["classes"].update(names=["upland"], parents={})),
+        r"\[classes\.names\]",
+        r"list every class the plots are labelled with",
+    ),
+    Case(
+        "classes-duplicated",
+        edit(lambda d: d["classes"].update(names=[*d["classes"]["names"], "fen"])),
+        r"\[classes\.names\]",
+        r"list each class once",
+    ),
+    Case(
+        "season-wraps-the-year",
+        edit(lambda d: d.update(seasons={"winter": ["11-01", "02-28"]})),
+        r"\[seasons\.winter\]",
+        r"split it into two seasons",
+    ),
+    Case(
+        "season-bad-month-day",
+        edit(lambda d: d["seasons"].update(summer=["06-01", "13-01"])),
+        r"\[seasons\.summer\]",
+        r"expected a month-day like '04-15'",
+    ),
+    Case(
+        "season-one-date",
+        edit(lambda d: d["seasons"].update(summer=["06-01"])),
+        r"\[seasons\.summer\]",
+        r"give two month-days",
+    ),
+    Case(
+        "project-no-image",
+        edit(lambda d: (d.pop("optical"), d.pop("sar"))),
+        r"\[optical\]",
+        r"add at least one \[\[optical\]\] or \[\[sar\]\] table",
+    ),
+    Case(
+        "optical-scale-zero",
+        edit(lambda d: d["optical"][0].update(scale=0.0)),
+        r"\[optical\[0\]\.scale\]",
+        r"set the factor that turns DN into reflectance",
+    ),
+    Case(
+        "optical-path-and-files",
+        edit(files_and_path),
+        r"\[optical\[0\]\]",
+        r"give exactly one of path \(one multi-band file\), files",
+    ),
+    Case(
+        "optical-plausibility-unknown",
+        edit(lambda d: d["optical"][0].update(plausibility="ignore")),
+        r"\[optical\[0\]\.plausibility\]",
+        r"not one of raise, warn",
+    ),
+    Case(
+        "optical-mask-missing",
+        edit(lambda d: d["optical"][1].update(mask="masks/none.tif")),
+        r"\[optical\[1\]\.mask\]",
+        r"fix the path or move the file",
+    ),
+    Case(
+        "sar-orbit-unknown",
+        edit(lambda d: d["sar"][0].update(orbit="up")),
+        r"\[sar\[0\]\.orbit\]",
+        r"not one of ascending, descending",
+    ),
+    Case(
+        "sar-unknown-polarisation",
+        edit(lambda d: d["sar"][1].update(bands=["VV", "XX"])),
+        r"\[sar\[1\]\.bands\]",
+        r"use VV, VH, HH, HV",
+    ),
+    Case(
+        "sar-per-band-files-incomplete",
+        edit(sar_files_missing_band),
+        r"\[sar\[0\]\.bands\]",
+        r"add their files or remove them from bands",
+    ),
+    Case(
+        "dem-units-centimetres",
+        edit(lambda d: d["dem"].update(units="cm")),
+        r"\[dem\.units\]",
+        r"not one of m, ft",
+    ),
+    Case(
+        "features-unknown-name",
+        edit(lambda d: d["features"].update(select=["optical", "ndvii"])),
+        r"features\.select",
+        r"'ndvii'",
+    ),
+    Case(
+        "project-empty-file",
+        raw_text(""),
+        r"\[project\]",
+        r"missing required key 'project'; add it to the project file",
+    ),
+    Case(
+        "project-duplicate-key",
+        raw_text('[model]\nkind = "xgboost"\nkind = "random_forest"\n'),
+        r"case_project-duplicate-key\.toml",
+        r"fix the syntax",
+    ),
+    Case(
+        "project-not-utf8",
+        utf16_text,
+        r"case_project-not-utf8\.toml",
+        r"save the file as UTF-8",
+    ),
+    Case(
+        "grid-pixels-too-large",
+        edit(lambda d: d.setdefault("grid", {}).update(pixel_size_m=2000.0)),
+        r"\[grid\.pixel_size_m\]",
+        r"Set grid\.pixel_size_m to at most \d+ m",
+    ),
+    Case(
+        "aoi-beyond-the-rasters",
+        aoi_variant(scale_aoi(1.6)),
+        r"\[area\.aoi\].*aoi_bad\.gpkg.*\d+% of its area",
+        r"Shrink the AOI to the rasters' extent",
+    ),
+    Case(
+        "aoi-two-layers-unnamed",
+        aoi_with_two_layers,
+        r"aoi_layers\.gpkg.*aoi, aoi_buffered",
+        r"set area\.layer in the project file",
+    ),
+    Case(
+        "plots-two-layers-unnamed",
+        plots_with_layers(),
+        r"plots_layers\.gpkg.*plots, plots_2023",
+        r"set plots\.layer in the project file",
+        seeded=True,
+    ),
+    Case(
+        "plots-layer-not-in-file",
+        plots_with_layers(layer="plot"),
+        r"plots_layers\.gpkg.*no layer 'plot'",
+        r"Correct plots\.layer",
+        seeded=True,
+    ),
+    Case(
+        "plots-empty-layer",
+        plots_with_layers(empty=True),
+        r"plots_layers\.gpkg",
+        r"add the labelled plots to it, or set plots\.path",
+        seeded=True,
+    ),
+    Case(
+        "plots-class-without-plots",
+        plots_variant(drop_class("fen")),
+        r"plots_bad\.gpkg.*'fen': no plot",
+        r"Add plots of these classes.*or remove the classes from \[classes\]\.names",
+        seeded=True,
+    ),
+    Case(
+        "plots-class-smaller-than-pixels",
+        plots_variant(shrink_class("marsh")),
+        r"plots_bad\.gpkg.*'marsh': \d+ plot\(s\), none holding a pixel centre",
+        r"use a smaller grid\.pixel_size_m\), or remove the classes",
+        seeded=True,
+    ),
+    Case(
+        "plots-multipoint",
+        plots_variant(multipoint_plot),
+        r"plots_bad\.gpkg.*OB-0001",
+        r"split multipoints into single points",
+        seeded=True,
+    ),
+    Case(
+        "group-folds-one-plot-class",
+        plots_variant(keep_one_plot_of("fen")),
+        r"class 'fen' \(1 plot\(s\) in total\) is missing from the training side "
+        r".*validation\.design = 'group'",
+        r"collect more plots of it, or use fewer folds",
+        seeded=True,
+    ),
+    Case(
+        "random-folds-one-pixel-class",
+        both(
+            plots_variant(one_pixel_class("fen")),
+            edit(lambda d: d["validation"].update(design="random", allow_random_pixels=True)),
+        ),
+        r"class 'fen' \(1 plot\(s\) in total\) is missing from the training side "
+        r".*validation\.design = 'random'",
+        r"collect more plots of it, or use fewer folds",
+        seeded=True,
+    ),
+    Case(
+        "folds-more-than-plots",
+        edit(lambda d: d["validation"].update(n_folds=500)),
+        r"validation\.n_folds = 500",
+        r"Use fewer folds or add plots",
+        seeded=True,
+    ),
+    Case(
+        "model-features-not-in-cube",
+        edit(lambda d: d["model"].update(features=["ndvi_midwinter"])),
+        r"\[model\.features\].*'ndvi_midwinter'",
+        r"correct the names",
+        seeded=True,
+        check=False,  # check does not build the cube whose variables it would compare with
+    ),
+    Case(
+        "output-dir-is-a-file",
+        output_is_a_file,
+        r"run_file",
+        r"choose another project\.output_dir",
+        check=False,
+    ),
     # the run folder
-    Case("output-folder-not-writable", output_under_a_file, r"a_file", r"choose another project\.output_dir"),
+    Case(
+        "output-folder-not-writable",
+        output_under_a_file,
+        r"a_file",
+        r"choose another project\.output_dir",
+        check=False,
+    ),
 ]
 
 
 def assert_no_final_outputs(run_dir: Path) -> None:
     """No final output, no temporary or partial file; besides the manifest, only outputs of finished steps."""
-    if not run_dir.exists():
+    if not run_dir.is_dir():  # never made, or the user's own file (a case names a file as the folder)
         return
     for rel in FINAL_OUTPUTS:
         assert not (run_dir / rel).exists(), f"{rel} was written by a refused run"
@@ -708,7 +1238,7 @@ def assert_no_final_outputs(run_dir: Path) -> None:
     assert {p.name for p in run_dir.iterdir()} <= allowed
 
 
-def run_case(demo: Demo, case: Case, tmp_path: Path, capsys) -> tuple[int, str, Path]:
+def run_case(demo: Demo, case: Case, tmp_path: Path, capsys, verb: str = "run") -> tuple[int, str, Path]:
     doc = copy.deepcopy(demo.doc)
     doc["project"]["output_dir"] = str(tmp_path / "run")
     text = case.corrupt(doc, demo.folder, tmp_path)
@@ -718,15 +1248,18 @@ def run_case(demo: Demo, case: Case, tmp_path: Path, capsys) -> tuple[int, str, 
         shutil.copytree(demo.run_dir / "features.zarr", run_dir / "features.zarr")
         shutil.copy(demo.run_dir / "manifest.json", run_dir / "manifest.json")
     project_file = demo.folder / f"case_{case.id}.toml"
-    project_file.write_text(text if isinstance(text, str) else tomli_w.dumps(doc))
+    if isinstance(text, bytes):
+        project_file.write_bytes(text)
+    else:
+        project_file.write_text(text if isinstance(text, str) else tomli_w.dumps(doc))
     capsys.readouterr()
-    rc = main(["run", "--quiet", str(project_file)])
+    rc = main([verb, "--quiet", str(project_file)] if verb == "run" else [verb, str(project_file)])
     return rc, capsys.readouterr().err, run_dir
 
 
 def test_the_catalogue_is_large_and_distinct():
     ids = [c.id for c in CASES]
-    assert len(ids) == len(set(ids)) >= 40
+    assert len(ids) == len(set(ids)) >= 100
 
 
 def test_the_base_project_is_valid(demo):
@@ -745,6 +1278,19 @@ def test_bad_input_is_refused_clearly(demo, case, tmp_path, capsys):
     assert re.search(case.names, message), f"the message does not name {case.names!r}: {message}"
     assert re.search(case.fix, message), f"the message does not say {case.fix!r}: {message}"
     assert_no_final_outputs(run_dir)
+
+
+@pytest.mark.parametrize("case", [c for c in CASES if c.check], ids=[c.id for c in CASES if c.check])
+def test_check_refuses_it_too(demo, case, tmp_path, capsys):
+    """``wetlandflow check`` refuses what the run refuses before any final output, in the same words."""
+    rc, err, run_dir = run_case(demo, case, tmp_path, capsys, verb="check")
+    assert rc == 2, err
+    assert "Traceback" not in err, err
+    message = " ".join(err.split())
+    assert re.search(case.names, message), f"the message does not name {case.names!r}: {message}"
+    assert re.search(case.fix, message), f"the message does not say {case.fix!r}: {message}"
+    if not case.seeded:
+        assert not run_dir.exists() or not any(run_dir.iterdir()), "check wrote into the run folder"
 
 
 def test_debug_shows_the_traceback_of_a_bad_input(demo, tmp_path):
@@ -943,3 +1489,181 @@ def test_a_plot_smaller_than_a_pixel_is_named_in_a_warning(demo):
     with pytest.warns(UserWarning, match=r"1 plot\(s\) contain no pixel centre.*\['tiny'\]"):
         px = plot_pixels(plots, grid)
     assert set(px["plot_id"]) == {"big"}
+
+
+# -- issue 18 part C: findings, one test each -------------------------------------------------------------
+
+
+def test_random_design_warns_only_what_is_true_and_hides_the_groups_warning(demo):
+    """The random design splits pixels: a one-plot class reaches every test fold, so no 'few plots' warning
+    is true there; scikit-learn's 'groups parameter is ignored' (KFold) must not reach the user either."""
+    import dataclasses
+    import warnings
+
+    from wetlandflow.pipeline.run import design_folds
+
+    project = load_project(demo.base_file)
+    project = dataclasses.replace(
+        project,
+        validation=dataclasses.replace(project.validation, design="random", allow_random_pixels=True),
+    )
+    samples = pd.read_parquet(demo.run_dir / "samples.parquet")
+    one_plot = samples["plot_id"] == samples.loc[samples["class"] == "fen", "plot_id"].iloc[0]
+    samples = samples[(samples["class"] != "fen") | one_plot].reset_index(drop=True)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        folds = design_folds(project, samples)
+    messages = [str(w.message) for w in caught]
+    assert not [m for m in messages if "groups parameter is ignored" in m], messages
+    assert not [m for m in messages if "'fen' has 1 plot(s)" in m], messages
+    assert set(folds[samples["class"].to_numpy() == "fen"]) == {0, 1, 2}  # the warning would have been false
+
+
+def test_a_named_plot_layer_is_the_one_read(demo, tmp_path):
+    from wetlandflow.inputs.layers import project_grid
+    from wetlandflow.training.samples import read_plots
+
+    project = load_project(demo.base_file)
+    plots = gpd.read_file(project.plots.path)
+    path = tmp_path / "two.gpkg"
+    plots.to_file(path, layer="plots")
+    plots.iloc[:12].to_file(path, layer="plots_2023", mode="a")
+    kwargs = dict(
+        class_field="label", id_field="plot_id", classes=project.classes.names, grid=project_grid(project)
+    )
+    assert len(read_plots(path, layer="plots_2023", **kwargs)) == 12
+    assert len(read_plots(path, layer="plots", **kwargs)) == len(plots)
+
+
+def test_sar_amplitude_and_power_in_the_overlap_are_warned():
+    """Values in the overlap of the two units (median 0.03 to 0.5) are accepted, with a warning when the
+    median sits on the other unit's side (limits: common practice, no source; see SAR_UNIT_LIMITS)."""
+    import xarray as xr
+
+    from wetlandflow.errors import PlausibilityWarning
+    from wetlandflow.inputs.sar_units import check_sar_units
+
+    rng = np.random.default_rng(0)
+    power = xr.DataArray(rng.gamma(4.0, 0.05 / 4.0, 5000))  # median about 0.05: linear power
+    amplitude = np.sqrt(power) * 1.8  # median about 0.4: amplitude
+    with pytest.warns(PlausibilityWarning, match=r"declared units = 'linear' .*set units = \"amplitude\""):
+        check_sar_units(amplitude, "linear", name="sar_a.tif")
+    with pytest.warns(PlausibilityWarning, match=r"declared units = 'amplitude' .*set units = \"linear\""):
+        check_sar_units(power, "amplitude", name="sar_p.tif")
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", PlausibilityWarning)
+        assert check_sar_units(power, "linear")["likely_units"] in ("linear", "linear or amplitude")
+
+
+def test_dem_in_centimetres_declared_metres_is_warned():
+    from wetlandflow.errors import PlausibilityWarning
+    from wetlandflow.inputs.layers import dem_range_warning
+
+    metres = np.linspace(2.0, 38.0, 400)  # a lowland: 36 m of relief over about 1.8 km
+    assert dem_range_warning(metres, "m", extent_m=1800.0, name="dem.tif") is None
+    with pytest.warns(PlausibilityWarning, match=r"\[dem\.units\] the DEM dem_cm\.tif .*centimetres"):
+        dem_range_warning(metres * 100, "m", extent_m=1800.0, name="dem_cm.tif")
+
+
+def test_one_file_for_two_dates_is_warned(demo, tmp_path):
+    import shutil as shutil_module
+
+    from wetlandflow.errors import PlausibilityWarning
+    from wetlandflow.features.plausibility import duplicate_inputs
+
+    doc = copy.deepcopy(demo.doc)
+    copy_path = tmp_path / "copy_of_first.tif"
+    shutil_module.copy(demo.folder / doc["optical"][0]["path"], copy_path)  # another name, same content
+    doc["optical"][1]["path"] = str(copy_path)
+    (demo.folder / "dup.toml").write_text(tomli_w.dumps(doc))
+    with pytest.warns(
+        PlausibilityWarning, match=r"optical\[0\] .* and optical\[1\] .*copy_of_first\.tif.*same"
+    ):
+        found = duplicate_inputs(load_project(demo.folder / "dup.toml"))
+    assert len(found) == 1
+    assert duplicate_inputs(load_project(demo.base_file)) == []
+
+
+def test_plot_warnings_reach_the_manifest_and_the_summary(demo, tmp_path, capsys):
+    """Overlapping plots with different labels and one id on two features with one label: the run goes on,
+    and manifest.json and the printed summary keep both warnings."""
+    doc = copy.deepcopy(demo.doc)
+    plots = gpd.read_file(demo.folder / doc["plots"]["path"])
+    other = plots.index[plots["label"] != plots.loc[0, "label"]][0]
+    plots.loc[other, "geometry"] = affinity.translate(plots.geometry[0], 3.0, 0.0)  # overlaps plot 0
+    same = plots.index[(plots["label"] == plots.loc[1, "label"]) & (plots.index > 1)][0]
+    plots.loc[same, "plot_id"] = plots.loc[1, "plot_id"]
+    plots.to_file(tmp_path / "plots_warn.gpkg", layer="plots")
+    doc["plots"]["path"] = str(tmp_path / "plots_warn.gpkg")
+    doc["project"]["output_dir"] = str(tmp_path / "run")
+    (tmp_path / "run").mkdir()
+    shutil.copytree(demo.run_dir / "features.zarr", tmp_path / "run" / "features.zarr")
+    shutil.copy(demo.run_dir / "manifest.json", tmp_path / "run" / "manifest.json")
+    project_file = demo.folder / "plot_warnings.toml"
+    project_file.write_text(tomli_w.dumps(doc))
+    assert main(["run", "--quiet", str(project_file)]) == 0
+    kept = json.loads((tmp_path / "run" / "manifest.json").read_text())["plausibility_warnings"]
+    messages = " | ".join(w["message"] for w in kept)
+    assert "overlapping plots with different labels" in messages and "same label" in messages, messages
+    assert {w["step"] for w in kept} == {"samples"}
+    from wetlandflow.pipeline.run import RunResult, format_summary
+
+    summary = format_summary(
+        RunResult(
+            tmp_path / "run",
+            json.loads((tmp_path / "run" / "manifest.json").read_text()),
+            pd.read_csv(tmp_path / "run" / "areas.csv"),
+            {},
+        )
+    )
+    assert "Plausibility warnings (2" in summary and "overlapping plots" in summary
+    from wetlandflow.pipeline.check import check_project
+
+    notes = " | ".join(check_project(project_file).notes)
+    assert "overlapping plots with different labels" in notes and "same label" in notes, notes
+
+
+def test_a_south_up_raster_is_read_like_its_north_up_twin(demo, tmp_path):
+    """A positive y pixel size (first row at the bottom) is valid GeoTIFF: same values on the grid."""
+    from wetlandflow.inputs.layers import load_optical, project_grid
+
+    src = demo.folder / demo.doc["optical"][0]["path"]
+    with rasterio.open(src) as s:
+        t, h = s.transform, s.height
+    south_up = rewrite_raster(
+        src,
+        tmp_path / "south_up.tif",
+        lambda a: a[:, ::-1, :],
+        transform=Affine(t.a, 0, t.c, 0, -t.e, t.f + t.e * h),
+    )
+    doc = copy.deepcopy(demo.doc)
+    doc["optical"][0]["path"] = str(south_up)
+    (demo.folder / "south_up.toml").write_text(tomli_w.dumps(doc))
+    flipped, base = load_project(demo.folder / "south_up.toml"), load_project(demo.base_file)
+    grid = project_grid(base)
+    assert project_grid(flipped) == grid
+    a = load_optical(flipped, grid, chunks=128).isel(time=0).values
+    b = load_optical(base, grid, chunks=128).isel(time=0).values
+    np.testing.assert_array_equal(a, b)
+
+
+def test_inputs_no_selected_feature_reads_are_not_checked(demo, tmp_path):
+    """The base project selects optical and terrain features only: SAR in dB declared linear is no refusal."""
+    from wetlandflow.inputs.layers import load_inputs, needed_inputs
+
+    doc = copy.deepcopy(demo.doc)
+    doc["sar"][0]["path"] = str(to_db(demo.folder / doc["sar"][0]["path"], tmp_path / "sar_db.tif"))
+    (demo.folder / "sar_unused.toml").write_text(tomli_w.dumps(doc))
+    project = load_project(demo.folder / "sar_unused.toml")
+    assert needed_inputs(project) == {"optical", "dem"}
+    inputs = load_inputs(project)
+    assert inputs.sar is None and inputs.optical is not None and inputs.dem is not None
+
+
+def test_a_byte_order_mark_at_the_start_of_the_project_file_is_accepted(demo):
+    text = demo.base_file.read_text(encoding="utf-8")
+    with_bom = demo.folder / "bom.toml"
+    with_bom.write_bytes(b"\xef\xbb\xbf" + text.encode("utf-8"))
+    assert load_project(with_bom).classes == load_project(demo.base_file).classes

@@ -79,8 +79,8 @@ CASES = {
         DataQualityError,
         "scale",
     ),
-    "SAR in dB declared linear": (
-        dict(dem=False, sar="stack", sar_units="db", extra=LIGHT),
+    "SAR in dB declared linear": (  # SAR features selected: a file no selected feature reads is not checked
+        dict(dem=False, sar="stack", sar_units="db", extra={"features": {"select": ["ndvi", "sar"]}}),
         DataQualityError,
         "units",
     ),

@@ -101,3 +101,10 @@ class Cancelled(WetlandflowError):
     """
 
     partial = None
+
+
+class PlausibilityWarning(UserWarning):
+    """Inputs that are valid but look wrong (a unit, a duplicated file, overlapping plots).
+
+    A run records every such warning in ``manifest.json`` (``plausibility_warnings``) and shows it in its
+    summary."""

@@ -161,7 +161,7 @@ def design_sample(project: Project | str | Path, *, target_se: float = 0.01,
         n = max(n, min_per_class * len(present))  # the floor must fit inside the total
     alloc = allocate(n, present, method=allocation, min_per_class=min_per_class)
     plots = read_plots(p.plots.path, class_field=p.plots.class_field, id_field=p.plots.id_field,
-                       classes=p.classes.names, grid=project_grid(p), aoi=None)
+                       classes=p.classes.names, grid=project_grid(p), aoi=None, layer=p.plots.layer)
     seed = p.project.seed if seed is None else seed
     gdf = draw_stratified_sample(cmap, alloc, seed=seed, exclude=plots, exclude_buffer_m=exclude_buffer_m,
                                  class_names=codes)

@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from ..errors import DataQualityError
+from ..errors import DataQualityError, PlausibilityWarning
 from ..inputs.scenes import sensor_of
 from .composite import check_reflectance
 
@@ -148,10 +148,42 @@ def sar_plausibility(project: Any, inputs: Any, *, max_side: int = 256) -> dict[
     step = max(1, max(inputs.grid.height, inputs.grid.width) // max_side)
     for scene, t in zip(sorted(project.sar, key=lambda s: s.date), inputs.sar["time"].values, strict=True):
         sub = inputs.sar.sel(time=t).isel(y=slice(None, None, step), x=slice(None, None, step)).compute()
-        out[f"sar {scene.date}"] = check_sar_units(sub, "linear", name=scene.label)
+        with warnings.catch_warnings():  # converted values: the declared unit was judged on the raw file
+            warnings.simplefilter("ignore", PlausibilityWarning)
+            out[f"sar {scene.date}"] = check_sar_units(sub, "linear", name=scene.label)
     return out
 
 
+def duplicate_inputs(project: Any) -> list[str]:
+    """Warn about one file given for two acquisitions (same content, by hash): two dates that are one.
+
+    Masks are left out (one mask for several scenes is unusual but not wrong in itself).
+    """
+    from ..inputs.io import fingerprint
+    from ..inputs.project import scene_files
+
+    seen: dict[str, str] = {}
+    found = []
+    for kind, scenes in (("optical", project.optical), ("sar", project.sar)):
+        for i, scene in enumerate(scenes):
+            for path, _ in scene_files(scene):
+                label = f"{kind}[{i}] ({scene.date}, {path.name})"
+                digest = fingerprint(path)
+                if digest in seen:
+                    found.append(f"{seen[digest]} and {label} are the same file content: one acquisition "
+                                 "given for two dates counts twice in every seasonal composite. Give each "
+                                 f"[[{kind}]] table its own file, or remove the copy")
+                else:
+                    seen[digest] = label
+    for message in found:
+        warnings.warn(message, PlausibilityWarning, stacklevel=2)
+    return found
+
+
 def plausibility_checks(project: Any, inputs: Any) -> dict[str, Any]:
-    """Reflectance (per sensor) and SAR unit checks on a sample of each layer; raise on a likely mislabel."""
-    return {**optical_plausibility(project, inputs), **sar_plausibility(project, inputs)}
+    """Reflectance (per sensor) and SAR unit checks on a sample of each layer; raise on a likely mislabel.
+
+    Also warns (:class:`~wetlandflow.errors.PlausibilityWarning`) about one file given for two dates."""
+    out = {**optical_plausibility(project, inputs), **sar_plausibility(project, inputs)}
+    out["duplicate_inputs"] = duplicate_inputs(project)
+    return out

@@ -62,6 +62,12 @@ class RasterInfo:
     descriptions: tuple[str | None, ...]
 
 
+def _ordered_bounds(b) -> tuple[float, float, float, float]:
+    """(xmin, ymin, xmax, ymax) whatever the row order: a south-up file (positive y pixel size, first row at
+    the bottom) is valid, and rasterio then gives a bottom above the top."""
+    return (min(b.left, b.right), min(b.bottom, b.top), max(b.left, b.right), max(b.bottom, b.top))
+
+
 def inspect_raster(path: str | Path) -> RasterInfo:
     """Read a raster's header, with clear errors for unreadable files and missing CRS."""
     try:
@@ -76,7 +82,8 @@ def inspect_raster(path: str | Path) -> RasterInfo:
                      boundless=True)
             return RasterInfo(
                 str(path), src.crs.to_string(), src.count, src.width, src.height, src.dtypes[0], src.nodata,
-                (abs(src.transform.a), abs(src.transform.e)), tuple(src.bounds), tuple(src.descriptions),
+                (abs(src.transform.a), abs(src.transform.e)), _ordered_bounds(src.bounds),
+                tuple(src.descriptions),
             )
     except AlignmentError:
         raise
@@ -119,19 +126,27 @@ def check_overlap(info: RasterInfo, grid: Grid, *, name: str) -> float:
     return frac
 
 
-def _is_same_grid(path: str, grid: Grid) -> tuple[bool, int, int]:
-    """True (with pixel offsets) when the file shares the grid's CRS, pixel size and pixel edges."""
+def _is_same_grid(path: str, grid: Grid) -> tuple[bool, int, int, bool]:
+    """True (with pixel offsets) when the file shares the grid's CRS, pixel size and pixel edges.
+
+    The fourth value says the file is south-up (positive y pixel size, first row at the bottom): its rows
+    are then read in reverse.  Reading it this way, not by warping, keeps the values exact (GDAL's bilinear
+    warp of a multi-band south-up file moves values slightly).
+    """
     with rasterio.open(path) as src:
         t = src.transform
+        height = src.height
         same_crs = src.crs is not None and rasterio.crs.CRS.from_user_input(grid.crs) == src.crs
     g = grid.transform
-    if not same_crs or not np.isclose(t.a, g.a) or not np.isclose(t.e, g.e) or t.b or t.d:
-        return False, 0, 0
+    flipped = bool(np.isclose(t.e, -g.e))
+    if not same_crs or not np.isclose(t.a, g.a) or not (np.isclose(t.e, g.e) or flipped) or t.b or t.d:
+        return False, 0, 0, False
+    top = t.f + t.e * height if flipped else t.f  # the file's northern edge
     col = (g.c - t.c) / g.a
-    row = (g.f - t.f) / g.e
+    row = (g.f - top) / g.e
     if abs(col - round(col)) > 1e-6 or abs(row - round(row)) > 1e-6:
-        return False, 0, 0
-    return True, int(round(row)), int(round(col))
+        return False, 0, 0, False
+    return True, int(round(row)), int(round(col)), flipped
 
 
 def _read_block(_template: np.ndarray, path: str, grid: Grid, bands: list[int], resampling: Resampling, src_nodata: float | None,
@@ -141,9 +156,14 @@ def _read_block(_template: np.ndarray, path: str, grid: Grid, bands: list[int], 
     with rasterio.open(path) as src:
         nodata = src_nodata if src_nodata is not None else src.nodata
         if same[0]:
-            w = Window(c0 + same[2], r0 + same[1], c1 - c0, r1 - r0)
             fill_value = nodata if nodata is not None else 0
-            data = src.read(bands, window=w, boundless=True, fill_value=fill_value, masked=False)
+            if same[3]:  # south-up: grid rows r0..r1 are file rows counted from the bottom
+                w = Window(c0 + same[2], src.height - (r1 + same[1]), c1 - c0, r1 - r0)
+                data = src.read(bands, window=w, boundless=True, fill_value=fill_value, masked=False)
+                data = data[:, ::-1, :]
+            else:
+                w = Window(c0 + same[2], r0 + same[1], c1 - c0, r1 - r0)
+                data = src.read(bands, window=w, boundless=True, fill_value=fill_value, masked=False)
         else:
             with WarpedVRT(src, crs=grid.crs, transform=grid.transform, width=grid.width, height=grid.height,
                            resampling=resampling, src_nodata=nodata, nodata=nodata if nodata is not None else 0, tolerance=0.001,

@@ -177,10 +177,36 @@ def write_vector(gdf: Any, path: str | Path, *, layer: str) -> Path:
     return path
 
 
-def read_vector(path: str | Path, *, layer: str | None = None, what: str = "vector file") -> Any:
-    """Read a vector file with geopandas, with a clear error if it cannot be read."""
+def vector_layers(path: str | Path) -> list[str]:
+    """The layer names of a vector file ([] when they cannot be listed: the read then reports the problem)."""
+    try:
+        import pyogrio
+
+        return [str(name) for name in pyogrio.list_layers(path)[:, 0]]
+    except Exception:
+        return []
+
+
+def read_vector(path: str | Path, *, layer: str | None = None, what: str = "vector file",
+                key: str | None = None) -> Any:
+    """Read a vector file with geopandas, with a clear error if it cannot be read.
+
+    A file with several layers (a GeoPackage often has) must be read with a named ``layer``: taking the
+    first one silently may read the wrong data.  ``key`` is the project-file key that names the layer
+    (``plots.layer``), for the message.
+    """
     import geopandas as gpd
 
+    layers = vector_layers(path)
+    set_it = f"set {key} in the project file" if key else "name the layer"
+    if not layer and len(layers) > 1:
+        raise InputFileError(f"the {what} holds {len(layers)} layers ({', '.join(sorted(layers))}) and no "
+                             "layer is named; "
+                             f"{set_it} to the one to read (e.g. {key or 'layer'} = {sorted(layers)[0]!r})",
+                             path=str(path))
+    if layer and layers and layer not in layers:
+        raise InputFileError(f"the {what} has no layer {layer!r}; its layers are {', '.join(layers)}. "
+                             f"Correct {key or 'the layer name'}", path=str(path))
     try:
         gdf = gpd.read_file(path, layer=layer or None)
     except Exception as exc:

@@ -65,7 +65,8 @@ class InputCoverageWarning(UserWarning):
 
 
 def read_aoi(project: Project):
-    aoi = read_vector(project.area.aoi, layer=project.area.layer or None, what="AOI polygon file")
+    aoi = read_vector(project.area.aoi, layer=project.area.layer or None, what="AOI polygon file",
+                      key="area.layer")
     aoi = aoi[~aoi.geometry.is_empty & aoi.geometry.notna()]
     if aoi.empty:
         raise InputFileError("the AOI file holds no polygon; draw the project area and save it", path=str(project.area.aoi))
@@ -125,7 +126,20 @@ def project_grid(project: Project) -> Grid:
     anchor = None
     if project.grid.align_to != "none" and require_projected(crs) == require_projected(first.crs):
         anchor = (first.bounds[0], first.bounds[3])  # the reference's top-left pixel corner
-    return Grid.from_bbox(tuple(aoi.total_bounds), crs=crs, resolution=res, anchor=anchor)
+    grid = Grid.from_bbox(tuple(aoi.total_bounds), crs=crs, resolution=res, anchor=anchor)
+    if min(grid.width, grid.height) < MIN_GRID_SIDE:
+        key = "grid.pixel_size_m" if project.grid.pixel_size_m else "grid.align_to"
+        x0, y0, x1, y1 = aoi.total_bounds
+        raise ProjectFileError(
+            f"pixels of {res:g} m give a grid of only {grid.height} x {grid.width} over the AOI; a map (and "
+            f"the checks of every input on it) needs at least {MIN_GRID_SIDE} pixels a side. Set "
+            f"grid.pixel_size_m to at most {min(x1 - x0, y1 - y0) / MIN_GRID_SIDE:.0f} m (0 = the reference "
+            "input's pixel size)", key=key, file=str(project.file))
+    return grid
+
+
+# pixels a side of the smallest grid worth mapping (a rule of thumb: common practice, no source)
+MIN_GRID_SIDE = 10
 
 
 def _optical_scene(scene, grid: Grid, chunks: int) -> xr.DataArray:
@@ -305,6 +319,37 @@ def _file_elevation_units(path: Path) -> tuple[str | None, str]:
     return None, ""
 
 
+# Elevations on land lie between about -430 m (the Dead Sea shore) and 8849 m (the summit of Everest); a
+# relief larger than the horizontal extent (a mean slope above 45 degrees across the whole area) is not a
+# landscape with wetlands (a rule of thumb: common practice, no source).
+ELEVATION_RANGE_M = (-450.0, 8850.0)
+
+
+def dem_range_warning(values: np.ndarray, units: str, *, extent_m: float, name: str) -> str | None:
+    """Warn (:class:`~wetlandflow.errors.PlausibilityWarning`) when elevations contradict their declared
+    unit: beyond the elevations of land, or a relief steeper than the area is wide (centimetres declared as
+    metres)."""
+    from ..errors import PlausibilityWarning
+
+    v = values[np.isfinite(values)] * (0.3048 if units == "ft" else 1.0)
+    if v.size == 0:
+        return None
+    lo, hi = float(v.min()), float(v.max())
+    beyond = lo < ELEVATION_RANGE_M[0] or hi > ELEVATION_RANGE_M[1]
+    steep = hi - lo > extent_m
+    if not (beyond or steep):
+        return None
+    why = (f"beyond the elevations of land ({ELEVATION_RANGE_M[0]:g} to {ELEVATION_RANGE_M[1]:g} m)" if beyond
+           else f"a relief of {hi - lo:,.0f} m over an area {extent_m:,.0f} m across")
+    unit = "feet" if units == "ft" else "metres"
+    message = (f"[dem.units] the DEM {name} declared in {unit} holds elevations from {lo:,.1f} to "
+               f"{hi:,.1f} m, {why}: the values may be in another unit (centimetres, "
+               "decimetres). Convert the file to metres (or feet and set dem.units = 'ft'); slope, TWI and "
+               "height above drainage scale with it")
+    warnings.warn(message, PlausibilityWarning, stacklevel=3)
+    return message
+
+
 def check_dem(project: Project, grid: Grid, aoi, *, max_nodata_share: float = 0.05,
               max_side: int = 256) -> float:
     """Check the DEM's declared units against its metadata and its coverage of the AOI.
@@ -345,7 +390,10 @@ def check_dem(project: Project, grid: Grid, aoi, *, max_nodata_share: float = 0.
     inside = aoi_on_grid(aoi, coarse)
     if not inside.any():
         return float("nan")
-    share = float(np.isfinite(values_on_coarse_grid(dem.path, coarse, nodata=dem.nodata))[inside].mean())
+    values = values_on_coarse_grid(dem.path, coarse, nodata=dem.nodata)
+    share = float(np.isfinite(values)[inside].mean())
+    extent = float(np.hypot(grid.width, grid.height) * grid.resolution)
+    dem_range_warning(values[inside], dem.units, extent_m=extent, name=dem.path.name)
     if share < 1.0 - max_nodata_share:
         raise DataQualityError(
             f"[dem.path] the DEM {dem.path.name} has no elevation over {1 - share:.0%} of the area of "
@@ -414,6 +462,77 @@ def check_observations(project: Project, grid: Grid, aoi, *, max_side: int = 256
     return {f"optical[{i}] {project.optical[i].label}": round(v, 4) for i, v in shares.items()}
 
 
+def needed_inputs(project: Project) -> set[str]:
+    """The inputs (``optical``, ``sar``, ``dem``) the selection reads, from the project file alone.
+
+    A domain named in ``select`` needs what its features read (so a named domain's files are always checked,
+    even when none of its features can run); a feature name needs what it declares; an empty selection,
+    ``"default"``, a plugin or a name not (yet) registered needs every input (the features step then says
+    what runs).
+    """
+    import wetlandflow.features  # noqa: F401  (registers the built-in features)
+
+    from ..features.registry import REGISTRY
+
+    everything = {"optical", "sar", "dem"}
+    select = project.features.select
+    if not select or "default" in select or project.features.plugins:
+        return everything
+    needs: set[str] = set()
+    for item in select:
+        defs = [d for d in REGISTRY.values() if d.domain == item] or (
+            [REGISTRY[item]] if item in REGISTRY else None)
+        if not defs:
+            return everything
+        needs |= {n for d in defs for n in d.needs}
+    if "composite" in needs:
+        needs.add("optical")
+    return needs & everything
+
+
+def selected_inputs(project: Project) -> Project:
+    """The project without the image inputs no selected feature reads (optical, SAR, DEM).
+
+    Seasons are checked against every scene when the file is loaded; here only the reading is skipped.
+    """
+    import dataclasses
+
+    needed = needed_inputs(project)
+    keep = {"optical": project.optical if "optical" in needed else (),
+            "sar": project.sar if "sar" in needed else (),
+            "dem": project.dem if "dem" in needed else None}
+    if not keep["optical"] and not keep["sar"]:  # the grid and the AOI mask still need a raster to follow
+        return project
+    return dataclasses.replace(project, **keep)
+
+
+def check_aoi_covered(project: Project, grid: Grid, aoi, *, max_uncovered: float = 0.05) -> float:
+    """Refuse an AOI that reaches beyond every input raster (more than ``max_uncovered`` of its area, the
+    DEM's rule of thumb), naming the AOI and the share, rather than blaming the first layer short of it."""
+    from rasterio.warp import transform_bounds
+    from shapely.geometry import box
+    from shapely.ops import unary_union
+
+    files = [p for s in (*project.optical, *project.sar) for p, _ in scene_files(s)]
+    files += [project.dem.path] if project.dem is not None else []
+    footprints = []
+    for path in files:
+        info = inspect_raster(path)
+        footprints.append(box(*transform_bounds(info.crs, grid.crs, *info.bounds, densify_pts=21)))
+    area = aoi.to_crs(grid.crs).union_all()
+    if not footprints or area.area <= 0:
+        return 0.0
+    uncovered = area.difference(unary_union(footprints)).area / area.area
+    if uncovered > max_uncovered:
+        aoi_bounds = tuple(round(v) for v in aoi.to_crs(grid.crs).total_bounds)
+        raster_bounds = tuple(round(v) for v in unary_union(footprints).bounds)
+        raise AlignmentError(
+            f"[area.aoi] the AOI {project.area.aoi.name} reaches beyond every input raster: {uncovered:.0%} "
+            f"of its area (AOI bounds {aoi_bounds}, rasters up to {raster_bounds} in {grid.crs}) has no "
+            "image. Shrink the AOI to the rasters' extent, or add rasters that cover it")
+    return uncovered
+
+
 def load_inputs(project: Project, grid: Grid | None = None, *, check: bool = True) -> FeatureInputs:
     """Every input of the project, aligned lazily onto the grid.
 
@@ -426,12 +545,15 @@ def load_inputs(project: Project, grid: Grid | None = None, *, check: bool = Tru
     grid = grid or project_grid(project)
     chunks = project.output.chunk_size
     aoi_polygons = read_aoi(project)
+    # only the inputs the selected features read: a file no feature uses must not refuse (or slow) the run
+    project = selected_inputs(project)
     # the lazy layers first: opening them checks headers, band counts and overlap, which explain more
     # precisely than a coverage check what is wrong with a file
     optical = load_optical(project, grid, chunks=chunks)
     sar = load_sar(project, grid, chunks=chunks)
     dem = load_dem(project, grid, chunks=chunks)
     if check:
+        check_aoi_covered(project, grid, aoi_polygons)
         check_dem(project, grid, aoi_polygons)
         check_observations(project, grid, aoi_polygons)
     return FeatureInputs(grid=grid, optical=optical, sar=sar, dem=dem,

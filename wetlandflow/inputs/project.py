@@ -74,6 +74,7 @@ class PlotsSection:
     path: Path
     class_field: str = "class"
     id_field: str = ""
+    layer: str = ""  # the layer to read from a file with several (a GeoPackage); "" = the file's only layer
 
 
 @dataclass(frozen=True)
@@ -318,14 +319,16 @@ def _build(cls: type, table: Any, key: str, root: Path, fixed: dict[str, Any] | 
         if name in table:
             kwargs[name] = _coerce(table[name], hints[name], sub, root)
         elif f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING:
-            raise ProjectFileError(f"missing required key {name!r}", key=sub)
+            raise ProjectFileError(f"missing required key {name!r}; add it to the project file "
+                                   "(docs/project-file.md shows every key)", key=sub)
     return cls(**kwargs)
 
 
 # -- semantic checks ---------------------------------------------------------------------
 def _check_choice(value: str, allowed: tuple[str, ...], key: str) -> None:
     if value not in allowed:
-        raise ProjectFileError(f"{value!r} is not one of {', '.join(allowed)}", key=key)
+        raise ProjectFileError(f"{value!r} is not one of {', '.join(allowed)}; set {key} to one of these",
+                               key=key)
 
 
 def _require_file(path: Path | None, key: str) -> None:
@@ -351,11 +354,13 @@ def _check_seasons(seasons: dict[str, tuple[str, str]]) -> None:
     spans = []
     for name, window in seasons.items():
         if len(window) != 2:
-            raise ProjectFileError(f"a season is [start, end], got {list(window)}", key=f"seasons.{name}")
+            raise ProjectFileError(f"a season is [start, end], got {list(window)}; give two month-days like "
+                                   "['06-01', '08-31']", key=f"seasons.{name}")
         a, b = (_month_day(s, f"seasons.{name}") for s in window)
         if b < a:
             raise ProjectFileError(
-                f"season ends ({window[1]}) before it starts ({window[0]}); windows may not wrap the year",
+                f"season ends ({window[1]}) before it starts ({window[0]}); windows may not wrap the year: "
+                "split it into two seasons (one ending 12-31, one starting 01-01) or swap the dates",
                 key=f"seasons.{name}",
             )
         spans.append((a, b, name))
@@ -382,22 +387,27 @@ def _check_season_scenes(p: Project) -> None:
 
 def _check_classes(c: ClassesSection) -> None:
     if len(c.names) < 2:
-        raise ProjectFileError("a class scheme needs at least two classes", key="classes.names")
+        raise ProjectFileError(f"a class scheme needs at least two classes, got {list(c.names)}; list every "
+                               "class the plots are labelled with", key="classes.names")
     if len(set(c.names)) != len(c.names):
         dup = sorted({n for n in c.names if c.names.count(n) > 1})
-        raise ProjectFileError(f"duplicate class names: {dup}", key="classes.names")
+        raise ProjectFileError(f"duplicate class names: {dup}; list each class once", key="classes.names")
     seen: dict[str, str] = {}
     for parent, children in c.parents.items():
         if parent in c.names:
-            raise ProjectFileError(f"parent {parent!r} must not also be a leaf class", key=f"classes.parents.{parent}")
+            raise ProjectFileError(f"parent {parent!r} must not also be a leaf class; rename the group",
+                                   key=f"classes.parents.{parent}")
         for child in children:
             if child not in c.names:
                 raise ProjectFileError(
-                    f"unknown class {child!r}; known classes: {', '.join(c.names)}", key=f"classes.parents.{parent}"
+                    f"unknown class {child!r}; known classes: {', '.join(c.names)}. Correct the name or add "
+                    "the class to [classes].names", key=f"classes.parents.{parent}"
                 )
             if child in seen:
                 raise ProjectFileError(
-                    f"class {child!r} is under both {seen[child]!r} and {parent!r}", key=f"classes.parents.{parent}"
+                    f"class {child!r} is under both {seen[child]!r} and {parent!r}; put each class in one "
+                    "group",
+                    key=f"classes.parents.{parent}"
                 )
             seen[child] = parent
 
@@ -410,7 +420,8 @@ def check_model_section(p: Project) -> None:
     :func:`wetlandflow.pipeline.run.make_model`, for a project built without :func:`load_project`)."""
     m = p.model
     if not 0 <= m.gate_threshold < 1:
-        raise ProjectFileError(f"gate_threshold must be in [0, 1) (0 = no gate), got {m.gate_threshold}",
+        raise ProjectFileError(f"gate_threshold must be in [0, 1) (0 = no gate), got {m.gate_threshold}; set "
+                               "model.gate_threshold to a value in that range",
                                key="model.gate_threshold")
     if m.gate_threshold and not m.hierarchical:
         raise ProjectFileError(
@@ -490,7 +501,8 @@ def _validate(p: Project) -> None:
     for i, s in enumerate(p.optical):
         _require_file(s.mask, f"optical[{i}].mask")
         if s.scale <= 0:
-            raise ProjectFileError(f"scale must be > 0, got {s.scale}", key=f"optical[{i}].scale")
+            raise ProjectFileError(f"scale must be > 0, got {s.scale}; set the factor that turns DN into "
+                                   "reflectance (0.0001 for Sentinel-2)", key=f"optical[{i}].scale")
         _check_choice(s.plausibility, PLAUSIBILITY, f"optical[{i}].plausibility")
     for i, s in enumerate(p.sar):
         bad = [b for b in s.bands if b not in SAR_POLARISATIONS]
@@ -509,11 +521,11 @@ def _validate(p: Project) -> None:
     check_model_section(p)
     _check_choice(p.samples.missing, ("keep", "drop"), "samples.missing")
     if not 0 <= p.model.max_plot_share <= 1:
-        raise ProjectFileError(f"max_plot_share must be in [0, 1] (0 = no cap), got {p.model.max_plot_share}",
+        raise ProjectFileError("max_plot_share must be in [0, 1] (0 = no cap), got "
+                               f"{p.model.max_plot_share}; set model.max_plot_share to a value in that range",
                                key="model.max_plot_share")
     _check_choice(p.validation.design, CV_DESIGNS, "validation.design")
-    if p.validation.n_folds < 2:
-        raise ProjectFileError(f"n_folds must be >= 2, got {p.validation.n_folds}", key="validation.n_folds")
+    check_ranges(p)
     if p.validation.design == "random" and not p.validation.allow_random_pixels:
         raise ProjectFileError(
             "random pixel folds leak (neighbouring pixels of one plot land on both sides) and overstate accuracy; "
@@ -533,21 +545,62 @@ def _validate(p: Project) -> None:
     elif p.priors.shares:
         raise ProjectFileError(f"shares are used only with adjust = \"given\" (adjust is {p.priors.adjust!r}); "
                                "set adjust = \"given\" or remove [priors.shares]", key="priors.shares")
-    if p.output.chunk_size < 64:
-        raise ProjectFileError(f"chunk_size must be >= 64, got {p.output.chunk_size}", key="output.chunk_size")
-    if p.output.mmu_pixels < 1:
-        raise ProjectFileError(f"mmu_pixels must be >= 1 (1 keeps every patch), got {p.output.mmu_pixels}",
-                               key="output.mmu_pixels")
     if p.output.connectivity not in (4, 8):
-        raise ProjectFileError(f"connectivity must be 4 or 8, got {p.output.connectivity}", key="output.connectivity")
-    if p.output.memory_budget_gb <= 0:
-        raise ProjectFileError(f"memory_budget_gb must be > 0, got {p.output.memory_budget_gb}",
-                               key="output.memory_budget_gb")
-    if p.compute.n_workers < 1:
-        raise ProjectFileError(f"n_workers must be >= 1, got {p.compute.n_workers}", key="compute.n_workers")
-    if p.grid.pixel_size_m < 0:
-        raise ProjectFileError(f"pixel_size_m must be > 0 (or 0 for the default), got {p.grid.pixel_size_m}",
-                               key="grid.pixel_size_m")
+        raise ProjectFileError(f"connectivity must be 4 or 8, got {p.output.connectivity}; set "
+                               "output.connectivity = 4 (edge neighbours) or 8 (edge and corner neighbours)",
+                               key="output.connectivity")
+
+
+INF = float("inf")
+# Numeric keys and their valid ranges: (key, low, high, low included, high included, why).  Where a value goes
+# straight to XGBoost or scikit-learn, the bounds are theirs:
+# * XGBoost parameter documentation (doc/parameter.rst, "Parameters for Tree Booster"): eta (learning_rate)
+#   range [0, 1], max_depth range [0, inf] (0 = no limit, accepted by the hist tree method used here); a
+#   learning rate of 0 never learns, so it is excluded here;
+# * scikit-learn RandomForestClassifier._parameter_constraints: n_estimators Interval(Integral, 1, None);
+#   the seed becomes numpy's RandomState seed (sklearn.utils.check_random_state), which must lie in
+#   [0, 2**32 - 1];
+# * the rest are wetlandflow's own (a count of at least one, a size or distance that is positive).
+RANGES: tuple[tuple[str, float, float, bool, bool, str], ...] = (
+    ("project.seed", 0, 2**32 - 1, True, True, "numpy's seed range"),
+    ("model.n_estimators", 1, INF, True, True, "number of trees or boosting rounds"),
+    ("model.max_depth", 0, INF, True, True, "0 = no depth limit"),
+    ("model.learning_rate", 0, 1, False, True, "XGBoost's eta"),
+    ("model.n_threads", 1, INF, True, True, "threads per model fit"),
+    ("validation.n_folds", 2, INF, True, True, "at least two folds"),
+    ("validation.block_size_m", 0, INF, False, False, "side of the square blocks, metres"),
+    ("samples.max_pixels_per_plot", 1, INF, True, True, "pixels drawn per plot"),
+    ("samples.inward_buffer_m", 0, INF, True, False, "metres, 0 = no buffer"),
+    ("output.chunk_size", 64, INF, True, True, "pixels per side of a window"),
+    ("output.mmu_pixels", 1, INF, True, True, "1 keeps every patch"),
+    ("output.memory_budget_gb", 0, INF, False, False, "gigabytes"),
+    ("output.explain_rows", 1, INF, True, True, "samples explained"),
+    ("output.explain_window", 1, INF, True, True, "pixels per side"),
+    ("output.explain_seeds", 0, INF, True, True, "refits, < 2 = off"),
+    ("compute.n_workers", 1, INF, True, True, "worker processes"),
+    ("grid.pixel_size_m", 0, INF, True, False, "metres, 0 = the reference input's"),
+)
+
+
+def _interval(low: float, high: float, low_in: bool, high_in: bool) -> str:
+    if high == INF:
+        return f"{'>=' if low_in else '>'} {low:g}"
+    return f"{'[' if low_in else '('}{low:g}, {high:g}{']' if high_in else ')'}"
+
+
+def check_ranges(p: Project) -> None:
+    """Refuse a numeric key outside its valid range (:data:`RANGES`), naming the key and the range."""
+    for key, low, high, low_in, high_in, why in RANGES:
+        section, name = key.split(".")
+        value = getattr(getattr(p, section), name)
+        above = value >= low if low_in else value > low
+        below = value <= high if high_in else value < high
+        if not (above and below):  # NaN fails both
+            rng = _interval(low, high, low_in, high_in)
+            within = f"in {rng}" if rng[0] in "[(" else rng
+            raise ProjectFileError(
+                f"{name} must be {within} ({why}), got {value!r}; set {key} to a value in that range",
+                key=key)
 
 
 # -- public API ----------------------------------------------------------------------------
@@ -591,7 +644,10 @@ def load_project(path: str | Path) -> Project:
     if not path.exists():
         raise ProjectFileError("project file not found; check the path", file=str(path))
     try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
+        data = tomllib.loads(path.read_text(encoding="utf-8-sig"))  # a byte-order mark (some editors) is fine
+    except UnicodeDecodeError as exc:
+        raise ProjectFileError(f"not UTF-8 text (byte {exc.start}: {exc.reason}); save the file as UTF-8 (an "
+                               "editor's 'save with encoding' menu)", file=str(path)) from None
     except tomllib.TOMLDecodeError as exc:
         raise ProjectFileError(f"not valid TOML: {exc}; fix the syntax at the line and column shown "
                                "(docs/project-file.md describes the format)", file=str(path)) from None

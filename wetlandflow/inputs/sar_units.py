@@ -32,6 +32,10 @@ SAR_UNIT_LIMITS: Mapping[str, float] = MappingProxyType(
         "db_median_max": 5.0,
         "power_max": 1.5,
         "large_share_max": 0.05,
+        # the overlap of the two positive units: a linear-power median above this looks more like amplitude,
+        # an amplitude median below "amplitude_typical_min" more like power (a warning, not a refusal)
+        "linear_typical_max": 0.3,
+        "amplitude_typical_min": 0.1,
     }
 )
 
@@ -122,7 +126,26 @@ def check_sar_units(
     }[declared]
     if not consistent:
         raise DataQualityError(_units_message(what, declared, stats))
+    _warn_ambiguous(what, declared, stats, lim)
     return stats
+
+
+def _warn_ambiguous(what: str, declared: str, s: Mapping[str, Any], lim: Mapping[str, float]) -> None:
+    """Power and amplitude overlap (0.03 to 0.5): warn when the median sits on the other unit's side."""
+    import warnings
+
+    from ..errors import PlausibilityWarning
+
+    other = None
+    if declared == "linear" and s["median"] > lim["linear_typical_max"]:
+        other, typical = "amplitude", f"a linear-power median is usually below {lim['linear_typical_max']:g}"
+    elif declared == "amplitude" and s["median"] < lim["amplitude_typical_min"]:
+        other, typical = "linear", f"an amplitude median is usually above {lim['amplitude_typical_min']:g}"
+    if other:
+        s = {**s, "likely_units": other}
+        warnings.warn(f"{what} declared units = {declared!r} has median {s['median']:.3g}; {typical}. If "
+                      f"the file holds {other} values, set units = \"{other}\" in its [[sar]] table (a wrong "
+                      "unit squares or roots every backscatter value)", PlausibilityWarning, stacklevel=3)
 
 
 def _units_message(what: str, declared: str, s: Mapping[str, Any]) -> str:

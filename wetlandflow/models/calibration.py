@@ -35,7 +35,7 @@ import pandas as pd
 from sklearn.base import BaseEstimator, ClassifierMixin, clone
 
 from ..errors import ModelError, ParameterError
-from .classifier import _positions, require_fitted
+from .classifier import SchemePredictMixin, require_fitted
 
 __all__ = [
     "CalibratedWetlandClassifier",
@@ -359,7 +359,7 @@ class ProbabilityCalibrator:
         return np.divide(out, total, out=uniform, where=total > 0)
 
 
-class CalibratedWetlandClassifier(ClassifierMixin, BaseEstimator):
+class CalibratedWetlandClassifier(SchemePredictMixin, ClassifierMixin, BaseEstimator):
     """Isotonic or sigmoid recalibration fitted within spatial folds.
 
     For each ``(train, test)`` fold of ``cv`` (computed once in :meth:`fit`,
@@ -477,12 +477,3 @@ class CalibratedWetlandClassifier(ClassifierMixin, BaseEstimator):
         out[:, have] = raw[:, self.column_of_[have]]
         return out / out.sum(axis=1, keepdims=True)
 
-    def predict_proba(self, X: Any) -> np.ndarray:
-        """Calibrated probabilities, columns in sorted ``classes_`` order (scikit-learn's contract)."""
-        p = self.predict_scheme_proba(X)
-        return p[:, _positions(self.scheme_, self.classes_)]
-
-    def predict(self, X: Any) -> np.ndarray:
-        """The most probable scheme class per row."""
-        p = self.predict_scheme_proba(X)
-        return self.scheme_[np.argmax(p, axis=1)]

@@ -116,7 +116,29 @@ def canonical_order(samples: pd.DataFrame) -> pd.DataFrame:
     return samples.iloc[order].reset_index(drop=True)
 
 
-class WetlandClassifier(ClassifierMixin, BaseEstimator):
+class SchemePredictMixin:
+    """``predict_proba`` and ``predict`` from ``predict_scheme_proba`` (columns in scheme order).
+
+    For a classifier with ``scheme_`` (the class scheme's order) and ``classes_`` (sorted, scikit-learn's
+    order) that implements ``predict_scheme_proba``: the flat, calibrated and hierarchical classifiers.
+    """
+
+    def predict_proba(self, X: Any) -> np.ndarray:
+        """Class probabilities, one column per class of ``classes_`` (sorted), as scikit-learn expects.
+
+        Returns
+        -------
+        numpy.ndarray, shape (n_samples, n_classes)
+        """
+        return self.predict_scheme_proba(X)[:, _positions(self.scheme_, self.classes_)]
+
+    def predict(self, X: Any) -> np.ndarray:
+        """The most probable class per row (ties go to the first in scheme order)."""
+        p = self.predict_scheme_proba(X)  # first: it raises NotFittedError on an unfitted model
+        return self.scheme_[np.argmax(p, axis=1)]
+
+
+class WetlandClassifier(SchemePredictMixin, ClassifierMixin, BaseEstimator):
     """Per-class probabilities over XGBoost or a random forest, with the class scheme kept beside them.
 
     The estimator follows scikit-learn's classifier contract: ``classes_`` is
@@ -291,24 +313,11 @@ class WetlandClassifier(ClassifierMixin, BaseEstimator):
         out[:, _positions(self.scheme_, self.present_)] = p
         return out
 
-    def predict_proba(self, X: Any) -> np.ndarray:
-        """Class probabilities, one column per class of ``classes_`` (sorted), as scikit-learn expects.
-
-        Returns
-        -------
-        numpy.ndarray of float32, shape (n_samples, n_classes)
-        """
-        return self.predict_scheme_proba(X)[:, _positions(self.scheme_, self.classes_)]
-
     def predict_frame(self, X: Any) -> pd.DataFrame:
         """Scheme-order probabilities as a DataFrame, columns named by class (index follows ``X``)."""
         index = X.index if isinstance(X, pd.DataFrame) else None
         return pd.DataFrame(self.predict_scheme_proba(X), columns=list(self.scheme_), index=index)
 
-    def predict(self, X: Any) -> np.ndarray:
-        """The most probable class per row (ties go to the first in scheme order)."""
-        p = self.predict_scheme_proba(X)
-        return self.scheme_[np.argmax(p, axis=1)]
 
 
 class NotFittedModelError(ModelError, NotFittedError):

@@ -26,7 +26,7 @@ import pandas as pd
 from sklearn.base import BaseEstimator, ClassifierMixin
 
 from ..errors import ModelError
-from .classifier import WetlandClassifier, _check_labels, _positions, require_fitted
+from .classifier import SchemePredictMixin, WetlandClassifier, _check_labels, require_fitted
 
 __all__ = ["HierarchicalClassifier"]
 
@@ -77,7 +77,7 @@ class _Constant:
         return np.tile(self.proba, (X.shape[0], 1))
 
 
-class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
+class HierarchicalClassifier(SchemePredictMixin, ClassifierMixin, BaseEstimator):
     """Leaf probabilities from a top-level model times per-parent child models.
 
     Parameters
@@ -269,16 +269,6 @@ class HierarchicalClassifier(ClassifierMixin, BaseEstimator):
     def predict_scheme_proba(self, X: Any) -> np.ndarray:
         """Leaf probabilities, columns in scheme order (``scheme_``), rows summing to 1 (float64)."""
         return self._levels(X)[2]
-
-    def predict_proba(self, X: Any) -> np.ndarray:
-        """Leaf probabilities, columns in sorted ``classes_`` order (scikit-learn's contract)."""
-        p = self.predict_scheme_proba(X)
-        return p[:, _positions(self.scheme_, self.classes_)]
-
-    def predict(self, X: Any) -> np.ndarray:
-        """The most probable leaf class per row (ties go to the first in scheme order)."""
-        p = self.predict_scheme_proba(X)
-        return self.scheme_[np.argmax(p, axis=1)]
 
     def predict_proba_levels(self, X: Any) -> dict[str, pd.DataFrame]:
         """Probabilities at every level of the tree.

@@ -17,7 +17,7 @@ from typing import Any
 
 import pandas as pd
 
-from ..errors import ProjectFileError
+from ..errors import PlausibilityWarning, ProjectFileError
 from ..features.cube import plan_features
 from ..features.plausibility import ReflectanceWarning, plausibility_checks
 from ..inputs.grid import Grid
@@ -32,7 +32,7 @@ from ..inputs.layers import (
 )
 from ..inputs.preflight import check_memory, estimate_memory_bytes
 from ..inputs.project import Project, load_project
-from ..training.samples import plot_pixels, read_plots
+from ..training.samples import check_class_plots, plot_pixels, read_plots
 
 
 @dataclass
@@ -98,30 +98,18 @@ def _plot_table(project: Project, plots, px) -> pd.DataFrame:
     return pd.DataFrame({"class": counts.index, "plots": counts.values, "pixels": pixels.values})
 
 
-def _fold_notes(project: Project, table: pd.DataFrame, n_plots: int) -> list[str]:
-    """Refuse what the run refuses (more folds than plots with pixels); note classes thin for the folds."""
-    k = project.validation.n_folds
-    if k > n_plots:  # the same words as pipeline.run.cross_validate
-        raise ProjectFileError(
-            f"validation.n_folds = {k} but the samples come from {n_plots} plot(s); "
-            "plots are never split across folds, so there can be at most one fold per plot. Use fewer folds "
-            "or add plots",
-            key="validation.n_folds",
-            file=str(project.file),
-        )
-    notes = []
-    for _, r in table.iterrows():
-        if r["plots"] == 0:
-            notes.append(
-                f"class {r['class']!r} has no plot: the model cannot learn it and it will never be "
-                "mapped; add plots or remove it from [classes].names"
-            )
-        elif r["plots"] < k:
-            notes.append(
-                f"class {r['class']!r} has {r['plots']} plot(s) for {k} folds: some folds will test it "
-                "without having trained on it (their accuracy for it is pessimistic); add plots"
-            )
-    return notes
+def _fold_notes(project: Project, grid: Grid, px: pd.DataFrame) -> list[str]:
+    """Refuse what the run's validation step refuses (the same function on the plot pixels: more folds than
+    plots, folds that cannot test every class); note classes thin for the folds."""
+    from .run import design_folds
+
+    x, y = grid.xy_coords()
+    samples = pd.DataFrame({"plot_id": px["plot_id"].to_numpy(), "class": px["class"].to_numpy(),
+                            "x": x[px["col"].to_numpy()], "y": y[px["row"].to_numpy()]})
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        design_folds(project, samples)
+    return list(dict.fromkeys(str(w.message) for w in caught if issubclass(w.category, UserWarning)))
 
 
 def check_project(project: Project | str | Path) -> CheckReport:
@@ -154,15 +142,20 @@ def check_project(project: Project | str | Path) -> CheckReport:
             file=str(project.file),
         )
     check_memory(estimate_memory_bytes(project, grid), project.output.memory_budget_gb)
-    raw = read_vector(project.plots.path, what="plot file")
-    plots = read_plots(
-        project.plots.path,
-        class_field=project.plots.class_field,
-        id_field=project.plots.id_field,
-        classes=project.classes.names,
-        grid=grid,
-        aoi=read_aoi(project),
-    )
+    raw = read_vector(project.plots.path, layer=project.plots.layer or None, what="plot file",
+                      key="plots.layer")
+    with warnings.catch_warnings(record=True) as caught_plots:
+        warnings.simplefilter("always", PlausibilityWarning)
+        plots = read_plots(
+            project.plots.path,
+            layer=project.plots.layer,
+            class_field=project.plots.class_field,
+            id_field=project.plots.id_field,
+            classes=project.classes.names,
+            grid=grid,
+            aoi=read_aoi(project),
+        )
+    caught += caught_plots
     px = plot_pixels(
         plots,
         grid,
@@ -170,10 +163,12 @@ def check_project(project: Project | str | Path) -> CheckReport:
         max_pixels_per_plot=project.samples.max_pixels_per_plot,
         seed=project.project.seed,
     )
+    check_class_plots(px, plots, project.classes.names, where=f"plot file {project.plots.path}",
+                      pixel_size_m=grid.resolution)
     table = _plot_table(project, plots, px)
-    ours = (InputCoverageWarning, ReflectanceWarning)
+    ours = (InputCoverageWarning, ReflectanceWarning, PlausibilityWarning)
     notes = list(dict.fromkeys(str(w.message) for w in caught if issubclass(w.category, ours)))
-    notes += _fold_notes(project, table, int(px["plot_id"].nunique()) if len(px) else 0)
+    notes += _fold_notes(project, grid, px)
     info = {
         "file": project.plots.path.name,
         "n_plots": int(plots["plot_id"].nunique()),

@@ -48,6 +48,7 @@ class Manifest:
             "versions": library_versions(),
             "inputs": {},
             "steps": {},
+            "plausibility_warnings": [],  # inputs that are valid but look wrong (step, message)
             "command": f"wetlandflow run {project.file.name}",
             "caution": CAUTION,
         }

@@ -41,6 +41,7 @@ from ..models.bundle import load_bundle, save_bundle
 from ..models.classifier import ClassScheme, WetlandClassifier, data_hash, scheme_proba
 from ..models.hierarchy import HierarchicalClassifier
 from ..training.samples import (
+    check_class_plots,
     check_training_features,
     class_balance,
     drop_incomplete,
@@ -104,9 +105,9 @@ def make_splitter(project: Project, coords: np.ndarray):
     from ..validation.splitters import SpatialBlockKFold
 
     v = project.validation
-    if v.design == "blocks":
+    if v.design == "blocks":  # classes missing from folds are refused the same way for every design
         return SpatialBlockKFold(n_splits=v.n_folds, block_size_m=v.block_size_m, random_state=project.project.seed,
-                                 coords=coords)
+                                 coords=coords, on_class_missing="ignore")
     if v.design == "group":
         return GroupKFold(n_splits=v.n_folds)
     from ..validation.splitters import random_pixel_kfold
@@ -217,21 +218,10 @@ def cross_validate(project: Project, samples: pd.DataFrame, features: list[str],
     """Out-of-fold class probabilities for every sample, and each sample's test fold
     (``check`` is called before every fold: a cancel point)."""
     from ..progress import progress_bar
-    from ..validation.splitters import assign_folds, check_folds
 
-    splitter = make_splitter(project, samples[["x", "y"]].to_numpy())
     X = samples[features].to_numpy(np.float32)
     y = samples["class"].to_numpy()
-    groups = samples["plot_id"].to_numpy()
-    n_plots = len(np.unique(groups))
-    if project.validation.n_folds > n_plots:
-        raise ProjectFileError(
-            f"validation.n_folds = {project.validation.n_folds} but the samples come from {n_plots} plot(s); "
-            "plots are never split across folds, so there can be at most one fold per plot. Use fewer folds "
-            "or add plots", key="validation.n_folds", file=str(project.file))
-    folds = assign_folds(splitter, X, y, groups)
-    # a class absent from a fold's training side cannot be predicted there: say so, with the fix, and go on
-    check_folds(y, folds, groups, on_missing="warn")
+    folds = design_folds(project, samples)
     oof = np.full((len(samples), len(project.classes.names)), np.nan, np.float32)
     for k in progress_bar(np.unique(folds), desc="cross-validating", unit="fold", disable=not progress):
         test = folds == k
@@ -243,7 +233,52 @@ def cross_validate(project: Project, samples: pd.DataFrame, features: list[str],
     return oof, folds
 
 
+def design_folds(project: Project, samples: pd.DataFrame) -> np.ndarray:
+    """The test fold of every sample under the project's design, refused (for every design alike) when the
+    cross-validated accuracy would be a silently wrong number (:func:`require_testable_folds`).
+
+    ``samples`` needs ``plot_id``, ``class``, ``x`` and ``y``; ``check`` calls this on the plot pixels.
+    """
+    from ..validation.splitters import assign_folds, require_testable_folds
+
+    y = samples["class"].to_numpy()
+    groups = samples["plot_id"].to_numpy()
+    n_plots = len(np.unique(groups))
+    if project.validation.n_folds > n_plots:
+        raise ProjectFileError(
+            f"validation.n_folds = {project.validation.n_folds} but the samples come from {n_plots} plot(s); "
+            "plots are never split across folds, so there can be at most one fold per plot. Use fewer folds "
+            "or add plots", key="validation.n_folds", file=str(project.file))
+    coords = samples[["x", "y"]].to_numpy()
+    folds = assign_folds(make_splitter(project, coords), coords, y, groups)
+    require_testable_folds(y, folds, groups, design=project.validation.design)
+    return folds
+
+
 SCHEDULER_ENV = "WETLANDFLOW_SCHEDULER"
+
+
+@contextmanager
+def kept_warnings(manifest: Manifest, step: str):
+    """Record the :class:`~wetlandflow.errors.PlausibilityWarning` raised inside in ``manifest.json``
+    (``plausibility_warnings``: step and message, each once), and pass every warning on to the user."""
+    import warnings
+
+    from ..errors import PlausibilityWarning
+
+    kept = manifest.data.setdefault("plausibility_warnings", [])
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", PlausibilityWarning)
+        try:
+            yield kept
+        finally:
+            for w in caught:
+                message = str(w.message)
+                known = any(k["message"] == message for k in kept)
+                if issubclass(w.category, PlausibilityWarning) and not known:
+                    kept.append({"step": step, "message": message})
+    for w in caught:
+        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
 
 
 @contextmanager
@@ -317,7 +352,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     cfg = portable_dict(project)
     seed = project.project.seed
 
-    with manifest.step("inputs") as rec:
+    with manifest.step("inputs") as rec, kept_warnings(manifest, "inputs"):
         _record_inputs(manifest, project)
         grid = project_grid(project)
         inputs = load_inputs(project, grid)
@@ -351,8 +386,11 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     samples_path = run_dir / "samples.parquet"
     if manifest.reusable("samples", k_samples, [samples_path], uses=[zarr_path]):
         samples = pd.read_parquet(samples_path)
+        earlier = manifest.previous.get("plausibility_warnings", [])
+        manifest.data["plausibility_warnings"] += [w for w in earlier if w.get("step") == "samples"]
     else:
-        with manifest.step("samples", k_samples, outputs=[samples_path], uses=[zarr_path]) as rec:
+        with (manifest.step("samples", k_samples, outputs=[samples_path], uses=[zarr_path]) as rec,
+              kept_warnings(manifest, "samples")):
             samples = _samples_step(project, grid, cube, rec)
             write_table(samples, samples_path)
     features = model_features(project, samples)
@@ -497,9 +535,12 @@ def prior_adjusted_model(project: Project, model, samples: pd.DataFrame, feature
 
 def _samples_step(project: Project, grid, cube, rec: dict[str, Any]) -> pd.DataFrame:
     plots = read_plots(project.plots.path, class_field=project.plots.class_field, id_field=project.plots.id_field,
-                       classes=project.classes.names, grid=grid, aoi=read_aoi(project))
+                       classes=project.classes.names, grid=grid, aoi=read_aoi(project),
+                       layer=project.plots.layer)
     px = plot_pixels(plots, grid, inward_buffer_m=project.samples.inward_buffer_m,
                      max_pixels_per_plot=project.samples.max_pixels_per_plot, seed=project.project.seed)
+    check_class_plots(px, plots, project.classes.names, where=f"plot file {project.plots.path}",
+                      pixel_size_m=grid.resolution)
     samples = extract_samples(cube, px, grid)
     features = feature_names(samples)
     check_training_features(samples, features)
@@ -667,6 +708,11 @@ def format_summary(result: RunResult) -> str:
                       + (f"{len(moved)} input file(s) resampled onto it ({', '.join(moved[:3])}"
                          f"{', ...' if len(moved) > 3 else ''}; see manifest.json steps.inputs.to_grid)"
                          if moved else "every input file lies on its pixels (no resampling)")]
+    plausibility = result.manifest.get("plausibility_warnings", [])
+    if plausibility:
+        lines += ["", f"Plausibility warnings ({len(plausibility)}; also in manifest.json "
+                      "plausibility_warnings):"]
+        lines += [f"  - {w['message']}" for w in plausibility]
     skipped = steps.get("features", {}).get("skipped")
     if skipped:
         lines += ["", "Features skipped (the inputs cannot compute them):"]

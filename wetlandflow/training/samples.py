@@ -21,10 +21,17 @@ from ..inputs.grid import Grid
 from ..inputs.io import read_vector
 
 
-def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...], grid: Grid, aoi=None):
-    """Read and check training plots; return a GeoDataFrame in the grid CRS with ``plot_id`` and ``class``."""
-    gdf = read_vector(path, what="plot file")
-    where = f"plot file {path}"
+def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...], grid: Grid, aoi=None,
+               layer: str = ""):
+    """Read and check training plots; return a GeoDataFrame in the grid CRS with ``plot_id`` and ``class``.
+
+    ``layer`` names the layer of a file with several (``plots.layer``); such a file without it is refused.
+    """
+    gdf = read_vector(path, layer=layer or None, what="plot file", key="plots.layer")
+    where = f"plot file {path}" + (f" (layer {layer!r})" if layer else "")
+    if len(gdf) == 0:
+        raise SamplesError(f"{where}: the file holds no plot (no feature); add the labelled plots to it, or "
+                           "set plots.path (and plots.layer) to the file and layer that hold them")
     if class_field not in gdf.columns:
         raise SamplesError(f"{where}: no class field {class_field!r}; fields are {list(gdf.columns.drop('geometry'))}. "
                            "Set plots.class_field in the project file")
@@ -53,6 +60,7 @@ def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...
             raise SamplesError(f"{where}: duplicate plot id(s) with different labels: {bad[:10]}; "
                                "give each plot a unique id")
     gdf = gdf.to_crs(grid.crs)
+    plot_warnings(gdf, where)
     if aoi is not None:
         inside = gdf.geometry.intersects(aoi.to_crs(grid.crs).union_all())
         if not inside.any():
@@ -67,6 +75,65 @@ def read_plots(path, *, class_field: str, id_field: str, classes: tuple[str, ...
 
 
 PLOT_GEOMETRIES = ("Polygon", "MultiPolygon", "Point")
+
+
+def plot_warnings(gdf, where: str) -> list[str]:
+    """Warn (:class:`~wetlandflow.errors.PlausibilityWarning`) about plots that are valid but look wrong.
+
+    * one id on several features with the same label: read as one multipart plot (its pixels share a fold),
+      which is right for a plot drawn in parts and wrong for two plots given the same id by mistake;
+    * plots of different labels that overlap: the pixels they share train both classes.
+    """
+    import geopandas as gpd
+
+    from ..errors import PlausibilityWarning
+
+    found = []
+    counts = gdf.groupby("plot_id").size()
+    dup = counts[counts > 1].index.tolist()
+    if dup:
+        found.append(f"{where}: {len(dup)} plot id(s) on several features with the same label, read as one "
+                     f"multipart plot each: {dup[:10]}. If they are separate plots, give each a unique id")
+    polys = gdf[gdf.geom_type.isin(["Polygon", "MultiPolygon"])]
+    if len(polys) > 1:
+        pairs = gpd.sjoin(polys[["plot_id", "class", "geometry"]], polys[["plot_id", "class", "geometry"]],
+                          predicate="intersects")
+        pairs = pairs[(pairs["class_left"] != pairs["class_right"])
+                      & (pairs["plot_id_left"] < pairs["plot_id_right"])]
+        # shared area, not a shared edge (neighbouring plots drawn against each other touch)
+        other = gpd.GeoSeries(polys.geometry.loc[pairs["index_right"]].to_numpy(), index=pairs.index,
+                              crs=polys.crs)
+        pairs = pairs[pairs.geometry.intersection(other).area > 0]
+        if len(pairs):
+            shown = [f"{a} ({ca}) / {b} ({cb})" for a, ca, b, cb in pairs[
+                ["plot_id_left", "class_left", "plot_id_right", "class_right"]].itertuples(index=False)][:10]
+            found.append(f"{where}: {len(pairs)} pair(s) of overlapping plots with different labels: "
+                         f"{', '.join(shown)}; their shared pixels train both classes. Correct the outlines "
+                         "or the labels")
+    for message in found:
+        warnings.warn(message, PlausibilityWarning, stacklevel=3)
+    return found
+
+
+def check_class_plots(pixels: pd.DataFrame, plots, classes: tuple[str, ...], *, where: str,
+                      pixel_size_m: float | None = None) -> None:
+    """Refuse a class of the scheme that no plot trains: no plot at all, or plots without a pixel centre.
+
+    A model cannot learn such a class; a run would map an inventory that can never show it, and the
+    accuracy figures would not say so.
+    """
+    with_pixels = set(pixels["class"]) if len(pixels) else set()
+    n_plots = plots.groupby("class").size() if len(plots) else pd.Series(dtype=int)
+    empty = [c for c in classes if c not in with_pixels]
+    if not empty:
+        return
+    detail = "; ".join(f"{c!r}: no plot" if not n_plots.get(c, 0) else
+                       f"{c!r}: {int(n_plots[c])} plot(s), none holding a pixel centre"
+                       + (f" of the {pixel_size_m:g} m grid" if pixel_size_m else "") for c in empty)
+    raise SamplesError(f"{where}: class(es) of the scheme without training data ({detail}); the model "
+                       "could never map them. Add plots of these classes to the plot file (or, for plots "
+                       "smaller than a pixel, use a smaller grid.pixel_size_m), or remove the classes from "
+                       "[classes].names (and [classes.parents]) in the project file")
 
 
 def _check_geometries(gdf, where: str) -> None:

@@ -89,6 +89,7 @@ __all__ = [
     "plot_distance_ecdf",
     "plot_folds",
     "random_pixel_kfold",
+    "require_testable_folds",
     "spatial_early_stopping",
     "spatial_grid_search",
     "subset_splitter",
@@ -368,7 +369,11 @@ def assign_folds(
         e.g. ShuffleSplit), so that one fold id per sample does not exist.
     """
     folds = np.full(_n_rows(X), -1, dtype=int)
-    for f, (_, test) in enumerate(splitter.split(X, y, groups)):
+    with warnings.catch_warnings():
+        # KFold (the random design) takes no groups and says so; the caller gave them for the other designs
+        warnings.filterwarnings("ignore", message="The groups parameter is ignored")
+        splits = list(splitter.split(X, y, groups))
+    for f, (_, test) in enumerate(splits):
         if (folds[test] >= 0).any():
             raise ValidationDesignError(
                 f"{splitter!r} tests some samples more than once (fold {f}); assign_folds needs test sets "
@@ -409,12 +414,17 @@ def check_splits(
     plots = _groups_or_rows(groups, y_arr.size)
     splits = list(splits)
     n_plots = pd.Series(plots).groupby(y_arr).nunique()
-    few = n_plots[n_plots < len(splits)]
+    tested = {cls: [f for f, (_, test) in enumerate(splits)
+                    if (y_arr[np.asarray(test, dtype=int)] == cls).any()] for cls in n_plots.index}
+    # warn only when the folds in use really leave the class out of a test side (a random pixel design
+    # puts a one-plot class in every test fold: no warning is due there)
+    few = n_plots[[n < len(splits) and len(tested[cls]) < len(splits) for cls, n in n_plots.items()]]
     for cls, n in few.items():
+        absent = [f for f in range(len(splits)) if f not in tested[cls]]
         warnings.warn(
-            f"class {cls!r} has {n} plot(s) but there are {len(splits)} folds, so it is absent from some "
-            "test folds. Collect more plots, merge it with a similar class, or use fewer folds "
-            "(validation.n_folds in the project file).",
+            f"class {cls!r} has {n} plot(s) but there are {len(splits)} folds, so it is absent from the "
+            f"test side of fold(s) {absent}. Collect more plots, merge it with a similar class, or use fewer "
+            "folds (validation.n_folds in the project file).",
             FewPlotsWarning,
             stacklevel=3,
         )
@@ -424,13 +434,54 @@ def check_splits(
             if side == "test":
                 missing -= set(few.index)
             for cls in sorted(missing, key=str):
-                _policy(
-                    on_missing,
-                    f"class {cls!r} ({n_plots[cls]} plot(s) in total) is missing from the {side} side of "
-                    f"fold {f}. Expected every class on both sides of every fold. Merge {cls!r} with a "
-                    f"similar class, collect more plots of it, or use fewer folds (validation.n_folds, now "
-                    f"{len(splits)}).",
-                )
+                _policy(on_missing, _missing_message(cls, n_plots[cls], side, f, len(splits)))
+
+
+def _missing_message(cls: Any, n: int, side: str, fold: int, k: int, design: str = "") -> str:
+    where = f" (validation.design = {design!r})" if design else ""
+    return (f"class {cls!r} ({n} plot(s) in total) is missing from the {side} side of fold {fold}{where}. "
+            f"Expected every class on both sides of every fold. Merge {cls!r} with a similar class, collect "
+            f"more plots of it, or use fewer folds (validation.n_folds, now {k}).")
+
+
+def require_testable_folds(
+    y: ArrayLike, folds: ArrayLike, groups: ArrayLike | None = None, *, design: str = ""
+) -> None:
+    """Refuse folds whose cross-validated accuracy would be a silently wrong number, whatever the design.
+
+    Refused (:class:`~wetlandflow.errors.ValidationDesignError`), the same way for every design:
+
+    * a class missing from the training side of a fold that tests it: its test samples are scored by a
+      model that cannot predict them (a one-plot class under plot-grouped folds always is);
+    * a class that no test fold holds: the accuracy never tests it;
+    * fewer than two classes tested: an overall accuracy over one class says nothing about the map.
+
+    What remains (a class absent from some test folds) is warned by :func:`check_splits`.
+    """
+    y_arr = np.asarray(y)
+    folds = np.asarray(folds)
+    plots = _groups_or_rows(groups, y_arr.size)
+    n_plots = pd.Series(plots).groupby(y_arr).nunique()
+    ids = np.unique(folds[folds >= 0])
+    k = len(ids)
+    for f in ids:
+        train, test = folds != f, folds == f
+        for cls in sorted(set(y_arr[test]) - set(y_arr[train]), key=str):
+            raise ValidationDesignError(_missing_message(cls, n_plots[cls], "training", int(f), k, design))
+    never = sorted(set(y_arr) - set(y_arr[folds >= 0]), key=str)
+    if never:
+        raise ValidationDesignError(
+            f"class {never[0]!r} ({n_plots[never[0]]} plot(s) in total) is in no test fold "
+            f"(validation.design = {design!r}), so the cross-validated accuracy would never test it. Collect "
+            "more plots of it, or use fewer folds (validation.n_folds)")
+    n_tested = len(set(y_arr[folds >= 0]))
+    if n_tested < 2:
+        raise ValidationDesignError(
+            f"the test folds hold {n_tested} class(es) (validation.design = {design!r}): an "
+            "overall accuracy over fewer than two classes says nothing about the map. Collect plots of more "
+            "classes, or use fewer folds (validation.n_folds)")
+    idx = np.arange(folds.size)
+    check_splits(y_arr, [(idx[folds != f], idx[folds == f]) for f in ids], plots, on_missing="warn")
 
 
 def check_folds(
