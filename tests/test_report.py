@@ -321,8 +321,30 @@ def test_class_definitions_and_full_labels_in_report(report):
     text = section(report["md"], "Classes mapped")
     for label in ("Shallow open water", "Marsh", "Swamp", "Fen", "Bog"):
         assert f"| {label} |" in text
-    assert "Canadian Wetland Classification System" in text
-    assert "ISBN 0-662-25857-6" in text
+    assert "Canadian Wetland Classification System (National Wetlands Working Group 1997)" in text
+    refs = section(report["md"], "References")  # cited in the bibliography, not only inline
+    entry = next(line for line in refs.splitlines() if "National Wetlands Working Group (1997)" in line)
+    assert "The Canadian Wetland Classification System" in entry and "ISBN 0-662-25857-6" in entry
+
+
+def test_project_definitions_replace_the_defaults_in_table_and_legend(run_dir, tmp_path):
+    """``[classes] definitions`` as recorded in the manifest: the report's table and the map legend use them."""
+    from wetlandflow.report.figures import _labels
+
+    copy = tmp_path / "defs"
+    shutil.copytree(run_dir, copy)
+    manifest = json.loads((copy / "manifest.json").read_text())
+    manifest["project"]["classes"]["definitions"] = {
+        "fen": "Sedge peatland fed by seepage from the valley sides.",
+        "bog": {"label": "Raised bog", "definition": "Rain-fed Sphagnum peatland."}}
+    (copy / "manifest.json").write_text(json.dumps(manifest))
+    run = RunFolder(copy)
+    assert _labels(run)["bog"] == "Raised bog" and _labels(run)["fen"] == "Fen"
+    text = section(write_report(copy)["markdown"].read_text(), "Classes mapped")
+    assert "| Raised bog | bog | Rain-fed Sphagnum peatland. |" in text
+    assert "| Fen | fen | Sedge peatland fed by seepage from the valley sides. |" in text
+    assert "project's own" in text and "Fen, Raised bog" in text
+    assert "| Marsh | marsh |" in text  # no definition given: the default stays
 
 
 @pytest.mark.reference

@@ -93,6 +93,12 @@ def _record_inputs(manifest: Manifest, project: Project) -> None:
         project.root) else str(p), "sha256": sha256_file(p)} for k, p in files.items()}
 
 
+def scheme_config(classes: dict[str, Any]) -> dict[str, Any]:
+    """The ``[classes]`` settings that shape the samples and models: all but the definitions, which are words
+    for people (editing them must not refit anything)."""
+    return {k: v for k, v in classes.items() if k != "definitions"}
+
+
 def feature_names(samples: pd.DataFrame) -> list[str]:
     return [c for c in samples.columns if c not in ("plot_id", "class", "x", "y")]
 
@@ -347,7 +353,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
             rec["features"] = {k: dict(v.attrs) for k, v in cube.data_vars.items()}
             rec["season_coverage"] = season_coverage(cube, inputs.aoi, project.seasons)
 
-    k_samples = step_key(k_feat, cfg["plots"], cfg["classes"], cfg["samples"], seed, hashes["plots"])
+    k_samples = step_key(k_feat, cfg["plots"], scheme_config(cfg["classes"]), cfg["samples"], seed, hashes["plots"])
     samples_path = run_dir / "samples.parquet"
     if manifest.reusable("samples", k_samples, [samples_path], uses=[zarr_path]):
         samples = pd.read_parquet(samples_path)
