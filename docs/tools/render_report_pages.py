@@ -15,8 +15,9 @@ import argparse
 import io
 import shutil
 import tempfile
-import tomllib
 from pathlib import Path
+
+import tomllib
 
 ROOT = Path(__file__).resolve().parents[2]
 LIGHT = {"model": {"n_estimators": 30}, "validation": {"n_folds": 3, "block_size_m": 200.0},
