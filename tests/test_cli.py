@@ -36,7 +36,7 @@ def test_help_carries_the_caution(capsys):
     assert "screening-level" in capsys.readouterr().out
 
 
-# -- totals first, the blind sample and its plan: on a light run of the committed small demo ---------------------
+# -- totals first, the blind sample and its plan: on a light run of the committed small demo -------------
 @pytest.fixture(scope="module")
 def light_run(tmp_path_factory):
     from test_lock import light_copy
@@ -63,9 +63,10 @@ def test_run_summary_leads_with_the_total_wetland_area(light_run):
     body = [line for line in text.splitlines()[1:] if line.strip()]
     areas = pd.read_csv(result.run_dir / "areas.csv").set_index("class")
     wetland = areas.loc[["marsh", "swamp", "fen", "bog"], "mapped_area_ha"].sum()
-    assert body[0] == (f"Total wetland area (marsh, swamp, fen, bog): {wetland:,.1f} ha mapped (a pixel count, not "
-                       "error-adjusted: no labelled sample assessed)")
-    assert text.index("Total wetland area") < text.index("Class areas") < text.index("Cross-validated overall")
+    assert body[0] == (f"Total wetland area (marsh, swamp, fen, bog): {wetland:,.1f} ha mapped (a pixel "
+                       "count, not error-adjusted: no labelled sample assessed)")
+    order = [text.index(s) for s in ("Total wetland area", "Class areas", "Cross-validated overall")]
+    assert order == sorted(order)
     for name, ha in areas["mapped_area_ha"].items():
         assert any(line.split()[:2] == [name, f"{ha:,.1f}"] for line in body), name
     assert CAUTION in text
@@ -87,14 +88,15 @@ def test_sample_prints_its_plan_and_writes_a_blind_sample(light_run, capsys):
     sdir = result.run_dir / "validation_sample"
     design = json.loads((sdir / "sample_design.json").read_text())
     n = design["n_total"]
-    assert out.index(f"validation sample: {n} points") < out.index("Labelling effort") < out.index("written to")
+    order = [out.index(s) for s in (f"validation sample: {n} points", "Labelling effort", "written to")]
+    assert order == sorted(order)
     assert f"about {n / 40:.1f} hours at 40 points per hour" in out and "common practice, no source" in out
     # the half-widths printed are the estimator's, from the design's proportions and expected accuracies
     users, props = design["expected_users"], design["mapped_proportions"]
     present = {c: props[c] for c in users}
     for what, factor in (("half the points", 0.5), ("as planned", 1.0), ("double the points", 2.0)):
-        alloc = {c: (max(2, round(k * factor)) if factor != 1.0 else k) for c, k in design["per_class"].items()
-                 if c in users}
+        alloc = {c: (max(2, round(k * factor)) if factor != 1.0 else k)
+                 for c, k in design["per_class"].items() if c in users}
         hw = 1.959964 * expected_overall_se(present, users, alloc)
         line = next(line for line in out.splitlines() if line.strip().startswith(what))
         assert f" {sum(alloc.values())} points " in line and line.endswith(f"+/- {hw:.3f}"), (line, hw)
@@ -128,13 +130,13 @@ def test_assess_leads_with_totals_and_the_summary_then_shows_them_adjusted(light
     out = capsys.readouterr().out.splitlines()
     w = _grouped(result.run_dir, "grouped_area_table.csv").loc["wetland"]
     assert out[0].startswith("Error-adjusted areas from")
-    assert out[1] == (f"Total wetland area (marsh, swamp, fen, bog): {w['estimated_area_ha']:,.1f} ha error-adjusted, "
-                      f"95 % confidence interval {w['ci_low_ha']:,.1f} to {w['ci_high_ha']:,.1f} ha (the map shows "
-                      f"{w['mapped_area_ha']:,.1f} ha)")
+    assert out[1] == (f"Total wetland area (marsh, swamp, fen, bog): {w['estimated_area_ha']:,.1f} ha "
+                      f"error-adjusted, 95 % confidence interval {w['ci_low_ha']:,.1f} to "
+                      f"{w['ci_high_ha']:,.1f} ha (the map shows {w['mapped_area_ha']:,.1f} ha)")
     text = "\n".join(out)
     assert text.index("Total wetland area") < text.index("adjusted ha") < text.index("Overall accuracy")
 
-    summary = result.summary()  # read again from the run folder: now error-adjusted, with the sample's accuracy
+    summary = result.summary()  # read again from the run folder: error-adjusted, with the sample's accuracy
     body = [line for line in summary.splitlines()[1:] if line.strip()]
     assert body[0] == out[1]
     assert summary.index("Total wetland") < summary.index("Class areas") < summary.index(
@@ -171,4 +173,5 @@ def test_run_progress_leaves_every_finished_step_with_its_seconds(tmp_path, caps
         assert any(re.match(rf"{bar}: 100%.*done in \d+\.\d s", line) for line in finals), bar
     assert main(["run", str(project)]) == 0  # a rerun reuses the steps, and says so
     err = capsys.readouterr().err
-    assert f"features: reused from the earlier run (done there in {steps['features']['seconds']:.1f} s)" in err
+    seconds = steps["features"]["seconds"]
+    assert f"features: reused from the earlier run (done there in {seconds:.1f} s)" in err

@@ -223,7 +223,8 @@ def test_progress_says_what_each_configuration_is_doing(demo, capsys):
         prefix = f"[{i}/2] {row.config}: "
         assert f"{prefix}fitting one model per fold\n" in err
         for j in range(1, n_folds + 1):
-            assert re.search(rf"{re.escape(prefix)}fold {j}/{n_folds} \(fold id \d+\) predicted\n", err), (i, j)
+            line = rf"{re.escape(prefix)}fold {j}/{n_folds} \(fold id \d+\) predicted\n"
+            assert re.search(line, err), (i, j)
         assert (f"{prefix}overall accuracy {row.overall_accuracy:.3f}, macro F1 {row.macro_f1:.3f}, "
                 f"done in {row.seconds:.1f} s\n") in err
     finals = [chunk.rsplit("\r", 1)[-1] for chunk in err.split("\n")]

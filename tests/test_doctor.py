@@ -99,7 +99,7 @@ def test_format_lists_every_version(tmp_path):
     assert "PROJ_LIB" in text and "/x" in text and "GDAL_DATA" in text and "(unset)" in text
 
 
-# -- two PROJ builds in separate wheels: information when each reads its own data, a problem otherwise --------
+# -- two PROJ builds in separate wheels: information when each reads its own data, a problem otherwise ----
 def _proj_dir(path, version: str | None):
     """A PROJ data folder whose proj.db records ``PROJ.VERSION`` (as a real one does in its metadata table);
     ``None``: a folder without proj.db."""
@@ -164,7 +164,8 @@ def test_a_library_reading_the_proj_db_of_another_version_is_a_problem(two_wheel
 def test_patch_releases_of_one_proj_share_a_database():
     """PROJ's database layout follows its minor release: 9.5.0 reading the proj.db of 9.5.1 is consistent."""
     info = {"versions": {"PROJ (rasterio)": "9.5.0", "PROJ (pyproj)": "9.5.1"},
-            "proj_data": {"rasterio": "/a", "pyproj": "/b"}, "proj_db": {"rasterio": "9.5.1", "pyproj": "9.5.1"}}
+            "proj_data": {"rasterio": "/a", "pyproj": "/b"},
+            "proj_db": {"rasterio": "9.5.1", "pyproj": "9.5.1"}}
     assert find_problems(info, {}, []) == [] and len(find_notes(info)) == 1
 
 
@@ -180,8 +181,8 @@ def test_proj_db_version_reads_the_first_folder_holding_one(tmp_path):
 def test_every_problem_says_what_a_pip_user_can_do(tmp_path):
     info = clean_info(tmp_path)
     cases = [
-        find_problems(info | {"proj_data": {"rasterio": str(tmp_path / "a"), "pyproj": str(tmp_path / "b")}}, {},
-                      []),
+        find_problems(info | {"proj_data": {"rasterio": str(tmp_path / "a"), "pyproj": str(tmp_path / "b")}},
+                      {}, []),
         find_problems(info | {"versions": {"PROJ (rasterio)": "9.7.1", "PROJ (pyproj)": "9.5.1"}}, {}, []),
         find_problems(info | {"proj_db": {"rasterio": "9.5.1", "pyproj": ""}}, {}, []),
         find_problems(info | {"proj_db": {"rasterio": "9.4.0", "pyproj": "9.5.1"}}, {}, []),
@@ -192,4 +193,5 @@ def test_every_problem_says_what_a_pip_user_can_do(tmp_path):
     assert all(cases), cases  # each rule fired
     for problems in cases:
         for p in problems:
-            assert "With pip: " in p and ("pip " in p.split("With pip: ")[1] or "unset" in p.split("With pip: ")[1]), p
+            advice = p.split("With pip: ")[1]
+            assert "pip " in advice or "unset" in advice, p

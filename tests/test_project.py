@@ -74,7 +74,8 @@ def test_hash_changes_with_parameters(project_copy, small_demo):
          "classes.definitions.peatland", "unknown class 'peatland'"),
         (lambda d: d["classes"].update(definitions={"fen": {"label": "Fen"}}), "classes.definitions.fen",
          "definition"),
-        (lambda d: d["classes"].update(definitions={"fen": 3}), "classes.definitions.fen", "expected a string"),
+        (lambda d: d["classes"].update(definitions={"fen": 3}), "classes.definitions.fen",
+         "expected a string"),
     ],
 )
 def test_bad_project_files_name_the_key(project_copy, mutate, key, words):
@@ -105,12 +106,13 @@ def test_class_definitions_fall_back_to_the_defaults(project_copy):
 
 
 def test_class_definitions_do_not_change_the_samples_step_key(project_copy, small_demo):
-    """Definitions are words for people: editing them must not refit anything (they are left out of the key)."""
+    """Definitions are words for people: editing them must not refit anything (left out of the key)."""
     from wetlandflow.inputs.project import portable_dict
     from wetlandflow.pipeline.run import scheme_config
 
     a = portable_dict(load_project(small_demo))["classes"]
-    b = portable_dict(load_project(project_copy(lambda d: d["classes"].update(definitions={"fen": "x"}))))["classes"]
+    edited = project_copy(lambda d: d["classes"].update(definitions={"fen": "x"}))
+    b = portable_dict(load_project(edited))["classes"]
     assert a["definitions"] == {} and b["definitions"] == {"fen": "x"}
     assert scheme_config(a) == scheme_config(b) and "names" in scheme_config(a)
     c = portable_dict(load_project(project_copy(lambda d: d["classes"]["parents"].update(wetland=["marsh"]))))

@@ -328,7 +328,8 @@ def test_class_definitions_and_full_labels_in_report(report):
 
 
 def test_project_definitions_replace_the_defaults_in_table_and_legend(run_dir, tmp_path):
-    """``[classes] definitions`` as recorded in the manifest: the report's table and the map legend use them."""
+    """``[classes] definitions`` as recorded in the manifest: the report's table and the map legend use
+    them."""
     from wetlandflow.report.figures import _labels
 
     copy = tmp_path / "defs"

@@ -285,7 +285,8 @@ def test_read_detects_a_different_map(tmp_path, class_map, drawn):
 
 
 def test_blind_sample_with_map_classes_aside(tmp_path, class_map, drawn):
-    """The interpreters' file has no map_class; the table kept aside is joined back by sample_id and checked."""
+    """The interpreters' file has no map_class; the table kept aside is joined back by sample_id and
+    checked."""
     labelled = drawn.drop(columns="map_class")
     labelled["reference_class"] = "upland"
     path = write_sample(labelled, tmp_path / "blind.gpkg")

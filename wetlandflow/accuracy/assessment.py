@@ -154,15 +154,16 @@ class SamplePlan:
     def text(self) -> str:
         """What the sample will cost and give, printed before it is written."""
         codes = class_codes(self.project)
-        lines = [f"validation sample: {self.n_total} points (formula: {self.n_from_formula} for a standard error of "
-                 f"{self.target_se:g} in overall accuracy), {self.allocation} allocation:"]
+        lines = [f"validation sample: {self.n_total} points (formula: {self.n_from_formula} for a standard "
+                 f"error of {self.target_se:g} in overall accuracy), {self.allocation} allocation:"]
         lines += [f"  {codes[c]:<12s} {n:>6d}" for c, n in self.per_class.items()]
-        lines += ["", f"Labelling effort: about {self.hours:.1f} hours at {self.points_per_hour:g} points per hour "
-                      "(a rule of thumb: common practice, no source; --points-per-hour sets yours).",
+        lines += ["", f"Labelling effort: about {self.hours:.1f} hours at {self.points_per_hour:g} points "
+                      "per hour (a rule of thumb: common practice, no source; --points-per-hour sets yours).",
                   "Expected 95 % confidence half-width of overall accuracy (Olofsson et al. 2014 stratified "
                   "estimator, if user's accuracies come out at "
                   f"{_users_text(self.expected_users, codes)}), the same allocation scaled in every class:"]
-        for key, what in (("half", "half the points"), ("planned", "as planned"), ("double", "double the points")):
+        for key, what in (("half", "half the points"), ("planned", "as planned"),
+                          ("double", "double the points")):
             n, hw = self.half_widths[key]
             lines.append(f"  {what:<18s} {n:>6d} points  +/- {hw:.3f}")
         return "\n".join(lines)
@@ -170,7 +171,9 @@ class SamplePlan:
 
 def _users_text(users: Mapping[int, float], codes: Mapping[int, str]) -> str:
     values = set(users.values())
-    return f"{values.pop():g}" if len(values) == 1 else ", ".join(f"{codes[c]} {u:g}" for c, u in users.items())
+    if len(values) == 1:
+        return f"{values.pop():g}"
+    return ", ".join(f"{codes[c]} {u:g}" for c, u in users.items())
 
 
 def _scaled(per_class: Mapping[int, int], factor: float) -> dict[int, int]:
@@ -209,8 +212,9 @@ def plan_sample(project: Project | str | Path, *, target_se: float = 0.01,
         se = expected_overall_se(present, {c: users[c] for c in present}, scaled)
         widths[key] = (int(sum(scaled.values())), z * se)
     return SamplePlan(p, target_se, allocation, min_per_class, exclude_buffer_m,
-                      p.project.seed if seed is None else seed, int(n), alloc, {c: float(w) for c, w in props.items()},
-                      {c: users[c] for c in present}, widths, float(points_per_hour))
+                      p.project.seed if seed is None else seed, int(n), alloc,
+                      {c: float(w) for c, w in props.items()}, {c: users[c] for c in present}, widths,
+                      float(points_per_hour))
 
 
 def design_sample(project: Project | str | Path, *, target_se: float = 0.01,
@@ -266,7 +270,8 @@ def design_sample(project: Project | str | Path, *, target_se: float = 0.01,
     _write_text(out / INSTRUCTIONS_NAME, labelling_instructions(
         p.classes.names, sample_definitions(p), n_points=plan.n_total, project_name=p.project.name))
     write_json({"n_total": plan.n_total, "n_from_formula": plan.n_from_formula, "target_se": plan.target_se,
-                "allocation": plan.allocation, "per_class": {codes[c]: int(k) for c, k in plan.per_class.items()},
+                "allocation": plan.allocation,
+                "per_class": {codes[c]: int(k) for c, k in plan.per_class.items()},
                 "expected_users": {codes[c]: u for c, u in plan.expected_users.items()},
                 "mapped_proportions": {codes[c]: w for c, w in plan.proportions.items()},
                 "exclude_buffer_m": plan.exclude_buffer_m, "seed": plan.seed,
@@ -274,9 +279,9 @@ def design_sample(project: Project | str | Path, *, target_se: float = 0.01,
                 "expected_overall_ci95_half_width": {k: {"n": n, "half_width": round(hw, 5)}
                                                      for k, (n, hw) in plan.half_widths.items()},
                 "instructions": "Fill reference_class for every point with a class name of the scheme from "
-                                f"imagery or field visits, as {SAMPLE_DIR}/{INSTRUCTIONS_NAME} describes (the file "
-                                "has no map class, so that the map cannot steer the labels); then run "
-                                "`wetlandflow assess PROJECT.toml " + f"{SAMPLE_DIR}/sample.gpkg`."},
+                                f"imagery or field visits, as {SAMPLE_DIR}/{INSTRUCTIONS_NAME} describes "
+                                "(the file has no map class, so that the map cannot steer the labels); then "
+                                "run `wetlandflow assess PROJECT.toml " + f"{SAMPLE_DIR}/sample.gpkg`."},
                out / "sample_design.json")
     return path
 
@@ -339,7 +344,8 @@ def assess(project: Project | str | Path, labelled: str | Path, *, design: str =
     mapped = mapped_areas(cmap, codes, abs(dx * dy))
     write_table(areas_table(mapped, result.area_table, confidence=result.confidence), p.run_dir / "areas.csv")
     return {"n": int(len(gdf)), "overall_accuracy": result.overall.value, "overall_se": result.overall.se,
-            "overall_ci_half_width": result.overall.ci, "confidence": result.confidence, "folder": str(out), "area_table": result.area_table, "accuracy_table": result.accuracy_table}
+            "overall_ci_half_width": result.overall.ci, "confidence": result.confidence, "folder": str(out),
+            "area_table": result.area_table, "accuracy_table": result.accuracy_table}
 
 
 def map_classes_file(run_dir: Path, labelled: Path) -> Path | None:

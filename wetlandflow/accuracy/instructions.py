@@ -36,25 +36,26 @@ def labelling_instructions(class_names: Sequence[str], definitions: Mapping[str,
             for n in class_names]
     return "\n".join([
         title, "",
-        f"`{sample_file}` holds {n_points} points (layer `sample`). For every point, write the class you see at "
-        "the point into the column `reference_class`, using the code name of the table below.", "",
+        f"`{sample_file}` holds {n_points} points (layer `sample`). For every point, write the class you see "
+        "at the point into the column `reference_class`, using the code name of the table below.", "",
         "## How", "",
-        "1. Open the file in a GIS (QGIS, ArcGIS) over the best imagery you have from the season and year of the "
-        "map: aerial photos, high-resolution satellite images, field notes or site visits.",
+        "1. Open the file in a GIS (QGIS, ArcGIS) over the best imagery you have from the season and year of "
+        "the map: aerial photos, high-resolution satellite images, field notes or site visits.",
         "2. Judge the ground at the point itself (the pixel under it), not the surrounding patch.",
-        "3. Label every point. Where you cannot decide, choose the most likely class and say why in a note kept "
-        "with your records; do not leave a point empty.", "",
+        "3. Label every point. Where you cannot decide, choose the most likely class and say why in a note "
+        "kept with your records; do not leave a point empty.", "",
         "## Do not", "",
-        "- look at the wetland map, its class layers or its probabilities while labelling: the file deliberately "
-        "has no map class, so that the map cannot steer the labels;",
-        "- delete, add or move points, or change `sample_id`: the points are a probability sample, and dropping or "
-        "moving points can bias the accuracy and area estimates;",
+        "- look at the wetland map, its class layers or its probabilities while labelling: the file "
+        "deliberately has no map class, so that the map cannot steer the labels;",
+        "- delete, add or move points, or change `sample_id`: the points are a probability sample, and "
+        "dropping or moving points can bias the accuracy and area estimates;",
         "- rename the file's columns.", "",
         "## Classes", "",
         "| code name | class | definition |",
         "|---|---|---|",
         *rows, "",
         "## When done", "",
-        "Return the file. The analyst runs `wetlandflow assess PROJECT.toml <the labelled file>`, which joins the "
-        "map classes kept aside in `map_classes.csv` and estimates the accuracy and the error-adjusted areas.", "",
+        "Return the file. The analyst runs `wetlandflow assess PROJECT.toml <the labelled file>`, which "
+        "joins the map classes kept aside in `map_classes.csv` and estimates the accuracy and the "
+        "error-adjusted areas.", "",
     ])

@@ -507,7 +507,8 @@ def write_sample(gdf: gpd.GeoDataFrame, path: str | Path, *, overwrite: bool = F
 
 
 def write_map_classes(gdf: pd.DataFrame, path: str | Path) -> Path:
-    """Write ``sample_id, map_class`` of a drawn sample to a CSV file: the strata, kept from the interpreters."""
+    """Write ``sample_id, map_class`` of a drawn sample to a CSV file: the strata, kept from the
+    interpreters."""
     from ..inputs.io import write_table
 
     return write_table(pd.DataFrame(gdf.loc[:, list(MAP_CLASS_COLUMNS)]), Path(path))
@@ -524,8 +525,9 @@ def read_map_classes(path: str | Path) -> pd.Series:
     table = pd.read_csv(path)
     missing = [c for c in MAP_CLASS_COLUMNS if c not in table.columns]
     if missing:
-        raise ValidationDesignError(f"{path}: columns {missing} are missing (found {list(table.columns)}); it "
-                                    "must keep the columns sample_id and map_class written by `wetlandflow sample`.")
+        raise ValidationDesignError(f"{path}: columns {missing} are missing (found {list(table.columns)}); "
+                                    "it must keep the columns sample_id and map_class written by "
+                                    "`wetlandflow sample`.")
     dup = table["sample_id"][table["sample_id"].duplicated()].unique()
     if dup.size:
         raise ValidationDesignError(f"{path}: duplicate sample_id {_listed(list(dup))}; restore the file "
@@ -667,13 +669,15 @@ def read_labelled_sample(
         absent = ~pd.Series(ids).isin(map_classes.index).to_numpy()
         if absent.any():
             fail("the map-class table has no row", ids[absent],
-                 "The labelled file and map_classes.csv come from different draws; use the pair written together "
-                 "by `wetlandflow sample`.")
+                 "The labelled file and map_classes.csv come from different draws; use the pair written "
+                 "together by `wetlandflow sample`.")
         drawn = map_classes.reindex(ids).to_numpy()
         if (drawn != mapped).any():
-            fail("the map class recorded at the draw differs from the map under the point", ids[drawn != mapped],
-                 "The map changed since the sample was drawn, or the file comes from another draw; draw a new "
-                 "sample of this map (wetlandflow sample --overwrite) or assess the map it was drawn from.")
+            fail("the map class recorded at the draw differs from the map under the point",
+                 ids[drawn != mapped],
+                 "The map changed since the sample was drawn, or the file comes from another draw; draw a "
+                 "new sample of this map (wetlandflow sample --overwrite) or assess the map it was drawn "
+                 "from.")
     if "map_class" in gdf.columns:
         differs = gdf["map_class"].notna().to_numpy() & (gdf["map_class"].astype(str).to_numpy() != mapped)
         if differs.any():

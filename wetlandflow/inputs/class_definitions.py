@@ -76,8 +76,9 @@ def check_definitions(table: Mapping[str, object], *, known: tuple[str, ...]) ->
                                    f"({', '.join(known)})", key=key)
         if isinstance(value, str):
             continue
-        if not isinstance(value, Mapping) or "definition" not in value or set(value) - {"label", "definition"}:
-            raise ProjectFileError(f"expected a string, or a table {{label = \"...\", definition = \"...\"}}, "
+        extra = set(value) - {"label", "definition"} if isinstance(value, Mapping) else set()
+        if not isinstance(value, Mapping) or "definition" not in value or extra:
+            raise ProjectFileError("expected a string, or a table {label = \"...\", definition = \"...\"}, "
                                    f"got {value!r}", key=key)
         if not all(isinstance(v, str) for v in value.values()):
             raise ProjectFileError(f"label and definition must be strings, got {value!r}", key=key)

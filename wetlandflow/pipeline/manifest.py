@@ -37,7 +37,7 @@ class Manifest:
     def __init__(self, run_dir: Path, project: Project, check: Callable[[], None] | None = None, *,
                  progress: bool = False):
         self.path = run_dir / "manifest.json"
-        self.progress = progress  # a line on standard error when a step starts, ends (with seconds) or is reused
+        self.progress = progress  # a line on stderr when a step starts, ends (with its seconds) or is reused
         self.run_dir = run_dir
         self.check = check or (lambda: None)
         self.data: dict[str, Any] = {

@@ -353,7 +353,8 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
             rec["features"] = {k: dict(v.attrs) for k, v in cube.data_vars.items()}
             rec["season_coverage"] = season_coverage(cube, inputs.aoi, project.seasons)
 
-    k_samples = step_key(k_feat, cfg["plots"], scheme_config(cfg["classes"]), cfg["samples"], seed, hashes["plots"])
+    k_samples = step_key(k_feat, cfg["plots"], scheme_config(cfg["classes"]), cfg["samples"], seed,
+                         hashes["plots"])
     samples_path = run_dir / "samples.parquet"
     if manifest.reusable("samples", k_samples, [samples_path], uses=[zarr_path]):
         samples = pd.read_parquet(samples_path)
@@ -612,7 +613,8 @@ def plausibility_checks(project: Project, inputs) -> dict[str, Any]:
 def format_totals(run_dir: str | Path, *, classes: bool = True) -> list[str]:
     """The answer first, as printed lines: the total area of each group of classes (``[classes.parents]``, or
     every class but ``upland``), mapped and, once a labelled sample is assessed, error-adjusted with its
-    interval; then (``classes=True``) each class.  Read from the run folder (``areas.csv`` and ``accuracy/``)."""
+    interval; then (``classes=True``) each class.  Read from the run folder (``areas.csv``,
+    ``accuracy/``)."""
     from ..report.run_folder import RunFolder
     from ..report.text import area_totals
 
@@ -630,8 +632,8 @@ def format_totals(run_dir: str | Path, *, classes: bool = True) -> list[str]:
                          f"confidence interval {r.ci_low_ha:,.1f} to {r.ci_high_ha:,.1f} ha (the map shows "
                          f"{r.mapped_ha:,.1f} ha)")
         else:
-            lines.append(f"Total {r.name} area ({r.members}): {r.mapped_ha:,.1f} ha mapped (a pixel count, not "
-                         "error-adjusted: no labelled sample assessed)")
+            lines.append(f"Total {r.name} area ({r.members}): {r.mapped_ha:,.1f} ha mapped (a pixel count, "
+                         "not error-adjusted: no labelled sample assessed)")
     if not lines:
         lines.append(f"Total mapped area of all classes: {totals['mapped_ha'].sum():,.1f} ha")
     if not classes:

@@ -96,11 +96,12 @@ def _ref(key: str, authors: str, year: int, title: str, source: str, checked: st
 # reference lists agree).  Public DOIs only.
 BIBLIOGRAPHY: dict[str, Reference] = {r.key: r for r in (
     # -- class system
-    # record: the book's front matter (title page and imprint: National Wetlands Working Group, eds. B.G. Warner
-    # and C.D.A. Rubec, Wetlands Research Centre, University of Waterloo, 1997; ISBN 0-662-25857-6).
+    # record: the book's front matter (title page and imprint: National Wetlands Working Group, eds.
+    # B.G. Warner and C.D.A. Rubec, Wetlands Research Centre, University of Waterloo, 1997;
+    # ISBN 0-662-25857-6).
     _ref("nwwg1997", "National Wetlands Working Group", 1997, "The Canadian Wetland Classification System",
-         "2nd edition, Warner, B. G., Rubec, C. D. A. (eds.), Wetlands Research Centre, University of Waterloo, "
-         "Waterloo, Ontario", "verified", identifier="ISBN 0-662-25857-6"),
+         "2nd edition, Warner, B. G., Rubec, C. D. A. (eds.), Wetlands Research Centre, University of "
+         "Waterloo, Waterloo, Ontario", "verified", identifier="ISBN 0-662-25857-6"),
     # -- accuracy, areas and sampling
     # record: Canadian Forest Service publications catalogue (NRCan), with DOI; the paper's first page.
     _ref("olofsson2014", "Olofsson, P., Foody, G. M., Herold, M., Stehman, S. V., Woodcock, C. E., Wulder, M. A.",

@@ -130,13 +130,14 @@ def section_summary(run: RunFolder) -> Section:
     blocks: list = []
     if totals is not None:
         blocks.append(Paragraph(_totals_text(run, totals)))
-        blocks.append(Table(_totals_display(run, totals), "Areas of the inventory: groups of classes first, then each "
-                                                     "class"))
+        blocks.append(Table(_totals_display(run, totals),
+                            "Areas of the inventory: groups of classes first, then each class"))
     blocks.append(Paragraph(_headline_accuracy(run)))
     if run.areas is not None and run.class_names:
         blocks.append(Paragraph(
-            f"The run maps {len(run.class_names)} classes ({', '.join(_label(run, n) for n in run.class_names)}) on "
-            f"{run.pixel_size_m:g} m pixels over {ha(run.areas['mapped_area_ha'].sum())} ha."))
+            f"The run maps {len(run.class_names)} classes "
+            f"({', '.join(_label(run, n) for n in run.class_names)}) on {run.pixel_size_m:g} m pixels over "
+            f"{ha(run.areas['mapped_area_ha'].sum())} ha."))
     finished = f", finished {m['finished']}" if m.get("finished") else " (no finish time recorded)"
     blocks.append(Paragraph(
         f"This appendix documents the run of project \"{name}\" recorded in this folder: wetlandflow "
@@ -162,17 +163,18 @@ def section_classes(run: RunFolder) -> Section:
                          "definition": [d.definition or "(no definition given in the project file)"
                                         for d in defs.values()]})
     defaults = [n for n in defs if n in DEFAULT_DEFINITIONS and n not in own]
-    blocks = [Paragraph("The classes of the inventory, with the definitions the plots were labelled by and the "
-                        "interpreters of the validation sample were given.")]
+    blocks = [Paragraph("The classes of the inventory, with the definitions the plots were labelled by and "
+                        "the interpreters of the validation sample were given.")]
     if own:
-        blocks.append(Paragraph(f"The definitions of {', '.join(_label(run, n) for n in defs if n in own)} are "
-                                "the project's own (`[classes] definitions` in the project file)."))
+        named = ", ".join(_label(run, n) for n in defs if n in own)
+        blocks.append(Paragraph(f"The definitions of {named} are the project's own (`[classes] definitions` "
+                                "in the project file)."))
     if defaults:
         cite = run.cite("class_definitions", "definitions of the default classes")
         blocks.append(Paragraph(
             f"The definitions of {', '.join(_label(run, n) for n in defaults)} are wetlandflow's defaults, "
-            f"which describe in short the wetland classes of the Canadian Wetland Classification System ({cite}) "
-            "and the land that is not wetland."))
+            "which describe in short the wetland classes of the Canadian Wetland Classification System "
+            f"({cite}) and the land that is not wetland."))
     return Section("Classes mapped", [*blocks, Table(rows, "Class definitions")])
 
 

@@ -77,8 +77,8 @@ def _cmd_sample(args: argparse.Namespace) -> int:
         print(plan.text(), flush=True)  # before anything is written: size, effort and precision
         path = design_sample(project, plan=plan, overwrite=args.overwrite)
     print(f"\nwritten to {path} (no map class: it is kept in {SAMPLE_DIR}/map_classes.csv for `assess`)\n"
-          f"Give the interpreters {path.name} and {SAMPLE_DIR}/LABELLING.md (instructions and class definitions); "
-          f"they fill reference_class. Then: wetlandflow assess {Path(args.project).name} "
+          f"Give the interpreters {path.name} and {SAMPLE_DIR}/LABELLING.md (instructions and class "
+          f"definitions); they fill reference_class. Then: wetlandflow assess {Path(args.project).name} "
           f"{SAMPLE_DIR}/{path.name}")
     return 0
 
@@ -101,8 +101,8 @@ def format_assessment(project, labelled, *, design: str = "stratified") -> str:
     res = assess(project, labelled, design=design)
     table, acc = res["area_table"], res["accuracy_table"].set_index("class")
     half, conf = res["overall_ci_half_width"], f"{100 * res['confidence']:g} %"
-    lines = [f"Error-adjusted areas from {res['n']} labelled sample points ({design} estimator, Olofsson et al. "
-             "2014):", *format_totals(project.run_dir, classes=False), "",
+    lines = [f"Error-adjusted areas from {res['n']} labelled sample points ({design} estimator, Olofsson "
+             "et al. 2014):", *format_totals(project.run_dir, classes=False), "",
              f"  {'class':<12s} {'mapped ha':>10s} {'adjusted ha':>12s} {'95% CI ha':>21s} {'user':>6s} "
              f"{'producer':>9s}"]
     notes = []

@@ -126,11 +126,11 @@ def find_notes(info: Mapping[str, Any]) -> list[str]:
         return []
     a, b = v.get("PROJ (rasterio)"), v.get("PROJ (pyproj)")
     same = "the same PROJ version" if a == b else f"PROJ {a} and PROJ {b}"
-    return [f"rasterio and pyproj each bring their own PROJ build ({same}), each with the proj.db of its own "
-            f"version ({ras} and {pyp}), as their pip wheels do. Each is consistent with itself, so this is not "
-            "a problem; the two may hold different EPSG database releases, so for a few CRS pairs a raster "
-            "(rasterio) and a vector (pyproj) reprojection can choose different transformations. Nothing to do "
-            "unless two outputs that should overlay do not."]
+    return [f"rasterio and pyproj each bring their own PROJ build ({same}), each with the proj.db of its "
+            f"own version ({ras} and {pyp}), as their pip wheels do. Each is consistent with itself, so this "
+            "is not a problem; the two may hold different EPSG database releases, so for a few CRS pairs a "
+            "raster (rasterio) and a vector (pyproj) reprojection can choose different transformations. "
+            "Nothing to do unless two outputs that should overlay do not."]
 
 
 def _same_dir(ras: str, pyp: str) -> bool:
@@ -141,38 +141,43 @@ def _major_minor(version: str) -> tuple[str, ...]:
     return tuple(version.split(".")[:2])
 
 
+def _own_data_problems(lib: str, folder: str, loaded: str, db: str) -> list[str]:
+    """A library that reads no proj.db, or the proj.db of another PROJ minor release than it loads."""
+    if not folder:
+        return []
+    unset = "unset PROJ_DATA and PROJ_LIB if set"
+    if not db:
+        return [f"{lib} (PROJ {loaded}) finds no readable proj.db in {folder}, so CRS lookups fail. With "
+                f"pip: {unset}, then reinstall the wheel, which ships its own data (pip install "
+                f"--force-reinstall --no-deps {lib})."]
+    if loaded and _major_minor(db) != _major_minor(loaded):
+        return [f"{lib} loads PROJ {loaded} but reads the proj.db of PROJ {db} in {folder}; a database of "
+                "another PROJ version can fail or give different CRS definitions. With pip: "
+                f"{unset} (the {lib} wheel then uses the proj.db bundled with it); if that is not it, pip "
+                f"install --force-reinstall --no-deps {lib}."]
+    return []
+
+
 def _proj_problems(info: Mapping[str, Any]) -> list[str]:
     data, v = info.get("proj_data", {}), info.get("versions", {})
     ras, pyp = data.get("rasterio", ""), data.get("pyproj", "")
     dbs = info.get("proj_db")
     if dbs is not None:  # what each library's data folder holds is known: judge each library on its own
-        out = []
-        for lib, folder in (("rasterio", ras), ("pyproj", pyp)):
-            loaded, db = v.get(f"PROJ ({lib})", ""), dbs.get(lib, "")
-            if not folder:
-                continue
-            if not db:
-                out.append(f"{lib} (PROJ {loaded}) finds no readable proj.db in {folder}, so CRS lookups fail. "
-                           f"With pip: unset PROJ_DATA and PROJ_LIB if set, then reinstall the wheel, which "
-                           f"ships its own data (pip install --force-reinstall --no-deps {lib}).")
-            elif loaded and _major_minor(db) != _major_minor(loaded):
-                out.append(f"{lib} loads PROJ {loaded} but reads the proj.db of PROJ {db} in {folder}; a database "
-                           "of another PROJ version can fail or give different CRS definitions. With pip: unset "
-                           f"PROJ_DATA and PROJ_LIB if set (the {lib} wheel then uses the proj.db bundled with "
-                           f"it); if that is not it, pip install --force-reinstall --no-deps {lib}.")
-        return out
+        return [p for lib, folder in (("rasterio", ras), ("pyproj", pyp))
+                for p in _own_data_problems(lib, folder, v.get(f"PROJ ({lib})", ""), dbs.get(lib, ""))]
     out = []  # a record without proj.db versions (an older record): the cautious rules
     if ras and pyp and not _same_dir(ras, pyp):
         out.append(f"two PROJ data directories: rasterio searches {ras}, pyproj uses {pyp}; rasters and "
                    "vectors may be reprojected with different CRS databases. With pip: unset PROJ_DATA and "
-                   "PROJ_LIB if set, and run wetlandflow doctor again, which then checks that each wheel reads "
-                   "the proj.db of its own PROJ (pip install --upgrade rasterio pyproj brings current wheels).")
+                   "PROJ_LIB if set, and run wetlandflow doctor again, which then checks that each wheel "
+                   "reads the proj.db of its own PROJ (pip install --upgrade rasterio pyproj brings current "
+                   "wheels).")
     a, b = v.get("PROJ (rasterio)"), v.get("PROJ (pyproj)")
     if a and b and a != b:
         out.append(f"two PROJ libraries are loaded: PROJ {a} by rasterio and PROJ {b} by pyproj; a CRS "
                    "transformation may differ between them. With pip: pip install --upgrade rasterio pyproj "
-                   "(wheels of the same release period bundle close PROJ versions), and run wetlandflow doctor "
-                   "again to see whether each reads its own data.")
+                   "(wheels of the same release period bundle close PROJ versions), and run wetlandflow "
+                   "doctor again to see whether each reads its own data.")
     return out
 
 
@@ -186,15 +191,17 @@ def _env_problems(env: Mapping[str, str]) -> list[str]:
         if missing or not value.strip():
             out.append(f"{var} is set to {value!r}, but {', '.join(missing) or 'that'} is not an existing "
                        f"folder; point it at the folder that holds "
-                       f"{'proj.db' if var.startswith('PROJ') else 'the GDAL data files'}. With pip: unset "
-                       f"{var} (unset {var} in the shell; on Windows set {var}=), as the rasterio and pyproj "
-                       "wheels find the data they bundle.")
-        elif var.startswith("PROJ") and not any((Path(p) / "proj.db").is_file() for p in value.split(os.pathsep)
-                                                if p):
+                       f"{'proj.db' if var.startswith('PROJ') else 'the GDAL data files'}. {_pip_unset(var)}")
+        elif var.startswith("PROJ") and not any((Path(p) / "proj.db").is_file()
+                                                for p in value.split(os.pathsep) if p):
             out.append(f"{var} is set to {value!r}, which holds no proj.db; point it at the folder of the "
-                       f"proj.db that matches the loaded PROJ. With pip: unset {var} (unset {var} in the shell; "
-                       f"on Windows set {var}=), as the rasterio and pyproj wheels find the data they bundle.")
+                       f"proj.db that matches the loaded PROJ. {_pip_unset(var)}")
     return out
+
+
+def _pip_unset(var: str) -> str:
+    return (f"With pip: unset {var} (unset {var} in the shell; on Windows set {var}=), as the rasterio and "
+            "pyproj wheels find the data they bundle.")
 
 
 def _distribution_problems(names: set[str]) -> list[str]:
@@ -210,13 +217,15 @@ def _distribution_problems(names: set[str]) -> list[str]:
 
 def format_report(info: Mapping[str, Any], problems: list[str], env: Mapping[str, str],
                   notes: Iterable[str] = ()) -> str:
-    """The printed text: versions, PROJ data folders, information, then the problems found (or that none were)."""
+    """The printed text: versions, PROJ data folders, information, then the problems found (or that none
+    were)."""
     width = max(len(k) for k in info["versions"])
     lines = ["wetlandflow doctor: the geospatial stack as loaded", ""]
     lines += [f"  {k:<{width}}  {v}" for k, v in info["versions"].items()]
     lines += ["", "PROJ data directories:"]
     dbs = info.get("proj_db", {})
-    lines += [f"  {k:<{width}}  {v or '(not found)'}" + (f"  (proj.db of PROJ {dbs[k] or '?'})" if k in dbs else "")
+    lines += [f"  {k:<{width}}  {v or '(not found)'}"
+              + (f"  (proj.db of PROJ {dbs[k] or '?'})" if k in dbs else "")
               for k, v in info["proj_data"].items()]
     lines += ["", "Environment:"]
     lines += [f"  {k:<{width}}  {env.get(k, '(unset)')}" for k in ENV_DIRS]
