@@ -348,6 +348,23 @@ def test_project_definitions_replace_the_defaults_in_table_and_legend(run_dir, t
     assert "| Marsh | marsh |" in text  # no definition given: the default stays
 
 
+def test_pdf_columns_get_room_by_their_longest_text():
+    from reportlab.pdfbase.pdfmetrics import stringWidth
+
+    from wetlandflow.report.pdf import column_widths
+
+    frame = pd.DataFrame({"class": ["Marsh", "Shallow open water"], "code name": ["marsh", "open_water"],
+                          "definition": ["word " * 60, "A short one."]})
+    widths = column_widths(frame, 450.0)
+    assert sum(widths) == pytest.approx(450.0)
+    assert widths == pytest.approx([450.0 * w / 88 for w in (18, 10, 60)])  # 300 characters count as 60
+    # a date never breaks: its column is at least the date's width plus the cell padding
+    dates = pd.DataFrame({"date": ["2024-04-22"], "file": ["optical/scene_20240422_scl.tif" * 3]})
+    date_w = column_widths(dates, 450.0)[0]
+    assert date_w >= stringWidth("2024-04-22", "Helvetica", 6.8) + 12
+    assert sum(column_widths(dates, 450.0)) == pytest.approx(450.0)
+
+
 @pytest.mark.reference
 def test_map_page_is_a4_and_its_printed_scale_is_true(run_dir, report):
     """The standalone map page is A4 landscape and its stated 1:N holds on paper.
