@@ -35,8 +35,10 @@ def sample_path(project):
 def test_sample_follows_the_design_and_keeps_away_from_plots(project, sample_path):
     design = json.loads((sample_path.parent / "sample_design.json").read_text())
     gdf = gpd.read_file(sample_path, layer="sample")
-    counts = gdf["map_class"].map(class_codes(project)).value_counts() if gdf["map_class"].dtype.kind in "iu" \
-        else gdf["map_class"].value_counts()
+    assert "map_class" not in gdf.columns, "the interpreters' file does not show the map class"
+    strata = pd.read_csv(sample_path.parent / "map_classes.csv")
+    assert sorted(strata["sample_id"]) == sorted(gdf["sample_id"])
+    counts = strata["map_class"].value_counts()
     assert counts.to_dict() == {k: v for k, v in design["per_class"].items() if v}
     assert min(design["per_class"].values()) >= 40
     assert (gdf["reference_class"].fillna("") == "").all(), "labels start empty for the interpreters"

@@ -207,3 +207,32 @@ def test_bad_arguments_are_named(demo):
         compare_models(samples, REAL, folds[:-1], scheme)
     with pytest.raises(ParameterError, match="lack column"):
         compare_models(samples, ["no_such_feature"], folds, scheme)
+
+
+def test_progress_says_what_each_configuration_is_doing(demo, capsys):
+    """With progress on, every configuration prints its name, each fold as it is predicted and its score when
+    done (the scores printed are the table's), and the finished bar stays with its seconds."""
+    import re
+
+    samples, folds, scheme = demo
+    r = compare_models(samples, REAL, folds, scheme, kinds=("random_forest", "xgboost"), structures=("flat",),
+                       selection="none", quick=True, progress=True)
+    err = capsys.readouterr().err
+    n_folds = np.unique(folds).size
+    for i, row in enumerate(r.table.itertuples(), start=1):
+        prefix = f"[{i}/2] {row.config}: "
+        assert f"{prefix}fitting one model per fold\n" in err
+        for j in range(1, n_folds + 1):
+            line = rf"{re.escape(prefix)}fold {j}/{n_folds} \(fold id \d+\) predicted\n"
+            assert re.search(line, err), (i, j)
+        assert (f"{prefix}overall accuracy {row.overall_accuracy:.3f}, macro F1 {row.macro_f1:.3f}, "
+                f"done in {row.seconds:.1f} s\n") in err
+    finals = [chunk.rsplit("\r", 1)[-1] for chunk in err.split("\n")]
+    assert any(re.match(r"comparing: 100%.*2/2.*done in \d+\.\d s", line) for line in finals), finals
+
+
+def test_no_progress_lines_when_progress_is_off(demo, capsys):
+    samples, folds, scheme = demo
+    compare_models(samples, REAL, folds, scheme, kinds=("random_forest",), structures=("flat",),
+                   selection="none", quick=True, progress=False)
+    assert capsys.readouterr().err == ""

@@ -6,9 +6,11 @@ import pytest
 
 from wetlandflow.ui.doctor import (
     doctor_report,
+    find_notes,
     find_problems,
     format_report,
     installed_distributions,
+    proj_db_version,
     stack_info,
 )
 
@@ -95,3 +97,101 @@ def test_format_lists_every_version(tmp_path):
     text = format_report(info, ["something wrong"], {"PROJ_LIB": "/x"})
     assert "numpy" in text and "1.0" in text and "1 problem(s):" in text and "- something wrong" in text
     assert "PROJ_LIB" in text and "/x" in text and "GDAL_DATA" in text and "(unset)" in text
+
+
+# -- two PROJ builds in separate wheels: information when each reads its own data, a problem otherwise ----
+def _proj_dir(path, version: str | None):
+    """A PROJ data folder whose proj.db records ``PROJ.VERSION`` (as a real one does in its metadata table);
+    ``None``: a folder without proj.db."""
+    import sqlite3
+
+    path.mkdir(parents=True)
+    if version is not None:
+        con = sqlite3.connect(path / "proj.db")
+        con.execute("CREATE TABLE metadata (key TEXT, value TEXT)")
+        con.executemany("INSERT INTO metadata VALUES (?, ?)", [("DATABASE.LAYOUT.VERSION.MAJOR", "1"),
+                                                               ("PROJ.VERSION", version)])
+        con.commit()
+        con.close()
+    return path
+
+
+@pytest.fixture
+def two_wheels(tmp_path, monkeypatch):
+    """Patch the loaded PROJ versions and data folders of rasterio and pyproj; returns a function
+    (rasterio's PROJ, its proj.db version, pyproj's PROJ, its proj.db version) -> (text, problems, info)."""
+    import pyproj
+    import rasterio
+    import rasterio._env
+
+    for var in ("PROJ_DATA", "PROJ_LIB", "GDAL_DATA"):
+        monkeypatch.delenv(var, raising=False)
+
+    def make(ras: str, ras_db: str | None, pyp: str, pyp_db: str | None):
+        ras_dir = _proj_dir(tmp_path / f"rasterio_{ras}_{ras_db}" / "proj_data", ras_db)
+        pyp_dir = _proj_dir(tmp_path / f"pyproj_{pyp}_{pyp_db}" / "proj", pyp_db)
+        monkeypatch.setattr(rasterio, "__proj_version__", ras)
+        monkeypatch.setattr(pyproj, "proj_version_str", pyp)
+        monkeypatch.setattr(rasterio._env, "get_proj_data_search_paths", lambda: [str(ras_dir)])
+        monkeypatch.setattr(pyproj.datadir, "get_data_dir", lambda: str(pyp_dir))
+        text, problems = doctor_report()
+        return text, [p for p in problems if "PROJ" in p or "proj.db" in p], stack_info()
+
+    return make
+
+
+def test_separate_self_consistent_proj_wheels_are_information_not_a_problem(two_wheels):
+    text, problems, info = two_wheels("9.7.1", "9.7.1", "9.5.1", "9.5.1")
+    assert info["proj_db"] == {"rasterio": "9.7.1", "pyproj": "9.5.1"}
+    assert problems == [] and find_problems(info, {}, []) == []
+    notes = find_notes(info)
+    assert len(notes) == 1 and "PROJ 9.7.1 and PROJ 9.5.1" in notes[0] and "not a problem" in notes[0]
+    assert "Information (not a problem):" in text and notes[0] in text
+    assert "(proj.db of PROJ 9.7.1)" in text and "(proj.db of PROJ 9.5.1)" in text
+
+
+def test_a_library_reading_the_proj_db_of_another_version_is_a_problem(two_wheels):
+    text, problems, info = two_wheels("9.7.1", "9.5.1", "9.5.1", "9.5.1")
+    assert len(problems) == 1 and problems[0].startswith("rasterio loads PROJ 9.7.1 but reads the proj.db of "
+                                                         "PROJ 9.5.1")
+    assert "With pip: unset PROJ_DATA and PROJ_LIB" in problems[0] and problems[0] in text
+    assert find_notes(info) == [] and "Information" not in text
+    _, problems, _ = two_wheels("9.7.1", "9.7.1", "9.5.1", None)  # pyproj's folder lost its proj.db
+    assert len(problems) == 1 and problems[0].startswith("pyproj (PROJ 9.5.1) finds no readable proj.db")
+    assert "pip install --force-reinstall --no-deps pyproj" in problems[0]
+
+
+def test_patch_releases_of_one_proj_share_a_database():
+    """PROJ's database layout follows its minor release: 9.5.0 reading the proj.db of 9.5.1 is consistent."""
+    info = {"versions": {"PROJ (rasterio)": "9.5.0", "PROJ (pyproj)": "9.5.1"},
+            "proj_data": {"rasterio": "/a", "pyproj": "/b"},
+            "proj_db": {"rasterio": "9.5.1", "pyproj": "9.5.1"}}
+    assert find_problems(info, {}, []) == [] and len(find_notes(info)) == 1
+
+
+def test_proj_db_version_reads_the_first_folder_holding_one(tmp_path):
+    empty = _proj_dir(tmp_path / "empty", None)
+    db = _proj_dir(tmp_path / "db", "9.4.0")
+    import os
+
+    assert proj_db_version(os.pathsep.join([str(empty), str(db)])) == "9.4.0"
+    assert proj_db_version(str(empty)) == "" and proj_db_version("") == ""
+
+
+def test_every_problem_says_what_a_pip_user_can_do(tmp_path):
+    info = clean_info(tmp_path)
+    cases = [
+        find_problems(info | {"proj_data": {"rasterio": str(tmp_path / "a"), "pyproj": str(tmp_path / "b")}},
+                      {}, []),
+        find_problems(info | {"versions": {"PROJ (rasterio)": "9.7.1", "PROJ (pyproj)": "9.5.1"}}, {}, []),
+        find_problems(info | {"proj_db": {"rasterio": "9.5.1", "pyproj": ""}}, {}, []),
+        find_problems(info | {"proj_db": {"rasterio": "9.4.0", "pyproj": "9.5.1"}}, {}, []),
+        find_problems(info, {"PROJ_LIB": str(tmp_path / "gone")}, []),
+        find_problems(info, {"PROJ_DATA": str(tmp_path)}, []),
+        find_problems(info, {}, ["xgboost", "xgboost-cpu"]),
+    ]
+    assert all(cases), cases  # each rule fired
+    for problems in cases:
+        for p in problems:
+            advice = p.split("With pip: ")[1]
+            assert "pip " in advice or "unset" in advice, p

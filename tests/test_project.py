@@ -70,6 +70,12 @@ def test_hash_changes_with_parameters(project_copy, small_demo):
          "classes.parents.top", "reserved"),
         (lambda d: (d["model"].update(hierarchical=True), d["classes"]["parents"].update(peat=[])),
          "classes.parents.peat", "no classes"),
+        (lambda d: d["classes"].update(definitions={"peatland": "A wetland with peat."}),
+         "classes.definitions.peatland", "unknown class 'peatland'"),
+        (lambda d: d["classes"].update(definitions={"fen": {"label": "Fen"}}), "classes.definitions.fen",
+         "definition"),
+        (lambda d: d["classes"].update(definitions={"fen": 3}), "classes.definitions.fen",
+         "expected a string"),
     ],
 )
 def test_bad_project_files_name_the_key(project_copy, mutate, key, words):
@@ -80,6 +86,37 @@ def test_bad_project_files_name_the_key(project_copy, mutate, key, words):
     assert info.value.key == key
     assert f"[{key}]" in msg and words in msg
     assert path.name in msg
+
+
+def test_class_definitions_fall_back_to_the_defaults(project_copy):
+    from wetlandflow.inputs.class_definitions import (
+        DEFAULT_DEFINITIONS,
+        class_definition,
+        project_definitions,
+    )
+
+    own = {"fen": "Sedge peatland fed by seepage.", "bog": {"label": "Raised bog", "definition": "Rain-fed."}}
+    p = load_project(project_copy(lambda d: d["classes"].update(definitions=own)))
+    defs = project_definitions(p.classes.definitions)
+    assert defs["fen"].definition == own["fen"] and defs["fen"].label == DEFAULT_DEFINITIONS["fen"].label
+    assert defs["bog"].label == "Raised bog" and defs["bog"].definition == "Rain-fed."
+    assert class_definition("marsh", defs) == DEFAULT_DEFINITIONS["marsh"]  # not given: the default
+    assert class_definition("reed_bed", defs).label == "Reed bed"  # a class of another scheme, without one
+    assert class_definition("reed_bed", defs).definition == ""
+
+
+def test_class_definitions_do_not_change_the_samples_step_key(project_copy, small_demo):
+    """Definitions are words for people: editing them must not refit anything (left out of the key)."""
+    from wetlandflow.inputs.project import portable_dict
+    from wetlandflow.pipeline.run import scheme_config
+
+    a = portable_dict(load_project(small_demo))["classes"]
+    edited = project_copy(lambda d: d["classes"].update(definitions={"fen": "x"}))
+    b = portable_dict(load_project(edited))["classes"]
+    assert a["definitions"] == {} and b["definitions"] == {"fen": "x"}
+    assert scheme_config(a) == scheme_config(b) and "names" in scheme_config(a)
+    c = portable_dict(load_project(project_copy(lambda d: d["classes"]["parents"].update(wetland=["marsh"]))))
+    assert scheme_config(c["classes"]) != scheme_config(a)
 
 
 def test_missing_project_file(tmp_path):
@@ -121,6 +158,7 @@ def _schema_keys() -> set[str]:
 def _documented_keys(text: str) -> set[str]:
     """``section.key`` pairs of the TOML examples in a Markdown page (each block must be valid TOML)."""
     import re
+
     import tomllib
 
     keys = set()

@@ -95,6 +95,21 @@ def test_corrected_gitelson_entry_matches_the_journal_record():
     assert "22(3), 247-252" in ref.source and ref.doi == "10.1016/1011-1344(93)06963-4"
 
 
+@pytest.mark.reference
+def test_class_system_entry_matches_the_books_front_matter():
+    """National Wetlands Working Group (1997), The Canadian Wetland Classification System, 2nd edition, eds.
+    B.G. Warner and C.D.A. Rubec, Wetlands Research Centre, University of Waterloo: title page and imprint
+    (ISBN 0-662-25857-6), read in the book's front matter."""
+    ref = BIBLIOGRAPHY["nwwg1997"]
+    assert (ref.authors, ref.year, ref.title) == ("National Wetlands Working Group", 1997,
+                                                  "The Canadian Wetland Classification System")
+    assert "2nd edition" in ref.source and "Warner, B. G., Rubec, C. D. A. (eds.)" in ref.source
+    assert "Wetlands Research Centre, University of Waterloo" in ref.source
+    assert ref.identifier == "ISBN 0-662-25857-6" and _isbn10_ok("0-662-25857-6")
+    assert ref.short() == "National Wetlands Working Group (1997)"  # a body as author: no initials to drop
+    assert METHODS["class_definitions"] == ("nwwg1997",)
+
+
 def _references_text(citations: Citations) -> str:
     section = section_references(SimpleNamespace(citations=citations))
     parts = []

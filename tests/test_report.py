@@ -321,8 +321,48 @@ def test_class_definitions_and_full_labels_in_report(report):
     text = section(report["md"], "Classes mapped")
     for label in ("Shallow open water", "Marsh", "Swamp", "Fen", "Bog"):
         assert f"| {label} |" in text
-    assert "Canadian Wetland Classification System" in text
-    assert "ISBN 0-662-25857-6" in text
+    assert "Canadian Wetland Classification System (National Wetlands Working Group 1997)" in text
+    refs = section(report["md"], "References")  # cited in the bibliography, not only inline
+    entry = next(line for line in refs.splitlines() if "National Wetlands Working Group (1997)" in line)
+    assert "The Canadian Wetland Classification System" in entry and "ISBN 0-662-25857-6" in entry
+
+
+def test_project_definitions_replace_the_defaults_in_table_and_legend(run_dir, tmp_path):
+    """``[classes] definitions`` as recorded in the manifest: the report's table and the map legend use
+    them."""
+    from wetlandflow.report.figures import _labels
+
+    copy = tmp_path / "defs"
+    shutil.copytree(run_dir, copy)
+    manifest = json.loads((copy / "manifest.json").read_text())
+    manifest["project"]["classes"]["definitions"] = {
+        "fen": "Sedge peatland fed by seepage from the valley sides.",
+        "bog": {"label": "Raised bog", "definition": "Rain-fed Sphagnum peatland."}}
+    (copy / "manifest.json").write_text(json.dumps(manifest))
+    run = RunFolder(copy)
+    assert _labels(run)["bog"] == "Raised bog" and _labels(run)["fen"] == "Fen"
+    text = section(write_report(copy)["markdown"].read_text(), "Classes mapped")
+    assert "| Raised bog | bog | Rain-fed Sphagnum peatland. |" in text
+    assert "| Fen | fen | Sedge peatland fed by seepage from the valley sides. |" in text
+    assert "project's own" in text and "Fen, Raised bog" in text
+    assert "| Marsh | marsh |" in text  # no definition given: the default stays
+
+
+def test_pdf_columns_get_room_by_their_longest_text():
+    from reportlab.pdfbase.pdfmetrics import stringWidth
+
+    from wetlandflow.report.pdf import column_widths
+
+    frame = pd.DataFrame({"class": ["Marsh", "Shallow open water"], "code name": ["marsh", "open_water"],
+                          "definition": ["word " * 60, "A short one."]})
+    widths = column_widths(frame, 450.0)
+    assert sum(widths) == pytest.approx(450.0)
+    assert widths == pytest.approx([450.0 * w / 88 for w in (18, 10, 60)])  # 300 characters count as 60
+    # a date never breaks: its column is at least the date's width plus the cell padding
+    dates = pd.DataFrame({"date": ["2024-04-22"], "file": ["optical/scene_20240422_scl.tif" * 3]})
+    date_w = column_widths(dates, 450.0)[0]
+    assert date_w >= stringWidth("2024-04-22", "Helvetica", 6.8) + 12
+    assert sum(column_widths(dates, 450.0)) == pytest.approx(450.0)
 
 
 @pytest.mark.reference

@@ -15,9 +15,12 @@ from wetlandflow.accuracy.sampling import (
     allocate,
     draw_stratified_sample,
     estimates_from_sample,
+    expected_overall_se,
     mapped_proportions,
     read_labelled_sample,
+    read_map_classes,
     sample_size_overall,
+    write_map_classes,
     write_sample,
 )
 from wetlandflow.errors import AlignmentError, InputFileError, OutputError, ValidationDesignError
@@ -279,6 +282,45 @@ def test_read_detects_a_different_map(tmp_path, class_map, drawn):
     path = _labelled_file(tmp_path, labelled)
     with pytest.raises(ValidationDesignError, match="map_class differs from the map"):
         read_labelled_sample(path, NAMES, other)
+
+
+def test_blind_sample_with_map_classes_aside(tmp_path, class_map, drawn):
+    """The interpreters' file has no map_class; the table kept aside is joined back by sample_id and
+    checked."""
+    labelled = drawn.drop(columns="map_class")
+    labelled["reference_class"] = "upland"
+    path = write_sample(labelled, tmp_path / "blind.gpkg")
+    assert "map_class" not in gpd.read_file(path).columns
+    table = read_map_classes(write_map_classes(drawn, tmp_path / "map_classes.csv"))
+    assert list(pd.read_csv(tmp_path / "map_classes.csv").columns) == ["sample_id", "map_class"]
+    back = read_labelled_sample(path, NAMES, class_map, map_classes=table)
+    np.testing.assert_array_equal(back["map_class"], drawn["map_class"])
+    assert read_labelled_sample(path, NAMES, class_map)["map_class"].tolist() == drawn["map_class"].tolist()
+
+    wrong = table.copy()
+    first = wrong.index[0]
+    wrong[first] = "fen" if wrong[first] != "fen" else "upland"
+    with pytest.raises(ValidationDesignError, match=rf"recorded at the draw differs .* sample_id {first}\."):
+        read_labelled_sample(path, NAMES, class_map, map_classes=wrong)
+    with pytest.raises(ValidationDesignError, match=rf"map-class table has no row for sample_id {first}\."):
+        read_labelled_sample(path, NAMES, class_map, map_classes=table.drop(first))
+
+
+def test_expected_overall_se_is_the_estimators_standard_error():
+    """With every stratum's user's accuracy exactly as expected, the stratified estimator's overall-accuracy
+    SE equals the planning formula (same estimator, Olofsson et al. 2014), for any allocation."""
+    w = {"a": 0.6, "b": 0.3, "c": 0.1}
+    users = {"a": 0.9, "b": 0.8, "c": 0.5}
+    n = {"a": 50, "b": 30, "c": 20}
+    counts = pd.DataFrame(0, index=list(w), columns=list(w))
+    for k, other in zip(w, ["b", "c", "a"], strict=True):  # correct on the diagonal, errors in another class
+        counts.loc[k, k] = round(users[k] * n[k])
+        counts.loc[k, other] = n[k] - counts.loc[k, k]
+    res = stratified_estimates(counts, {k: 1000 * v for k, v in w.items()}, pixel_area_ha=1.0)
+    assert expected_overall_se(w, users, n) == pytest.approx(res.overall.se, rel=1e-12)
+    halved = expected_overall_se(w, users, {k: v // 2 for k, v in n.items()})
+    doubled = expected_overall_se(w, users, {k: 2 * v for k, v in n.items()})
+    assert doubled < expected_overall_se(w, users, n) < halved
 
 
 def test_estimates_from_sample_end_to_end(tmp_path, class_map, drawn):

@@ -13,7 +13,9 @@ __all__, __getattr__, __dir__ = exports(__name__, {
                    "collapse_matrix", "stratified_estimates", "simple_random_estimates", "plot_error_matrix",
                    "plot_areas", "write_area_table", "proportion_interval"],
     "sampling": ["sample_size_overall", "allocate", "mapped_proportions", "draw_stratified_sample",
-                 "write_sample", "read_labelled_sample", "estimates_from_sample"],
+                 "write_sample", "read_labelled_sample", "estimates_from_sample", "expected_overall_se",
+                 "write_map_classes", "read_map_classes"],
     "assessment": ["final_class_map", "class_codes", "design_sample", "assess", "label_from_reference",
-                   "coverage_study", "sample_design_record", "areas_table", "mapped_areas", "AREAS_COLUMNS"],
+                   "coverage_study", "sample_design_record", "areas_table", "mapped_areas", "AREAS_COLUMNS",
+                   "plan_sample", "SamplePlan"],
 })

@@ -9,7 +9,10 @@ This module composes :mod:`.sampling` and :mod:`.accuracy` for a run folder:
 1. :func:`design_sample` sizes the sample for a target standard error of overall
    accuracy, allocates it over the final map's classes, draws it (away from the
    training plots) and writes ``validation_sample/sample.gpkg`` with an empty
-   ``reference_class`` column for the photo-interpreters;
+   ``reference_class`` column and no map class for the photo-interpreters, the map
+   classes aside in ``validation_sample/map_classes.csv`` and the labelling
+   instructions with the class definitions in ``validation_sample/LABELLING.md``
+   (:func:`plan_sample` gives the size, effort and precision before anything is written);
 2. :func:`assess` reads the labelled file back and writes ``accuracy/`` and the
    error-adjusted ``areas.csv``.
 
@@ -21,6 +24,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Mapping
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -38,6 +42,10 @@ ACCURACY_DIR = "accuracy"
 # Conjectured user's accuracies for sizing the sample (Olofsson et al. 2014 suggest using expected values;
 # these defaults are a rule of thumb: common practice, no source).
 DEFAULT_EXPECTED_USERS = 0.8
+# Points an interpreter labels per hour from imagery, for the effort estimate printed before a sample is
+# written: a rule of thumb (common practice, no source); it varies with the imagery and the classes.
+DEFAULT_POINTS_PER_HOUR = 30.0
+MAP_CLASSES_NAME = "map_classes.csv"
 
 # The columns of the run's areas.csv, in order, before and after an assessment: a script reading it by
 # column works at every stage.  The mapped columns come from the final map's pixel counts (biased by the
@@ -113,11 +121,111 @@ def class_codes(project: Project) -> dict[int, str]:
     return {i + 1: n for i, n in enumerate(project.classes.names)}
 
 
+@dataclass(frozen=True)
+class SamplePlan:
+    """A validation sample sized and allocated, not yet drawn: what :func:`plan_sample` returns.
+
+    ``per_class`` holds the points per class (codes), ``expected_users`` the user's accuracies assumed for
+    sizing, ``half_widths`` the expected 95 % half-width of overall accuracy at half, the planned and double
+    the points (the same allocation scaled in every class), from :func:`~.sampling.expected_overall_se`.
+    """
+
+    project: Project
+    target_se: float
+    allocation: str
+    min_per_class: int
+    exclude_buffer_m: float
+    seed: int
+    n_from_formula: int
+    per_class: dict[int, int]
+    proportions: dict[int, float]
+    expected_users: dict[int, float]
+    half_widths: dict[str, tuple[int, float]]
+    points_per_hour: float
+
+    @property
+    def n_total(self) -> int:
+        return int(sum(self.per_class.values()))
+
+    @property
+    def hours(self) -> float:
+        return self.n_total / self.points_per_hour
+
+    def text(self) -> str:
+        """What the sample will cost and give, printed before it is written."""
+        codes = class_codes(self.project)
+        lines = [f"validation sample: {self.n_total} points (formula: {self.n_from_formula} for a standard "
+                 f"error of {self.target_se:g} in overall accuracy), {self.allocation} allocation:"]
+        lines += [f"  {codes[c]:<12s} {n:>6d}" for c, n in self.per_class.items()]
+        lines += ["", f"Labelling effort: about {self.hours:.1f} hours at {self.points_per_hour:g} points "
+                      "per hour (a rule of thumb: common practice, no source; --points-per-hour sets yours).",
+                  "Expected 95 % confidence half-width of overall accuracy (Olofsson et al. 2014 stratified "
+                  "estimator, if user's accuracies come out at "
+                  f"{_users_text(self.expected_users, codes)}), the same allocation scaled in every class:"]
+        for key, what in (("half", "half the points"), ("planned", "as planned"),
+                          ("double", "double the points")):
+            n, hw = self.half_widths[key]
+            lines.append(f"  {what:<18s} {n:>6d} points  +/- {hw:.3f}")
+        return "\n".join(lines)
+
+
+def _users_text(users: Mapping[int, float], codes: Mapping[int, str]) -> str:
+    values = set(users.values())
+    if len(values) == 1:
+        return f"{values.pop():g}"
+    return ", ".join(f"{codes[c]} {u:g}" for c, u in users.items())
+
+
+def _scaled(per_class: Mapping[int, int], factor: float) -> dict[int, int]:
+    """The allocation scaled by ``factor`` in every class (at least 2 points where there were any)."""
+    return {c: (max(2, round(n * factor)) if n else 0) for c, n in per_class.items()}
+
+
+def plan_sample(project: Project | str | Path, *, target_se: float = 0.01,
+                expected_users: Mapping[str, float] | float = DEFAULT_EXPECTED_USERS,
+                allocation: str = "min_per_class", min_per_class: int = 50, exclude_buffer_m: float = 100.0,
+                seed: int | None = None, points_per_hour: float = DEFAULT_POINTS_PER_HOUR) -> SamplePlan:
+    """Size and allocate the validation sample of a finished run, and say what it costs and gives.
+
+    The parameters are those of :func:`design_sample`, plus ``points_per_hour`` (interpreter speed for the
+    effort estimate; :data:`DEFAULT_POINTS_PER_HOUR` is a rule of thumb: common practice, no source).
+    """
+    from .estimators import _z
+    from .sampling import allocate, expected_overall_se, mapped_proportions, sample_size_overall
+
+    if not points_per_hour > 0:
+        raise ValidationDesignError(f"points_per_hour must be > 0, got {points_per_hour!r}; e.g. 30.")
+    p = _project(project)
+    codes = class_codes(p)
+    props = mapped_proportions(final_class_map(p.run_dir), codes)
+    users = {c: (expected_users.get(n, DEFAULT_EXPECTED_USERS) if isinstance(expected_users, Mapping)
+                 else float(expected_users)) for c, n in codes.items()}
+    present = {c: w for c, w in props.items() if w > 0}
+    n = sample_size_overall(present, {c: users[c] for c in present}, target_se)
+    if allocation == "min_per_class":
+        n = max(n, min_per_class * len(present))  # the floor must fit inside the total
+    alloc = allocate(n, present, method=allocation, min_per_class=min_per_class)
+    z = _z(0.95)
+    widths = {}
+    for key, factor in (("half", 0.5), ("planned", 1.0), ("double", 2.0)):
+        scaled = alloc if factor == 1.0 else _scaled(alloc, factor)
+        se = expected_overall_se(present, {c: users[c] for c in present}, scaled)
+        widths[key] = (int(sum(scaled.values())), z * se)
+    return SamplePlan(p, target_se, allocation, min_per_class, exclude_buffer_m,
+                      p.project.seed if seed is None else seed, int(n), alloc,
+                      {c: float(w) for c, w in props.items()}, {c: users[c] for c in present}, widths,
+                      float(points_per_hour))
+
+
 def design_sample(project: Project | str | Path, *, target_se: float = 0.01,
                   expected_users: Mapping[str, float] | float = DEFAULT_EXPECTED_USERS,
                   allocation: str = "min_per_class", min_per_class: int = 50, exclude_buffer_m: float = 100.0,
-                  seed: int | None = None, overwrite: bool = False) -> Path:
+                  seed: int | None = None, overwrite: bool = False, plan: SamplePlan | None = None) -> Path:
     """Size, allocate and draw the validation sample of a finished run; return the GeoPackage written.
+
+    Writes, into ``validation_sample/``: ``sample.gpkg`` (``sample_id, x, y, reference_class``: no map
+    class, for blind labelling), ``map_classes.csv`` (``sample_id, map_class``, joined back by
+    :func:`assess`), ``LABELLING.md`` (instructions with the class definitions) and ``sample_design.json``.
 
     Parameters
     ----------
@@ -138,44 +246,60 @@ def design_sample(project: Project | str | Path, *, target_se: float = 0.01,
         Seed of the draw; default: the project's seed.
     overwrite : bool
         Replace an existing sample file (off: it may already hold labels).
+    plan : SamplePlan, optional
+        A plan from :func:`plan_sample` (its settings replace the ones above).
     """
     from ..inputs.layers import project_grid
     from ..training.samples import read_plots
-    from .sampling import (
-        allocate,
-        draw_stratified_sample,
-        mapped_proportions,
-        sample_size_overall,
-        write_sample,
-    )
+    from .instructions import INSTRUCTIONS_NAME, labelling_instructions
+    from .sampling import INTERPRETER_COLUMNS, draw_stratified_sample, write_map_classes, write_sample
 
-    p = _project(project)
+    if plan is None:
+        plan = plan_sample(project, target_se=target_se, expected_users=expected_users, allocation=allocation,
+                           min_per_class=min_per_class, exclude_buffer_m=exclude_buffer_m, seed=seed)
+    p = plan.project
     codes = class_codes(p)
     cmap = final_class_map(p.run_dir)
-    props = mapped_proportions(cmap, codes)
-    users = {c: (expected_users.get(n, DEFAULT_EXPECTED_USERS) if isinstance(expected_users, Mapping)
-                 else float(expected_users)) for c, n in codes.items()}
-    present = {c: w for c, w in props.items() if w > 0}
-    n = sample_size_overall(present, {c: users[c] for c in present}, target_se)
-    if allocation == "min_per_class":
-        n = max(n, min_per_class * len(present))  # the floor must fit inside the total
-    alloc = allocate(n, present, method=allocation, min_per_class=min_per_class)
     plots = read_plots(p.plots.path, class_field=p.plots.class_field, id_field=p.plots.id_field,
                        classes=p.classes.names, grid=project_grid(p), aoi=None, layer=p.plots.layer)
-    seed = p.project.seed if seed is None else seed
-    gdf = draw_stratified_sample(cmap, alloc, seed=seed, exclude=plots, exclude_buffer_m=exclude_buffer_m,
-                                 class_names=codes)
+    gdf = draw_stratified_sample(cmap, plan.per_class, seed=plan.seed, exclude=plots,
+                                 exclude_buffer_m=plan.exclude_buffer_m, class_names=codes)
     out = p.run_dir / SAMPLE_DIR
-    path = write_sample(gdf, out / "sample.gpkg", overwrite=overwrite)
-    write_json({"n_total": int(sum(alloc.values())), "n_from_formula": int(n), "target_se": target_se,
-                "allocation": allocation, "per_class": {codes[c]: int(k) for c, k in alloc.items()},
-                "expected_users": {codes[c]: users[c] for c in present},
-                "mapped_proportions": {codes[c]: float(w) for c, w in props.items()},
-                "exclude_buffer_m": exclude_buffer_m, "seed": seed,
+    path = write_sample(gdf[[*INTERPRETER_COLUMNS, "geometry"]], out / "sample.gpkg", overwrite=overwrite)
+    write_map_classes(gdf, out / MAP_CLASSES_NAME)
+    _write_text(out / INSTRUCTIONS_NAME, labelling_instructions(
+        p.classes.names, sample_definitions(p), n_points=plan.n_total, project_name=p.project.name))
+    write_json({"n_total": plan.n_total, "n_from_formula": plan.n_from_formula, "target_se": plan.target_se,
+                "allocation": plan.allocation,
+                "per_class": {codes[c]: int(k) for c, k in plan.per_class.items()},
+                "expected_users": {codes[c]: u for c, u in plan.expected_users.items()},
+                "mapped_proportions": {codes[c]: w for c, w in plan.proportions.items()},
+                "exclude_buffer_m": plan.exclude_buffer_m, "seed": plan.seed,
+                "points_per_hour": plan.points_per_hour, "labelling_hours": round(plan.hours, 2),
+                "expected_overall_ci95_half_width": {k: {"n": n, "half_width": round(hw, 5)}
+                                                     for k, (n, hw) in plan.half_widths.items()},
                 "instructions": "Fill reference_class for every point with a class name of the scheme from "
-                                "imagery or field visits, without looking at the map class; then run "
-                                "`wetlandflow assess PROJECT.toml " + f"{SAMPLE_DIR}/sample.gpkg`."},
+                                f"imagery or field visits, as {SAMPLE_DIR}/{INSTRUCTIONS_NAME} describes "
+                                "(the file has no map class, so that the map cannot steer the labels); then "
+                                "run `wetlandflow assess PROJECT.toml " + f"{SAMPLE_DIR}/sample.gpkg`."},
                out / "sample_design.json")
+    return path
+
+
+def sample_definitions(project: Project) -> dict:
+    """Label and definition of every class of the project (its own, else the defaults, else the name)."""
+    from ..inputs.class_definitions import class_definition, project_definitions
+
+    own = project_definitions(project.classes.definitions)
+    return {n: class_definition(n, own) for n in project.classes.names}
+
+
+def _write_text(path: Path, text: str) -> Path:
+    from ..inputs.io import atomic_path
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with atomic_path(path) as tmp:
+        Path(tmp).write_text(text, encoding="utf-8")
     return path
 
 
@@ -190,7 +314,7 @@ def assess(project: Project | str | Path, labelled: str | Path, *, design: str =
     ``areas.csv`` (its columns stay :data:`AREAS_COLUMNS`; see :func:`areas_table`).
     """
     from .estimators import plot_areas, plot_error_matrix
-    from .sampling import estimates_from_sample, read_labelled_sample
+    from .sampling import estimates_from_sample, read_labelled_sample, read_map_classes
 
     p = _project(project)
     codes = class_codes(p)
@@ -198,7 +322,9 @@ def assess(project: Project | str | Path, labelled: str | Path, *, design: str =
     labelled = Path(labelled)
     if not labelled.is_absolute() and not labelled.exists():
         labelled = p.run_dir / labelled
-    gdf = read_labelled_sample(labelled, codes, cmap)
+    table = map_classes_file(p.run_dir, labelled)
+    gdf = read_labelled_sample(labelled, codes, cmap,
+                               map_classes=None if table is None else read_map_classes(table))
     result = estimates_from_sample(gdf, cmap, codes, design=design, confidence=confidence)
     out = p.run_dir / ACCURACY_DIR
     _write_result(result, out, "")
@@ -218,7 +344,18 @@ def assess(project: Project | str | Path, labelled: str | Path, *, design: str =
     mapped = mapped_areas(cmap, codes, abs(dx * dy))
     write_table(areas_table(mapped, result.area_table, confidence=result.confidence), p.run_dir / "areas.csv")
     return {"n": int(len(gdf)), "overall_accuracy": result.overall.value, "overall_se": result.overall.se,
-            "folder": str(out), "area_table": result.area_table, "accuracy_table": result.accuracy_table}
+            "overall_ci_half_width": result.overall.ci, "confidence": result.confidence, "folder": str(out),
+            "area_table": result.area_table, "accuracy_table": result.accuracy_table}
+
+
+def map_classes_file(run_dir: Path, labelled: Path) -> Path | None:
+    """The map classes of a sample's draw: ``map_classes.csv`` beside the labelled file, else in the run's
+    sample folder; None when neither exists (a sample from before the split carries ``map_class`` itself,
+    and the map class is read from the map in any case)."""
+    for candidate in (labelled.parent / MAP_CLASSES_NAME, run_dir / SAMPLE_DIR / MAP_CLASSES_NAME):
+        if candidate.exists():
+            return candidate
+    return None
 
 
 def _write_result(result, out: Path, prefix: str) -> None:

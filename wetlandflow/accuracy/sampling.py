@@ -41,13 +41,20 @@ __all__ = [
     "allocate",
     "draw_stratified_sample",
     "estimates_from_sample",
+    "expected_overall_se",
     "mapped_proportions",
+    "read_map_classes",
     "read_labelled_sample",
     "sample_size_overall",
+    "write_map_classes",
     "write_sample",
 ]
 
 SAMPLE_COLUMNS = ("sample_id", "map_class", "x", "y", "reference_class")
+# What the interpreters get: no map class, so that the map cannot steer the labels (it goes to a separate
+# table, keyed by sample_id, that the assessment joins back).
+INTERPRETER_COLUMNS = ("sample_id", "x", "y", "reference_class")
+MAP_CLASS_COLUMNS = ("sample_id", "map_class")
 _METHODS = ("proportional", "equal", "min_per_class")
 _DESIGNS = ("stratified", "simple_random", "systematic")
 _MAX_LISTED = 15
@@ -117,6 +124,45 @@ def sample_size_overall(
         raise ValidationDesignError(f"target_se must be > 0, got {target_se!r}; e.g. 0.01.")
     n = (np.sum(w * np.sqrt(users * (1 - users))) / target_se) ** 2
     return max(int(math.ceil(n - 1e-9)), 1)  # the tolerance stops float noise adding a unit
+
+
+def expected_overall_se(
+    mapped_proportions: Mapping[Any, float] | Sequence[float],
+    expected_users: Mapping[Any, float] | Sequence[float],
+    allocation: Mapping[Any, int] | Sequence[int],
+) -> float:
+    """Standard error of overall accuracy that a stratified sample would give if each stratum's user's
+    accuracy came out as expected.
+
+    The variance is the one the stratified estimator reports (Olofsson et al. 2014; the ratio estimator of
+    :mod:`wetlandflow.accuracy.estimators`): ``sum_i W_i^2 U_i (1 - U_i) / (n_i - 1)``, a stratum with fewer
+    than two points adding nothing (as there).
+
+    Parameters
+    ----------
+    mapped_proportions : dict or sequence
+        W_i, the mapped area proportion of each stratum (sum 1).
+    expected_users : dict or sequence
+        Anticipated user's accuracy U_i of each stratum.
+    allocation : dict or sequence
+        n_i, points per stratum.
+
+    Examples
+    --------
+    >>> round(expected_overall_se([0.5, 0.5], [0.9, 0.8], [101, 101]), 5)
+    0.0125
+    """
+    keys, w = _proportions(mapped_proportions)
+    keyed = keys if isinstance(mapped_proportions, Mapping) else None
+    users = _aligned(expected_users, keyed, "expected_users")
+    n = _aligned(allocation, keyed, "allocation")
+    if users.shape != w.shape or n.shape != w.shape:
+        raise ValidationDesignError(
+            f"expected_users and allocation must give one value per class ({w.size}), got {users.tolist()} "
+            f"and {n.tolist()}."
+        )
+    per_stratum = np.where(n > 1, w**2 * users * (1 - users) / np.maximum(n - 1, 1), 0.0)
+    return float(np.sqrt(per_stratum.sum()))
 
 
 def allocate(
@@ -424,10 +470,13 @@ def draw_stratified_sample(
 def write_sample(gdf: gpd.GeoDataFrame, path: str | Path, *, overwrite: bool = False) -> Path:
     """Write a sample to a GeoPackage (layer ``"sample"``) for photo-interpretation.
 
+    The columns are written as given: for blind labelling drop ``map_class`` first and keep it with
+    :func:`write_map_classes` (as :func:`wetlandflow.accuracy.assessment.design_sample` does).
+
     Parameters
     ----------
     gdf : geopandas.GeoDataFrame
-        From :func:`draw_stratified_sample`.
+        From :func:`draw_stratified_sample` (at least ``sample_id, x, y, reference_class``).
     path : str or Path
         Target ``.gpkg`` file.
     overwrite : bool
@@ -438,7 +487,7 @@ def write_sample(gdf: gpd.GeoDataFrame, path: str | Path, *, overwrite: bool = F
     Path
     """
     path = Path(path)
-    missing = [c for c in SAMPLE_COLUMNS if c not in gdf.columns]
+    missing = [c for c in INTERPRETER_COLUMNS if c not in gdf.columns]
     if missing:
         raise ValidationDesignError(
             f"the sample lacks columns {missing}; build it with draw_stratified_sample."
@@ -455,6 +504,35 @@ def write_sample(gdf: gpd.GeoDataFrame, path: str | Path, *, overwrite: bool = F
             raise
         raise OutputError(f"cannot write {path}: {exc}. Choose a writable folder.") from exc
     return path
+
+
+def write_map_classes(gdf: pd.DataFrame, path: str | Path) -> Path:
+    """Write ``sample_id, map_class`` of a drawn sample to a CSV file: the strata, kept from the
+    interpreters."""
+    from ..inputs.io import write_table
+
+    return write_table(pd.DataFrame(gdf.loc[:, list(MAP_CLASS_COLUMNS)]), Path(path))
+
+
+def read_map_classes(path: str | Path) -> pd.Series:
+    """The map class per ``sample_id`` from a file of :func:`write_map_classes`.
+
+    Raises
+    ------
+    ValidationDesignError
+        When the file lacks a column or repeats an id.
+    """
+    table = pd.read_csv(path)
+    missing = [c for c in MAP_CLASS_COLUMNS if c not in table.columns]
+    if missing:
+        raise ValidationDesignError(f"{path}: columns {missing} are missing (found {list(table.columns)}); "
+                                    "it must keep the columns sample_id and map_class written by "
+                                    "`wetlandflow sample`.")
+    dup = table["sample_id"][table["sample_id"].duplicated()].unique()
+    if dup.size:
+        raise ValidationDesignError(f"{path}: duplicate sample_id {_listed(list(dup))}; restore the file "
+                                    "written by `wetlandflow sample`.")
+    return table.set_index("sample_id")["map_class"].astype(str)
 
 
 def _listed(ids: Sequence[Any]) -> str:
@@ -483,7 +561,8 @@ def _pixel_of(points: gpd.GeoSeries, class_map: xr.DataArray, codes: np.ndarray)
 
 
 def read_labelled_sample(
-    path: str | Path, class_names: Mapping[int, str], class_map: xr.DataArray
+    path: str | Path, class_names: Mapping[int, str], class_map: xr.DataArray, *,
+    map_classes: pd.Series | None = None,
 ) -> gpd.GeoDataFrame:
     """Read a photo-interpreted sample back and check it against the legend and the map.
 
@@ -496,6 +575,10 @@ def read_labelled_sample(
         Class code -> class name.
     class_map : xarray.DataArray
         The map the sample was drawn from.
+    map_classes : pandas.Series, optional
+        The map class of each point as drawn, indexed by ``sample_id`` (:func:`read_map_classes`); each
+        point of the file must be in it and agree with the map.  A file from before the split, with its own
+        ``map_class`` column, is checked the same way.
 
     Returns
     -------
@@ -582,6 +665,19 @@ def read_labelled_sample(
             "Add every map code to class_names.",
         )
     mapped = pd.Series(under).map(dict(class_names)).to_numpy()
+    if map_classes is not None:
+        absent = ~pd.Series(ids).isin(map_classes.index).to_numpy()
+        if absent.any():
+            fail("the map-class table has no row", ids[absent],
+                 "The labelled file and map_classes.csv come from different draws; use the pair written "
+                 "together by `wetlandflow sample`.")
+        drawn = map_classes.reindex(ids).to_numpy()
+        if (drawn != mapped).any():
+            fail("the map class recorded at the draw differs from the map under the point",
+                 ids[drawn != mapped],
+                 "The map changed since the sample was drawn, or the file comes from another draw; draw a "
+                 "new sample of this map (wetlandflow sample --overwrite) or assess the map it was drawn "
+                 "from.")
     if "map_class" in gdf.columns:
         differs = gdf["map_class"].notna().to_numpy() & (gdf["map_class"].astype(str).to_numpy() != mapped)
         if differs.any():

@@ -26,6 +26,7 @@ from __future__ import annotations
 import heapq
 import math
 import shutil
+import time
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -703,16 +704,20 @@ def make_demo(out_dir, *, size: int = 600, pixel_size_m: float = 10.0, seed: int
     _check_args(size, pixel_size_m, n_optical, n_sar, dem_pixel_size_m, dem_crs)
     from tqdm.auto import tqdm
 
+    from ..progress import done_text
+
     out = Path(out_dir)
     for sub in ("optical", "sar"):
         shutil.rmtree(out / sub, ignore_errors=True)
         (out / sub).mkdir(parents=True, exist_ok=True)
     lay = _Layout.of(demo_grid(int(size), float(pixel_size_m)))
     bar = tqdm(total=4 + n_optical + n_sar, desc="demo", disable=not progress)
+    t0 = time.perf_counter()
     fields = _landscape(out, lay, seed, dem_crs, float(dem_pixel_size_m), bar)
     opt_dates, sar_dates = sp.optical_dates(n_optical), sp.sar_dates(n_sar)
     _render_dates(out, lay, seed, fields, opt_dates, sar_dates, bar)
     path = _write_project(out, seed, pixel_size_m, opt_dates, sar_dates)
+    bar.set_postfix_str(done_text(time.perf_counter() - t0))  # the finished bar stays, with its time
     bar.close()
     return path
 

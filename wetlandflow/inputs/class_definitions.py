@@ -62,6 +62,42 @@ DEFAULT_DEFINITIONS: Mapping[str, ClassDefinition] = {
 }
 
 
+def check_definitions(table: Mapping[str, object], *, known: tuple[str, ...]) -> None:
+    """Refuse a ``[classes] definitions`` table naming an unknown class or holding anything but a definition.
+
+    Each value is a string (the definition) or a table with ``definition`` and optionally ``label``.
+    """
+    from ..errors import ProjectFileError
+
+    for name, value in table.items():
+        key = f"classes.definitions.{name}"
+        if name not in known:
+            raise ProjectFileError(f"unknown class {name!r}; definitions are given for classes of the scheme "
+                                   f"({', '.join(known)})", key=key)
+        if isinstance(value, str):
+            continue
+        extra = set(value) - {"label", "definition"} if isinstance(value, Mapping) else set()
+        if not isinstance(value, Mapping) or "definition" not in value or extra:
+            raise ProjectFileError("expected a string, or a table {label = \"...\", definition = \"...\"}, "
+                                   f"got {value!r}", key=key)
+        if not all(isinstance(v, str) for v in value.values()):
+            raise ProjectFileError(f"label and definition must be strings, got {value!r}", key=key)
+
+
+def project_definitions(table: Mapping[str, object] | None) -> dict[str, ClassDefinition]:
+    """The ``[classes] definitions`` of a project (as read, or from a run's manifest) as
+    :class:`ClassDefinition` values; a definition without a label keeps the default label of its class."""
+    out: dict[str, ClassDefinition] = {}
+    for name, value in (table or {}).items():
+        default = class_definition(name)
+        if isinstance(value, str):
+            out[name] = ClassDefinition(default.label, value.strip())
+        elif isinstance(value, Mapping):
+            out[name] = ClassDefinition(str(value.get("label") or default.label),
+                                        str(value.get("definition", "")).strip())
+    return out
+
+
 def class_definition(name: str, overrides: Mapping[str, ClassDefinition] | None = None) -> ClassDefinition:
     """The definition of ``name``: the project's own, else the default, else the name itself as label."""
     if overrides and name in overrides:

@@ -67,6 +67,9 @@ class GridSection:
 class ClassesSection:
     names: tuple[str, ...]
     parents: dict[str, tuple[str, ...]] = field(default_factory=dict)
+    # class -> short definition (string), or {label = "...", definition = "..."}; the six default classes
+    # fall back to wetlandflow.inputs.class_definitions.DEFAULT_DEFINITIONS
+    definitions: dict[str, Any] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -410,6 +413,9 @@ def _check_classes(c: ClassesSection) -> None:
                     key=f"classes.parents.{parent}"
                 )
             seen[child] = parent
+    from .class_definitions import check_definitions
+
+    check_definitions(c.definitions, known=(*c.names, *c.parents))
 
 
 RESERVED_PARENTS = ("top", "leaf")  # level names of the hierarchical model (wetlandflow.models.hierarchy)

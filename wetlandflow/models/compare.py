@@ -219,8 +219,12 @@ def _fit_predict(make: Callable[[], Any], X_train: np.ndarray, y_train: np.ndarr
 
 
 def _oof(make: Callable[[], Any], X: pd.DataFrame, y: np.ndarray, folds: np.ndarray,
-         columns: Callable[[int], list[str]], n_classes: int, n_jobs: int) -> np.ndarray:
-    """Out-of-fold probabilities: one model per fold, fitted on the other folds (folds in parallel)."""
+         columns: Callable[[int], list[str]], n_classes: int, n_jobs: int,
+         on_fold: Callable[[int, int, int], None] | None = None) -> np.ndarray:
+    """Out-of-fold probabilities: one model per fold, fitted on the other folds (folds in parallel).
+
+    ``on_fold(i, n, k)`` is called as the ``i``-th of ``n`` folds (id ``k``) is predicted, in fold order.
+    """
     from joblib import Parallel, delayed
 
     ids = np.unique(folds)
@@ -230,8 +234,11 @@ def _oof(make: Callable[[], Any], X: pd.DataFrame, y: np.ndarray, folds: np.ndar
         jobs.append(delayed(_fit_predict)(make, X.loc[~test, cols].to_numpy(np.float32), y[~test],
                                           X.loc[test, cols].to_numpy(np.float32)))
     out = np.full((len(y), n_classes), np.nan)
-    for k, p in zip(ids, Parallel(n_jobs=n_jobs)(jobs), strict=True):
+    results = Parallel(n_jobs=n_jobs, return_as="generator")(jobs)
+    for i, (k, p) in enumerate(zip(ids, results, strict=True), start=1):
         out[folds == k] = p
+        if on_fold is not None:
+            on_fold(i, len(ids), int(k))
     return out
 
 
@@ -377,7 +384,7 @@ def compare_models(
     -------
     ComparisonResult
     """
-    from ..progress import progress_bar
+    from ..progress import done_text, progress_bar, step_lines
 
     kinds, structures = _choices("kinds", kinds, KINDS), _choices("structures", structures, STRUCTURES)
     _choices("selection", selection, SELECTIONS)
@@ -390,16 +397,21 @@ def compare_models(
     X, y, f = order[features], order["class"].astype(str).to_numpy(), order["_fold"].to_numpy()
     full, per_fold, fold_sel, notes = None, {}, {}, []
     if selection != "none":
-        full, fold_sel = _run_selection(X, y, f, scheme, sel, seed, n_threads, selection == "nested")
+        with step_lines(f"forward feature selection ({selection})", enabled=progress):
+            full, fold_sel = _run_selection(X, y, f, scheme, sel, seed, n_threads, selection == "nested")
         per_fold = ({k: r.selected for k, r in fold_sel.items()} if selection == "nested"
                     else {int(k): full.selected for k in np.unique(f)})
         notes += _selection_notes(selection, sel, len(features))
     configs = [_Config(k, s, fs) for fs in (("all", "selected") if selection != "none" else ("all",))
                for k in kinds for s in structures]
     rows, per_class, oof, cal = [], [], {}, {}
-    for cfg in progress_bar(configs, desc="comparing", unit="config", disable=not progress):
+    for i, cfg in enumerate(progress_bar(configs, desc="comparing", unit="config", disable=not progress), 1):
+        tell = _teller(f"[{i}/{len(configs)}] {cfg.name}", progress)
+        tell("fitting one model per fold")
         row, pc, oof[cfg.name], c = _score_config(cfg, X, y, f, scheme, params, per_fold, features,
-                                                  calibration, seed, n_threads)
+                                                  calibration, seed, n_threads, tell=tell)
+        tell(f"overall accuracy {row['overall_accuracy']:.3f}, macro F1 {row['macro_f1']:.3f}, "
+             f"{done_text(row['seconds'])}")
         if c is not None:
             cal[cfg.name] = c
         rows.append(row)
@@ -419,19 +431,30 @@ def compare_models(
                   "scheme": scheme.to_dict(), "n_samples": len(samples), "n_folds": int(np.unique(f).size)})
 
 
+def _teller(prefix: str, enabled: bool) -> Callable[[str], None]:
+    """A function printing ``prefix: text`` lines on standard error (nothing when not ``enabled``)."""
+    from ..progress import say
+
+    return lambda text: say(f"{prefix}: {text}", enabled=enabled)
+
+
 def _score_config(cfg: _Config, X: pd.DataFrame, y: np.ndarray, folds: np.ndarray, scheme: ClassScheme,
                   params: dict, per_fold: dict[int, list[str]], features: list[str], calibration: str | None,
-                  seed: int, n_threads: int) -> tuple[dict, pd.DataFrame, np.ndarray, np.ndarray | None]:
+                  seed: int, n_threads: int, tell: Callable[[str], None] | None = None
+                  ) -> tuple[dict, pd.DataFrame, np.ndarray, np.ndarray | None]:
     t0 = time.perf_counter()
     make = _factory(cfg.kind, cfg.structure, scheme, params[cfg.kind], seed)
     columns = (lambda _k: features) if cfg.features == "all" else (lambda k: list(per_fold[k]))
     classes = tuple(scheme.names)
-    proba = _oof(make, X, y, folds, columns, len(classes), n_threads)
+    on_fold = None if tell is None else (lambda i, n, k: tell(f"fold {i}/{n} (fold id {k}) predicted"))
+    proba = _oof(make, X, y, folds, columns, len(classes), n_threads, on_fold=on_fold)
     row, per_class = _metrics(y, proba, classes, folds)
     row = {"config": cfg.name, "kind": cfg.kind, "structure": cfg.structure, "features": cfg.features,
            **_n_features(cfg, features, per_fold), **row}
     cal = None
     if calibration is not None:
+        if tell is not None:
+            tell(f"{calibration} calibration inside the training folds")
         cal = _calibrated_oof(make, X, y, folds, columns, proba, classes, calibration, n_threads)
         m, _ = _metrics(y, cal, classes, folds)
         row.update(overall_accuracy_calibrated=m["overall_accuracy"], brier_calibrated=m["brier"],

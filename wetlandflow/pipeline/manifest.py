@@ -34,8 +34,10 @@ class Manifest:
     and kept in the step's record (``rerun_because``).
     """
 
-    def __init__(self, run_dir: Path, project: Project, check: Callable[[], None] | None = None):
+    def __init__(self, run_dir: Path, project: Project, check: Callable[[], None] | None = None, *,
+                 progress: bool = False):
         self.path = run_dir / "manifest.json"
+        self.progress = progress  # a line on stderr when a step starts, ends (with its seconds) or is reused
         self.run_dir = run_dir
         self.check = check or (lambda: None)
         self.data: dict[str, Any] = {
@@ -98,6 +100,10 @@ class Manifest:
             return False
         self.data["steps"][name] = {**prev, "reused": True}
         self.save()
+        from ..progress import say
+
+        say(f"{name}: reused from the earlier run (done there in {prev.get('seconds', 0):.1f} s)",
+            enabled=self.progress)
         return True
 
     @contextmanager
@@ -114,6 +120,9 @@ class Manifest:
             rec["rerun_because"] = self._rerun.pop(name)
         self.data["steps"][name] = rec
         self.save()
+        from ..progress import done_text, say
+
+        say(f"{name} ...", enabled=self.progress)
         t0 = time.perf_counter()
         try:
             yield rec
@@ -126,11 +135,13 @@ class Manifest:
             rec["seconds"] = round(time.perf_counter() - t0, 3)
             with suppress(OSError):  # a full disk may refuse the manifest too; the error still says what
                 self.save()
+            say(f"{name}: {rec['status']} after {rec['seconds']:.1f} s", enabled=self.progress)
             if error is not None:
                 raise error from None
             raise
         rec.update(status="done", seconds=round(time.perf_counter() - t0, 3))
         self.save()
+        say(f"{name}: {done_text(rec['seconds'])}", enabled=self.progress)
 
     def save(self) -> None:
         write_json(self.data, self.path)

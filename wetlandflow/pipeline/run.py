@@ -94,6 +94,12 @@ def _record_inputs(manifest: Manifest, project: Project) -> None:
         project.root) else str(p), "sha256": sha256_file(p)} for k, p in files.items()}
 
 
+def scheme_config(classes: dict[str, Any]) -> dict[str, Any]:
+    """The ``[classes]`` settings that shape the samples and models: all but the definitions, which are words
+    for people (editing them must not refit anything)."""
+    return {k: v for k, v in classes.items() if k != "definitions"}
+
+
 def feature_names(samples: pd.DataFrame) -> list[str]:
     return [c for c in samples.columns if c not in ("plot_id", "class", "x", "y")]
 
@@ -344,7 +350,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
     """The steps of a run; each is skipped when an earlier run in the folder finished it with the same key
     and its outputs check out (see :class:`Manifest`)."""
     run_dir = check_writable(project.run_dir)
-    manifest = Manifest(run_dir, project, check)
+    manifest = Manifest(run_dir, project, check, progress=progress)
     if lock:
         manifest.data["lock"] = lock
         if "stale_lock_removed" in lock:
@@ -382,7 +388,8 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
             rec["features"] = {k: dict(v.attrs) for k, v in cube.data_vars.items()}
             rec["season_coverage"] = season_coverage(cube, inputs.aoi, project.seasons)
 
-    k_samples = step_key(k_feat, cfg["plots"], cfg["classes"], cfg["samples"], seed, hashes["plots"])
+    k_samples = step_key(k_feat, cfg["plots"], scheme_config(cfg["classes"]), cfg["samples"], seed,
+                         hashes["plots"])
     samples_path = run_dir / "samples.parquet"
     if manifest.reusable("samples", k_samples, [samples_path], uses=[zarr_path]):
         samples = pd.read_parquet(samples_path)
@@ -681,16 +688,70 @@ def plausibility_checks(project: Project, inputs) -> dict[str, Any]:
     return checks(project, inputs)
 
 
+def format_totals(run_dir: str | Path, *, classes: bool = True) -> list[str]:
+    """The answer first, as printed lines: the total area of each group of classes (``[classes.parents]``, or
+    every class but ``upland``), mapped and, once a labelled sample is assessed, error-adjusted with its
+    interval; then (``classes=True``) each class.  Read from the run folder (``areas.csv``,
+    ``accuracy/``)."""
+    from ..report.run_folder import RunFolder
+    from ..report.text import area_totals
+
+    run = RunFolder(run_dir)
+    totals = area_totals(run)
+    if totals is None:
+        return ["No class areas in the run folder (the inventory step did not finish)."]
+    summary = run.accuracy_summary
+    conf = f"{100 * (summary or {}).get('confidence', 0.95):g} %"
+    adjusted = totals["adjusted_ha"].notna().any()
+    lines = []
+    for r in totals[totals["kind"] == "group"].itertuples():
+        if pd.notna(r.adjusted_ha):
+            lines.append(f"Total {r.name} area ({r.members}): {r.adjusted_ha:,.1f} ha error-adjusted, {conf} "
+                         f"confidence interval {r.ci_low_ha:,.1f} to {r.ci_high_ha:,.1f} ha (the map shows "
+                         f"{r.mapped_ha:,.1f} ha)")
+        else:
+            lines.append(f"Total {r.name} area ({r.members}): {r.mapped_ha:,.1f} ha mapped (a pixel count, "
+                         "not error-adjusted: no labelled sample assessed)")
+    if not lines:
+        lines.append(f"Total mapped area of all classes: {totals['mapped_ha'].sum():,.1f} ha")
+    if not classes:
+        return lines
+    per_class = totals[totals["kind"] == "class"]
+    lines += ["", "Class areas (ha):" if adjusted else "Class areas (pixel counts of the final map; not "
+                                                       "error-adjusted):"]
+    if adjusted:
+        lines.append(f"  {'class':<12s} {'mapped':>10s} {'adjusted':>10s} {conf + ' CI':>23s}")
+    total_ha = max(per_class["mapped_ha"].sum(), 1e-12)
+    for r in per_class.itertuples():
+        if adjusted:
+            ci = f"{r.ci_low_ha:,.1f} to {r.ci_high_ha:,.1f}" if pd.notna(r.ci_low_ha) else ""
+            lines.append(f"  {r.name:<12s} {r.mapped_ha:>10,.1f} {r.adjusted_ha:>10,.1f} {ci:>23s}")
+        else:
+            lines.append(f"  {r.name:<12s} {r.mapped_ha:>12,.1f} ha ({100 * r.mapped_ha / total_ha:5.1f} %)")
+    return lines
+
+
+def _sample_accuracy(run_dir: Path) -> str | None:
+    """``0.853 (95 % CI 0.82 to 0.88, n = 240)`` from an assessment in the run folder, else None."""
+    path = Path(run_dir) / "accuracy" / "summary.json"
+    if not path.exists():
+        return None
+    s = json.loads(path.read_text())
+    oa, hw = s["overall_accuracy"], s["overall_ci_half_width"]
+    return f"{oa:.3f} ({100 * s.get('confidence', 0.95):g} % CI {oa - hw:.3f} to {oa + hw:.3f})"
+
+
 def format_summary(result: RunResult) -> str:
-    """The short printed summary: class areas, cross-validated accuracy, the caution."""
+    """The short printed summary: total wetland area first (mapped, and error-adjusted once a sample is
+    assessed), then each class, then accuracy, outputs and the caution."""
     m = result.metrics
-    lines = [f"wetlandflow run: {result.run_dir}", "",
-             f"Cross-validated overall accuracy ({m.get('design')} design, {m.get('n_folds')} folds): "
-             f"{m.get('overall_accuracy', float('nan')):.3f}", "",
-             "Mapped class areas (pixel counts; not error-adjusted):"]
-    a = result.areas
-    for name, ha, share in zip(a["class"], a["mapped_area_ha"], a["mapped_share"], strict=True):
-        lines.append(f"  {name:<12s} {ha:>12,.1f} ha ({100 * share:5.1f} %)")
+    lines = [f"wetlandflow run: {result.run_dir}", "", *format_totals(result.run_dir), ""]
+    acc = _sample_accuracy(result.run_dir)
+    if acc is not None:
+        lines.append(f"Overall accuracy of the final map from the labelled sample: {acc}")
+    lines += [f"Cross-validated overall accuracy ({m.get('design')} design, {m.get('n_folds')} folds): "
+              f"{m.get('overall_accuracy', float('nan')):.3f} (serves model choice; the inventory's accuracy "
+              "and areas come from a labelled probability sample: wetlandflow sample, then assess)"]
     steps = result.manifest.get("steps", {})
     share = steps.get("mapping", {}).get("share_outside_applicability")
     if share is not None:

@@ -146,9 +146,7 @@ def _draw(ax, run: RunFolder, data: _MapData, title: str, mask: np.ndarray) -> N
 
 
 def _labels(run: RunFolder) -> dict[str, str]:
-    from ..inputs.class_definitions import class_label
-
-    return {n: class_label(n) for n in run.class_names}
+    return {n: d.label for n, d in run.class_definitions.items()}
 
 
 def _class_map(run: RunFolder, rel: str, size: tuple[float, float]):

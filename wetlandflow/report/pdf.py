@@ -55,6 +55,36 @@ def _cell(v: object) -> str:
     return str(v)
 
 
+def column_widths(frame: pd.DataFrame, width: float, *, low: int = 8, high: int = 60,
+                  font_size: float = 6.8, padding: float = 12.0) -> list[float]:
+    """Widths of a table's columns summing to ``width``, in proportion to each column's longest text
+    (header or cell, counted between ``low`` and ``high`` characters), so a column of definitions gets room
+    and a column of numbers does not; no column narrower than its longest word (a date, a file name) in
+    Helvetica at ``font_size`` plus the cell ``padding``, up to 40 % of the width."""
+    from reportlab.pdfbase.pdfmetrics import stringWidth
+
+    if not len(frame.columns):
+        return [width]
+    texts = [[str(c), *(_cell(v) for v in frame.iloc[:, i])] for i, c in enumerate(frame.columns)]
+    weights = [min(max(max(map(len, t)), low), high) for t in texts]
+    def longest_word(t: list[str]) -> float:  # t[0] is the header, set in bold
+        return max((stringWidth(w, "Helvetica-Bold" if k == 0 else "Helvetica", font_size)
+                    for k, cell in enumerate(t) for w in cell.split()), default=0.0)
+
+    floors = [min(padding + longest_word(t), 0.4 * width) for t in texts]
+    if sum(floors) >= width:
+        return [width * f / sum(floors) for f in floors]
+    fixed: set[int] = set()
+    while True:  # columns below their floor take it; the rest share what is left by weight
+        free = width - sum(floors[i] for i in fixed)
+        rest = sum(w for i, w in enumerate(weights) if i not in fixed)
+        widths = [floors[i] if i in fixed else free * w / rest for i, w in enumerate(weights)]
+        short = {i for i, w in enumerate(widths) if i not in fixed and w < floors[i]}
+        if not short:
+            return widths
+        fixed |= short
+
+
 def _table(t: Table, st: dict, width: float) -> list:
     from reportlab.lib import colors
     from reportlab.platypus import LongTable
@@ -62,8 +92,7 @@ def _table(t: Table, st: dict, width: float) -> list:
 
     rows = [[P(_inline(str(c)), st["head"]) for c in t.frame.columns]]
     rows += [[P(_inline(_cell(v)), st["cell"]) for v in row] for row in t.frame.itertuples(index=False)]
-    n = max(1, len(t.frame.columns))
-    table = LongTable(rows, colWidths=[width / n] * n, repeatRows=1, hAlign="LEFT")
+    table = LongTable(rows, colWidths=column_widths(t.frame, width), repeatRows=1, hAlign="LEFT")
     table.setStyle([("GRID", (0, 0), (-1, -1), 0.3, colors.HexColor("#bbbbbb")),
                     ("BACKGROUND", (0, 0), (-1, 0), colors.HexColor("#eeeeee")),
                     ("VALIGN", (0, 0), (-1, -1), "TOP"),

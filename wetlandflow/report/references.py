@@ -95,6 +95,13 @@ def _ref(key: str, authors: str, year: int, title: str, source: str, checked: st
 # Where each entry was checked is noted above it ("record": the work's own record was read; "lists": published
 # reference lists agree).  Public DOIs only.
 BIBLIOGRAPHY: dict[str, Reference] = {r.key: r for r in (
+    # -- class system
+    # record: the book's front matter (title page and imprint: National Wetlands Working Group, eds.
+    # B.G. Warner and C.D.A. Rubec, Wetlands Research Centre, University of Waterloo, 1997;
+    # ISBN 0-662-25857-6).
+    _ref("nwwg1997", "National Wetlands Working Group", 1997, "The Canadian Wetland Classification System",
+         "2nd edition, Warner, B. G., Rubec, C. D. A. (eds.), Wetlands Research Centre, University of "
+         "Waterloo, Waterloo, Ontario", "verified", identifier="ISBN 0-662-25857-6"),
     # -- accuracy, areas and sampling
     # record: Canadian Forest Service publications catalogue (NRCan), with DOI; the paper's first page.
     _ref("olofsson2014", "Olofsson, P., Foody, G. M., Herold, M., Stehman, S. V., Woodcock, C. E., Wulder, M. A.",
@@ -277,6 +284,7 @@ METHODS: dict[str, tuple[str, ...]] = {
     "random_forest": ("breiman2001",),
     "area_of_applicability": ("meyer2021",),
     "tree_shap": ("lundberg2020",),
+    "class_definitions": ("nwwg1997",),
     "stratified_area_estimation": ("olofsson2014", "olofsson2013"),
     "sample_size": ("cochran1977", "olofsson2014"),
     "lee_filter": ("lee1980",),

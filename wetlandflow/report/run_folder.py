@@ -70,6 +70,15 @@ class RunFolder:
     def step_done(self, name: str) -> bool:
         return self.step(name).get("status") == "done"
 
+    @property
+    def class_definitions(self) -> dict[str, Any]:
+        """Label and definition of every mapped class: the project's ``[classes] definitions``, else the
+        defaults (:mod:`wetlandflow.inputs.class_definitions`), else the class name."""
+        from ..inputs.class_definitions import class_definition, project_definitions
+
+        own = project_definitions(self.project.get("classes", {}).get("definitions"))
+        return {n: class_definition(n, own) for n in self.class_names}
+
     @cached_property
     def class_names(self) -> list[str]:
         bundle = self.bundle or {}

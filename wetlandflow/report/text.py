@@ -130,13 +130,14 @@ def section_summary(run: RunFolder) -> Section:
     blocks: list = []
     if totals is not None:
         blocks.append(Paragraph(_totals_text(run, totals)))
-        blocks.append(Table(_totals_display(totals), "Areas of the inventory: groups of classes first, then each "
-                                                     "class"))
+        blocks.append(Table(_totals_display(run, totals),
+                            "Areas of the inventory: groups of classes first, then each class"))
     blocks.append(Paragraph(_headline_accuracy(run)))
     if run.areas is not None and run.class_names:
         blocks.append(Paragraph(
-            f"The run maps {len(run.class_names)} classes ({', '.join(_label(n) for n in run.class_names)}) on "
-            f"{run.pixel_size_m:g} m pixels over {ha(run.areas['mapped_area_ha'].sum())} ha."))
+            f"The run maps {len(run.class_names)} classes "
+            f"({', '.join(_label(run, n) for n in run.class_names)}) on {run.pixel_size_m:g} m pixels over "
+            f"{ha(run.areas['mapped_area_ha'].sum())} ha."))
     finished = f", finished {m['finished']}" if m.get("finished") else " (no finish time recorded)"
     blocks.append(Paragraph(
         f"This appendix documents the run of project \"{name}\" recorded in this folder: wetlandflow "
@@ -154,22 +155,33 @@ def section_summary(run: RunFolder) -> Section:
 
 def section_classes(run: RunFolder) -> Section:
     """What each mapped class means, as the interpreters and the model were told."""
-    from ..inputs.class_definitions import SOURCE, class_definition
+    from ..inputs.class_definitions import DEFAULT_DEFINITIONS
 
-    defs = [class_definition(n) for n in run.class_names]
-    rows = pd.DataFrame({"class": [d.label for d in defs], "code name": run.class_names,
-                         "definition": [d.definition or "(no definition given in the project file)" for d in defs]})
-    return Section("Classes mapped", [
-        Paragraph("The classes of the inventory, with the definitions the plots were labelled by. The wetland "
-                  f"classes follow the five classes of the Canadian Wetland Classification System ({SOURCE}), "
-                  "described here in short; a project's own definitions replace these."),
-        Table(rows, "Class definitions")])
+    defs = run.class_definitions
+    own = set(run.project.get("classes", {}).get("definitions") or {})
+    rows = pd.DataFrame({"class": [d.label for d in defs.values()], "code name": list(defs),
+                         "definition": [d.definition or "(no definition given in the project file)"
+                                        for d in defs.values()]})
+    defaults = [n for n in defs if n in DEFAULT_DEFINITIONS and n not in own]
+    blocks = [Paragraph("The classes of the inventory, with the definitions the plots were labelled by and "
+                        "the interpreters of the validation sample were given.")]
+    if own:
+        named = ", ".join(_label(run, n) for n in defs if n in own)
+        blocks.append(Paragraph(f"The definitions of {named} are the project's own (`[classes] definitions` "
+                                "in the project file)."))
+    if defaults:
+        cite = run.cite("class_definitions", "definitions of the default classes")
+        blocks.append(Paragraph(
+            f"The definitions of {', '.join(_label(run, n) for n in defaults)} are wetlandflow's defaults, "
+            "which describe in short the wetland classes of the Canadian Wetland Classification System "
+            f"({cite}) and the land that is not wetland."))
+    return Section("Classes mapped", [*blocks, Table(rows, "Class definitions")])
 
 
-def _label(name: str) -> str:
-    from ..inputs.class_definitions import class_label
-
-    return class_label(name)
+def _label(run: RunFolder, name: str) -> str:
+    """A class's printed label (the project's own, else the default); a group's name as it stands."""
+    d = run.class_definitions.get(name)
+    return d.label if d is not None else name
 
 
 def class_groups(run: RunFolder) -> dict[str, list[str]]:
@@ -224,7 +236,7 @@ def _totals_text(run: RunFolder, totals: pd.DataFrame) -> str:
     conf = _conf(s) if s else "95 %"
     parts = []
     for r in totals[totals["kind"] == "group"].itertuples():
-        members = ", ".join(_label(n).lower() for n in r.members.split(", "))
+        members = ", ".join(_label(run, n).lower() for n in r.members.split(", "))
         if pd.notna(r.adjusted_ha):
             parts.append(f"Total {r.name} area ({members}): {ha(r.adjusted_ha)} ha error-adjusted, {conf} "
                          f"confidence interval {ha(r.ci_low_ha)} to {ha(r.ci_high_ha)} ha; the map itself shows "
@@ -240,11 +252,11 @@ def _totals_text(run: RunFolder, totals: pd.DataFrame) -> str:
     return " ".join(parts)
 
 
-def _totals_display(totals: pd.DataFrame) -> pd.DataFrame:
+def _totals_display(run: RunFolder, totals: pd.DataFrame) -> pd.DataFrame:
     def fmt(v: float, f) -> str:
         return "" if pd.isna(v) else f(v)
 
-    names = [f"{_label(n)}" if k == "class" else f"{n} (total)"
+    names = [_label(run, n) if k == "class" else f"{n} (total)"
              for n, k in zip(totals["name"], totals["kind"], strict=True)]
     if totals["adjusted_ha"].isna().all():  # no sample assessed: pixel counts only, nothing to adjust them by
         return pd.DataFrame({"": names, "mapped ha": [ha(v) for v in totals["mapped_ha"]]})

@@ -66,20 +66,20 @@ def _locked(run_dir, command: str):
 
 
 def _cmd_sample(args: argparse.Namespace) -> int:
-    from ..accuracy.assessment import design_sample, sample_design_record
+    from ..accuracy.assessment import SAMPLE_DIR, design_sample, plan_sample
     from ..inputs.project import load_project
 
     project = load_project(args.project)
     with _locked(project.run_dir, f"sample {Path(args.project).name}"):
-        path = design_sample(project, target_se=args.target_se, allocation=args.allocation,
-                             min_per_class=args.min_per_class, exclude_buffer_m=args.buffer_m,
-                             overwrite=args.overwrite)
-    rec = sample_design_record(project.run_dir)
-    print(f"validation sample: {rec['n_total']} points (formula: {rec['n_from_formula']} for a standard error of "
-          f"{rec['target_se']:g} in overall accuracy), {args.allocation} allocation:")
-    for name, n in rec["per_class"].items():
-        print(f"  {name:<12s} {n:>6d}")
-    print(f"written to {path}\n{rec['instructions']}")
+        plan = plan_sample(project, target_se=args.target_se, allocation=args.allocation,
+                           min_per_class=args.min_per_class, exclude_buffer_m=args.buffer_m,
+                           points_per_hour=args.points_per_hour)
+        print(plan.text(), flush=True)  # before anything is written: size, effort and precision
+        path = design_sample(project, plan=plan, overwrite=args.overwrite)
+    print(f"\nwritten to {path} (no map class: it is kept in {SAMPLE_DIR}/map_classes.csv for `assess`)\n"
+          f"Give the interpreters {path.name} and {SAMPLE_DIR}/LABELLING.md (instructions and class "
+          f"definitions); they fill reference_class. Then: wetlandflow assess {Path(args.project).name} "
+          f"{SAMPLE_DIR}/{path.name}")
     return 0
 
 
@@ -96,11 +96,13 @@ def _cmd_assess(args: argparse.Namespace) -> int:
 def format_assessment(project, labelled, *, design: str = "stratified") -> str:
     """Assess a labelled sample and format the error-adjusted areas and accuracy as text."""
     from ..accuracy.assessment import assess
+    from ..pipeline.run import format_totals
 
     res = assess(project, labelled, design=design)
     table, acc = res["area_table"], res["accuracy_table"].set_index("class")
-    lines = [f"Accuracy from {res['n']} labelled sample points ({design} estimator, Olofsson et al. 2014):",
-             f"  overall accuracy {res['overall_accuracy']:.3f} (SE {res['overall_se']:.3f})", "",
+    half, conf = res["overall_ci_half_width"], f"{100 * res['confidence']:g} %"
+    lines = [f"Error-adjusted areas from {res['n']} labelled sample points ({design} estimator, Olofsson "
+             "et al. 2014):", *format_totals(project.run_dir, classes=False), "",
              f"  {'class':<12s} {'mapped ha':>10s} {'adjusted ha':>12s} {'95% CI ha':>21s} {'user':>6s} "
              f"{'producer':>9s}"]
     notes = []
@@ -116,6 +118,9 @@ def format_assessment(project, labelled, *, design: str = "stratified") -> str:
     if notes:
         lines += ["", "  * an error rate observed as zero in the sample: the interval comes from the "
                   "interval of that rate, not from a zero standard error:", *notes]
+    oa = res["overall_accuracy"]
+    lines += ["", f"Overall accuracy {oa:.3f} (SE {res['overall_se']:.3f}; {conf} CI {oa - half:.3f} to "
+                  f"{oa + half:.3f}); user's and producer's accuracies per class above."]
     lines += ["", f"Tables and figures: {res['folder']}; areas.csv updated.", "", f"CAUTION: {CAUTION}"]
     return "\n".join(lines)
 
@@ -207,6 +212,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--allocation", choices=("min_per_class", "proportional", "equal"), default="min_per_class")
     s.add_argument("--min-per-class", type=int, default=50, help="floor per class for min_per_class")
     s.add_argument("--buffer-m", type=float, default=100.0, help="keep points this far from training plots")
+    s.add_argument("--points-per-hour", type=float, default=30.0,
+                   help="interpreter speed for the effort estimate (default 30: common practice, no source)")
     s.add_argument("--overwrite", action="store_true", help="replace an existing sample file (it may hold labels)")
     s.set_defaults(func=_cmd_sample)
 
