@@ -168,6 +168,8 @@ class ValidationSection:
     n_folds: int = 5
     block_size_m: float = 1000.0
     allow_random_pixels: bool = False
+    suspect_labels: str = "flag"  # "flag": list plots the filters reject; "refit": also fit without them; "off"
+    suspect_rule: str = "consensus"  # "consensus" (every filter rejects) or "majority" (Brodley & Friedl 1999)
 
 
 @dataclass(frozen=True)
@@ -531,6 +533,8 @@ def _validate(p: Project) -> None:
                                f"{p.model.max_plot_share}; set model.max_plot_share to a value in that range",
                                key="model.max_plot_share")
     _check_choice(p.validation.design, CV_DESIGNS, "validation.design")
+    _check_choice(p.validation.suspect_labels, ("flag", "refit", "off"), "validation.suspect_labels")
+    _check_choice(p.validation.suspect_rule, ("consensus", "majority"), "validation.suspect_rule")
     check_ranges(p)
     if p.validation.design == "random" and not p.validation.allow_random_pixels:
         raise ProjectFileError(

@@ -414,23 +414,30 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
             metrics, folds = _validation_step(project, samples, features, inputs.aoi, grid, vdir, rec, progress,
                                               check)
 
-    k_model = step_key(k_samples, cfg["model"], seed)
+    refit = project.validation.suspect_labels == "refit"
+    k_model = step_key(k_samples, cfg["model"], seed, *((k_val,) if refit else ()))
     model_dir = run_dir / "model"
-    training_hash = data_hash(samples, features)
+    fit_samples = samples
+    dropped = {str(d) for d in suspect_plot_ids(project, vdir)}
+    if dropped:  # suspect_labels = "refit": the final model leaves the suspect plots out
+        fit_samples = samples.loc[~samples["plot_id"].astype(str).isin(dropped)].reset_index(drop=True)
+    training_hash = data_hash(fit_samples, features)
     if manifest.reusable("model", k_model, [model_dir], uses=[samples_path],
                          verify=lambda: bundle_mismatch(model_dir, training_hash, features)):
         model, _ = load_bundle(model_dir)
     else:
         with manifest.step("model", k_model, outputs=[model_dir], uses=[samples_path]) as rec:
-            w = training_weights(project, samples)
-            model = make_model(project).fit(samples[features].to_numpy(np.float32), samples["class"].to_numpy(),
-                                            sample_weight=w)
+            w = training_weights(project, fit_samples)
+            model = make_model(project).fit(fit_samples[features].to_numpy(np.float32),
+                                            fit_samples["class"].to_numpy(), sample_weight=w)
             save_bundle(model, model_dir, features=features,
                         scheme=ClassScheme(project.classes.names, project.classes.parents),
                         training_hash=training_hash,
                         extra={"config_sha256": manifest.data["config_sha256"]})
             rec["n_features"] = len(features)
-            rec["weights"] = _weights_record(project, samples, w)
+            rec["weights"] = _weights_record(project, fit_samples, w)
+            if dropped:
+                rec["suspect_plots_left_out"] = sorted(dropped)
             rec["hyperparameters"] = model_hyperparameters(model)
 
     applicability = project.output.applicability
@@ -450,7 +457,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
                 rec["applicability_threshold"] = round(aoa_model.threshold, 6)
             map_model = model
             if project.priors.adjust != "none":
-                map_model, rec["priors"] = prior_adjusted_model(project, model, samples, features, cube,
+                map_model, rec["priors"] = prior_adjusted_model(project, model, fit_samples, features, cube,
                                                                 inputs.aoi, run_dir / "maps")
             map_paths = predict_map(map_model, cube, features, grid, run_dir / "maps", valid=inputs.aoi,
                                     class_names=project.classes.names, window_size=project.output.chunk_size,
@@ -579,11 +586,52 @@ def _validation_step(project: Project, samples: pd.DataFrame, features: list[str
     rec["diagnostics"] = write_fold_diagnostics(vdir, samples, folds, aoi, grid,
                                                 block_size_m=project.validation.block_size_m,
                                                 seed=project.project.seed)
+    if project.validation.suspect_labels != "off":
+        metrics["suspect_labels"] = _suspects(project, samples, features, oof, folds, vdir, rec, progress, check)
     metrics["note"] = ("Spatial cross-validation serves to choose models and predictors; the inventory's "
                        "accuracy and areas come from an independent probability sample.")
     write_json(metrics, vdir / "metrics.json")
     rec["overall_accuracy"] = metrics["overall_accuracy"]
     return metrics, folds
+
+
+def _suspects(project: Project, samples: pd.DataFrame, features: list[str], oof: np.ndarray, folds: np.ndarray,
+              vdir: Path, rec: dict[str, Any], progress: bool, check) -> dict[str, Any]:
+    """Suspect training labels (Brodley & Friedl 1999) over the run's folds, written to
+    ``validation/suspect_plots.csv``; with ``suspect_labels = "refit"`` also the CV without them."""
+    from ..validation.suspects import SOURCE, label_filter
+
+    table = label_filter(samples[features].to_numpy(np.float64), samples["class"].to_numpy(),
+                         samples["plot_id"].to_numpy(), folds, project.classes.names,
+                         precomputed={"model": oof}, rule=project.validation.suspect_rule)
+    xy = samples.groupby("plot_id")[["x", "y"]].mean()
+    table = table.join(xy, on="plot_id")
+    write_table(table, vdir / "suspect_plots.csv")
+    flagged = table.loc[table["suspect"], "plot_id"].tolist()
+    out: dict[str, Any] = {"rule": project.validation.suspect_rule, "filters": table["rule"].iloc[0],
+                           "n_plots": int(len(table)), "n_suspect": len(flagged),
+                           "suspect_plot_ids": [str(p) for p in flagged], "source": SOURCE}
+    rec["suspect_plots"] = len(flagged)
+    if project.validation.suspect_labels == "refit" and flagged:
+        from ..accuracy.estimators import accuracy_measures, error_matrix
+
+        keep = ~samples["plot_id"].isin(flagged).to_numpy()
+        kept = samples.loc[keep].reset_index(drop=True)
+        oof2, _ = cross_validate(project, kept, features, progress=progress, check=check)
+        names = list(project.classes.names)
+        pred = np.array(names)[np.argmax(oof2, axis=1)]
+        m2 = _metrics_dict(accuracy_measures(error_matrix(kept["class"].to_numpy(), pred, names)))
+        out["without_suspects"] = {"overall_accuracy": m2["overall_accuracy"],
+                                   "overall_accuracy_se": m2["overall_accuracy_se"], "n": m2["n"]}
+    return out
+
+
+def suspect_plot_ids(project: Project, vdir: Path) -> list[Any]:
+    """Plot ids the final model leaves out (``validation.suspect_labels = "refit"``), else none."""
+    if project.validation.suspect_labels != "refit" or not (vdir / "suspect_plots.csv").exists():
+        return []
+    table = pd.read_csv(vdir / "suspect_plots.csv")
+    return table.loc[table["suspect"], "plot_id"].tolist()
 
 
 def splitter_record(splitter: Any) -> dict[str, Any]:
@@ -757,6 +805,15 @@ def format_summary(result: RunResult) -> str:
     if share is not None:
         lines += ["", f"Outside the area of applicability (Meyer & Pebesma 2021): {100 * share:.1f} % of the "
                       "mapped pixels; predictions there extrapolate beyond the training data."]
+    sus = m.get("suspect_labels")
+    if sus:
+        lines += ["", f"Suspect training labels ({sus['rule']} filter, Brodley & Friedl 1999): {sus['n_suspect']} of "
+                      f"{sus['n_plots']} plots (validation/suspect_plots.csv); check them against the imagery."]
+        wo = sus.get("without_suspects")
+        if wo:
+            lines.append(f"  Cross-validated overall accuracy without them: {wo['overall_accuracy']:.3f} "
+                         f"(with them {m.get('overall_accuracy', float('nan')):.3f}); the final model leaves them "
+                         "out.")
     priors = steps.get("mapping", {}).get("priors")
     if priors:
         lines += ["", f"Probabilities adjusted to the area's class priors ({priors['method']}); training -> area:"]
