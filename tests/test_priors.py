@@ -154,6 +154,10 @@ def test_run_adjusts_the_map_to_the_estimated_priors(tmp_path):
     summary = result.summary()
     assert "class priors" in summary and "Saerens" in summary
     json.dumps(rec)  # the record is plain JSON
+    from wetlandflow.report.appendix import write_report
+
+    md = write_report(result.run_dir)["markdown"].read_text()
+    assert "Class priors: training and area" in md and "Saerens, M., Latinne, P., Decaestecker, C. (2002)" in md
 
 
 def test_given_shares_must_cover_the_scheme(tmp_path):

@@ -68,7 +68,8 @@ def test_dois_are_well_formed_per_the_doi_handbook_syntax():
 @pytest.mark.reference
 def test_other_identifiers_are_well_formed():
     """ISBN-10 check digit per ISO 2108; NASA technical-report ids are 11 digits; ADS codes are 19 characters
-    (year, journal, volume, page, initial; the ADS bibcode definition)."""
+    (year, journal, volume, page, initial; the ADS bibcode definition); arXiv identifiers follow arXiv's
+    identifier scheme (YYMM.number since April 2007)."""
     others = {k: r.identifier for k, r in BIBLIOGRAPHY.items() if not r.doi}
     assert others, "every entry has a DOI: the non-DOI branch is untested"
     for key, ident in others.items():
@@ -77,6 +78,10 @@ def test_other_identifiers_are_well_formed():
             assert _isbn10_ok(value), (key, ident)
         elif ident.startswith("NASA NTRS "):
             assert re.fullmatch(r"\d{11}", ident.removeprefix("NASA NTRS ")), (key, ident)
+        elif kind == "arXiv":  # arXiv identifiers since April 2007: YYMM.NNNN (to 2014) or YYMM.NNNNN
+            assert re.fullmatch(r"\d{4}\.\d{4,5}", value), (key, ident)
+            yymm = int(value[:4])
+            assert 704 <= yymm and 1 <= yymm % 100 <= 12, (key, ident)
         elif kind == "ADS":
             assert len(value) == 19 and value.startswith(str(BIBLIOGRAPHY[key].year)), (key, ident)
         else:

@@ -104,3 +104,9 @@ def test_run_flags_mislabelled_plots_and_refits_without_them(tmp_path):
     left_out = result.manifest["steps"]["model"]["suspect_plots_left_out"]
     assert sorted(left_out) == sorted(str(p) for p in suspects["plot_id"])
     assert "Suspect training labels" in result.summary()
+    from wetlandflow.report.appendix import write_report
+
+    md = write_report(result.run_dir)["markdown"].read_text()
+    section = md.split("Suspect training labels", 1)[1]
+    assert "Brodley & Friedl" in section and "suspect_plots.png" in section
+    assert "Brodley, C. E., Friedl, M. A. (1999)" in md  # in the references

@@ -11,7 +11,7 @@ from .._lazy import exports
 __all__, __getattr__, __dir__ = exports(__name__, {
     "appendix": ["build_report", "write_report"],
     "run_folder": ["RunFolder"],
-    "figures": ["class_map_png", "confidence_png", "applicability_png", "plots_png"],
+    "figures": ["class_map_png", "confidence_png", "applicability_png", "plots_png", "suspects_png"],
     "text": ["Section", "build_sections"],
     "templates": ["render_html", "render_markdown"],
     "references": ["Reference", "Citations", "cite_features"],

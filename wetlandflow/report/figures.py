@@ -114,7 +114,7 @@ def source_line(run: RunFolder, factor: float = 1.0) -> str:
         parts.append(f"optical reflectance, {len(optical)} scene(s) {optical[0]} to {optical[-1]}")
     if sar:
         parts.append(f"SAR backscatter, {len(sar)} scene(s) {sar[0]} to {sar[-1]}")
-    if p.get("dem", {}).get("path"):
+    if (p.get("dem") or {}).get("path"):
         parts.append("DEM")
     if p.get("plots", {}).get("path"):
         parts.append("labelled plots")
@@ -225,6 +225,29 @@ def plots_png(run: RunFolder) -> bytes | None:
     ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), frameon=False, title="Training plots",
               title_fontsize=7)
     _draw(ax, run, data, "Training plots (centre of each plot's sampled pixels)", inside)
+    return _png(fig)
+
+
+def suspects_png(run: RunFolder) -> bytes | None:
+    """Training plots over the mapped area, the suspect ones (``validation/suspect_plots.csv``) marked and named."""
+    table = run.csv("validation/suspect_plots.csv")
+    data = _read_map(run, "maps/class_final.tif")
+    if table is None or table.empty or data is None or not {"x", "y"} <= set(table.columns):
+        return None
+    fig, ax = _map_figure()
+    inside = data.values > 0
+    ax.imshow(np.ma.masked_equal(inside.astype(np.uint8), 0), cmap="Greys", vmin=0, vmax=4, extent=data.extent,
+              interpolation="nearest")
+    sus = table["suspect"].astype(bool)
+    ax.scatter(table.loc[~sus, "x"], table.loc[~sus, "y"], s=10, color="0.55", edgecolor="none",
+               label=f"label confirmed ({int((~sus).sum())} plots)")
+    ax.scatter(table.loc[sus, "x"], table.loc[sus, "y"], s=40, facecolor="none", edgecolor="#b2182b",
+               linewidth=1.4, label=f"suspect label ({int(sus.sum())} plots)")
+    for _, r in table.loc[sus].iterrows():
+        ax.annotate(str(r["plot_id"]), (r["x"], r["y"]), xytext=(3, 3), textcoords="offset points", fontsize=6)
+    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), frameon=False, title="Training plots",
+              title_fontsize=7)
+    _draw(ax, run, data, "Training plots whose label the filters reject", inside)
     return _png(fig)
 
 

@@ -102,6 +102,15 @@ BIBLIOGRAPHY: dict[str, Reference] = {r.key: r for r in (
     _ref("nwwg1997", "National Wetlands Working Group", 1997, "The Canadian Wetland Classification System",
          "2nd edition, Warner, B. G., Rubec, C. D. A. (eds.), Wetlands Research Centre, University of "
          "Waterloo, Waterloo, Ontario", "verified", identifier="ISBN 0-662-25857-6"),
+    # -- model outputs and training labels
+    # record: the publisher's (MIT Press, Neural Computation 14(1): 21-41, 2002) search page and abstract; the
+    # DOI from an index record.
+    _ref("saerens2002", "Saerens, M., Latinne, P., Decaestecker, C.", 2002,
+         "Adjusting the outputs of a classifier to new a priori probabilities: a simple procedure",
+         "Neural Computation 14(1), 21-41", "verified", doi="10.1162/089976602753284446"),
+    # record: the journal's article page (JAIR) and the paper's first page (JAIR 11 (1999) 131-167); arXiv copy.
+    _ref("brodley1999", "Brodley, C. E., Friedl, M. A.", 1999, "Identifying mislabeled training data",
+         "Journal of Artificial Intelligence Research 11, 131-167", "verified", identifier="arXiv 1106.0219"),
     # -- accuracy, areas and sampling
     # record: Canadian Forest Service publications catalogue (NRCan), with DOI; the paper's first page.
     _ref("olofsson2014", "Olofsson, P., Foody, G. M., Herold, M., Stehman, S. V., Woodcock, C. E., Wulder, M. A.",
@@ -285,6 +294,8 @@ METHODS: dict[str, tuple[str, ...]] = {
     "area_of_applicability": ("meyer2021",),
     "tree_shap": ("lundberg2020",),
     "class_definitions": ("nwwg1997",),
+    "priors": ("saerens2002",),
+    "suspect_labels": ("brodley1999",),
     "stratified_area_estimation": ("olofsson2014", "olofsson2013"),
     "sample_size": ("cochran1977", "olofsson2014"),
     "lee_filter": ("lee1980",),

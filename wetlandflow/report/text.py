@@ -35,6 +35,7 @@ SECTIONS = (
     "Validation design",
     "Model",
     "Cross-validated accuracy (for model choice)",
+    "Suspect training labels",
     "Inventory accuracy and error-adjusted areas (probability sample)",
     "Maps and mapped areas",
     "Drivers per class",
@@ -565,6 +566,40 @@ def section_cv_accuracy(run: RunFolder) -> Section:
     return Section(_title(section_cv_accuracy), blocks)
 
 
+def section_suspects(run: RunFolder) -> Section:
+    from .figures import suspects_png
+
+    m = run.metrics or {}
+    sus = m.get("suspect_labels")
+    table = run.csv("validation/suspect_plots.csv")
+    if not sus or table is None:
+        return Section(_title(section_suspects), [Paragraph("Suspect labels were not screened in this run "
+                                                            "(validation.suspect_labels = \"off\").")])
+    text = (f"Each training plot was judged out of fold by three filters ({sus['filters'].split(': ')[-1]}), each "
+            f"by its mean probability over the plot's pixels; a plot is suspect when "
+            f"{'every filter' if sus['rule'] == 'consensus' else 'more than half of the filters'} gives it "
+            f"another class than its label (the {sus['rule']} filter of "
+            f"{run.cite('suspect_labels', 'suspect training labels')}). "
+            f"{sus['n_suspect']} of {sus['n_plots']} plots are suspect. A suspect plot is not necessarily wrong: "
+            "a rare but real class, or a plot on a class boundary, can look like a label error. Check each against "
+            "the imagery or field notes.")
+    blocks: list = [Paragraph(text)]
+    wo = sus.get("without_suspects")
+    if wo:
+        blocks.append(Paragraph(
+            f"The final model was fitted without the suspect plots (validation.suspect_labels = \"refit\"). "
+            f"Cross-validated overall accuracy with them {acc(m['overall_accuracy'])}, without them "
+            f"{acc(wo['overall_accuracy'])} (standard error {acc(wo['overall_accuracy_se'])}); the second figure "
+            "is optimistic if the suspects were right, since the hardest plots left the test folds too."))
+    flagged = table[table["suspect"].astype(bool)]
+    if len(flagged):
+        cols = ["plot_id", "label"] + [c for c in table.columns if c.endswith("_class")] + ["min_p_label"]
+        blocks.append(Table(_round(flagged[cols].rename(columns={"min_p_label": "lowest P(label)"})),
+                            "Suspect plots (validation/suspect_plots.csv lists every plot)"))
+    _figure(blocks, "suspect_plots.png", suspects_png(run), "Training plots; suspect labels circled and named.")
+    return Section(_title(section_suspects), blocks)
+
+
 def _round(df: pd.DataFrame) -> pd.DataFrame:
     return df.assign(**{c: [acc(v) for v in df[c]] for c in df.columns if df[c].dtype.kind == "f"})
 
@@ -658,6 +693,17 @@ def section_maps(run: RunFolder) -> Section:
                              "and omission."),
                    Table(pd.DataFrame({"class": a["class"], "mapped ha": [ha(v) for v in a["mapped_area_ha"]],
                                        "share": [pct(v) for v in share]}), "Mapped class areas")]
+    pri = run.step("mapping").get("priors")
+    if pri:
+        blocks += [Paragraph(
+            "The class probabilities were adjusted to the class priors of the area before the class map was taken "
+            f"({pri['method']}; {run.cite('priors', 'prior adjustment')}): the model was fitted under the "
+            "training shares below (balanced classes), which differ from the landscape's, and a classifier's "
+            "probabilities carry its training priors."),
+                   Table(pd.DataFrame({"class": list(pri["priors"]),
+                                       "training prior": [pct(v["training"]) for v in pri["priors"].values()],
+                                       "area prior": [pct(v["estimated"]) for v in pri["priors"].values()]}),
+                         "Class priors: training and area")]
     inv = run.step("inventory")
     if inv.get("n_polygons") is not None:
         blocks.append(Paragraph(
@@ -862,7 +908,7 @@ def _uses(used_for: list[str]) -> str:
 
 
 BUILDERS = (section_caution, section_summary, section_classes, section_study_area, section_inputs, section_features,
-            section_training, section_validation_design, section_model, section_cv_accuracy,
+            section_training, section_validation_design, section_model, section_cv_accuracy, section_suspects,
             section_inventory_accuracy, section_maps, section_drivers, section_applicability, section_limitations,
             section_versions, section_reproduce, section_references)
 

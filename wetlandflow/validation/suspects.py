@@ -16,7 +16,7 @@ nearest-neighbour and linear-machine filters.  Suspects are listed and mapped, n
 References
 ----------
 Brodley, C. E., Friedl, M. A. (1999). Identifying mislabeled training data. Journal of Artificial
-Intelligence Research 11, 131-167. arXiv:1106.0219
+Intelligence Research 11, 131-167. arXiv 1106.0219
 """
 
 from __future__ import annotations
@@ -35,7 +35,7 @@ __all__ = ["RULES", "default_filters", "label_filter"]
 
 RULES = ("consensus", "majority")
 SOURCE = ("Brodley & Friedl (1999), Identifying mislabeled training data, Journal of Artificial Intelligence "
-          "Research 11, 131-167, arXiv:1106.0219")
+          "Research 11, 131-167, arXiv 1106.0219")
 
 
 def default_filters() -> dict[str, Any]:
