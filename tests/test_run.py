@@ -209,7 +209,8 @@ def test_every_table_has_the_documented_columns_and_areas_csv_keeps_them_through
     groups = list(project.classes.parents) + [c for c in names if not any(
         c in children for children in project.classes.parents.values())]
     values = {"class": "|".join(map(re.escape, names)), "group": "|".join(map(re.escape, groups)),
-              "feature": "|".join(map(re.escape, bundle["features"])), "fold": r"\d+", "seed": r"\d+"}
+              "feature": "|".join(map(re.escape, bundle["features"])), "fold": r"\d+", "seed": r"\d+",
+              "filter": r"[a-z0-9]+"}
     docs = documented_tables()
     seen = set()
     for path in sorted(run_dir.rglob("*")):

@@ -50,7 +50,10 @@ MAP_CLASSES_NAME = "map_classes.csv"
 # The columns of the run's areas.csv, in order, before and after an assessment: a script reading it by
 # column works at every stage.  The mapped columns come from the final map's pixel counts (biased by the
 # map's errors); the error-adjusted ones (Olofsson et al. 2014) stay empty until `assess` fills them.
-MAPPED_AREA_COLUMNS = ("class", "pixels", "mapped_area_ha", "mapped_share")
+# The *_before_mmu columns count the per-pixel class map (maps/class.tif) before the minimum mapping unit
+# merged small patches into their neighbours: on a speckled class the unit can remove much of its area.
+MAPPED_AREA_COLUMNS = ("class", "pixels", "mapped_area_ha", "mapped_share", "pixels_before_mmu",
+                       "mapped_area_ha_before_mmu", "mapped_share_before_mmu")
 ADJUSTED_AREA_COLUMNS = ("estimated_proportion", "se_proportion", "estimated_area_ha", "se_area_ha",
                          "ci_low_ha", "ci_high_ha", "ci_half_width_ha", "confidence")
 AREAS_COLUMNS = MAPPED_AREA_COLUMNS + ADJUSTED_AREA_COLUMNS
@@ -76,7 +79,7 @@ def areas_table(mapped: pd.DataFrame, adjusted: pd.DataFrame | None = None, *,
     ValidationDesignError
         When ``adjusted`` does not list the same classes as ``mapped``.
     """
-    table = mapped.loc[:, list(MAPPED_AREA_COLUMNS)].reset_index(drop=True)
+    table = mapped.reindex(columns=list(MAPPED_AREA_COLUMNS)).reset_index(drop=True)
     for col in ADJUSTED_AREA_COLUMNS:
         table[col] = np.nan
     if adjusted is None:
@@ -100,6 +103,16 @@ def mapped_areas(class_map: xr.DataArray, codes: Mapping[int, str], pixel_area_m
     px = np.bincount(values[(values >= 0) & (values <= max(codes))], minlength=max(codes) + 1)[1:]
     return pd.DataFrame({"class": [codes[c] for c in sorted(codes)], "pixels": px,
                          "mapped_area_ha": px * pixel_area_m2 / 1e4, "mapped_share": px / max(px.sum(), 1)})
+
+
+def with_before_mmu(mapped: pd.DataFrame, before: pd.DataFrame) -> pd.DataFrame:
+    """The final map's areas with the per-pixel map's (before the minimum mapping unit) beside them, by class."""
+    b = before.set_index("class").reindex(mapped["class"])
+    out = mapped.copy()
+    out["pixels_before_mmu"] = b["pixels"].to_numpy()
+    out["mapped_area_ha_before_mmu"] = b["mapped_area_ha"].to_numpy()
+    out["mapped_share_before_mmu"] = b["mapped_share"].to_numpy()
+    return out
 
 
 def _project(project: Project | str | Path) -> Project:
@@ -342,6 +355,12 @@ def assess(project: Project | str | Path, labelled: str | Path, *, design: str =
         plt.close(fig)
     dx, dy = (float(v) for v in cmap.rio.resolution())
     mapped = mapped_areas(cmap, codes, abs(dx * dy))
+    raw = p.run_dir / "maps" / "class.tif"
+    if raw.exists():
+        import rioxarray
+
+        mapped = with_before_mmu(mapped, mapped_areas(rioxarray.open_rasterio(raw).isel(band=0, drop=True).load(),
+                                                      codes, abs(dx * dy)))
     write_table(areas_table(mapped, result.area_table, confidence=result.confidence), p.run_dir / "areas.csv")
     return {"n": int(len(gdf)), "overall_accuracy": result.overall.value, "overall_se": result.overall.se,
             "overall_ci_half_width": result.overall.ci, "confidence": result.confidence, "folder": str(out),

@@ -41,6 +41,15 @@ def bundle_mismatch(model_dir: Path, training_hash: str, features: list[str]) ->
     return reasons
 
 
+def inventory_areas(final_path: Path, class_names: tuple[str, ...], pixel_area_m2: float) -> pd.DataFrame:
+    """Areas of the final map, with those of the per-pixel map (``class.tif`` beside it) before the MMU."""
+    from ..accuracy.assessment import with_before_mmu
+
+    mapped = class_areas(final_path, class_names, pixel_area_m2)
+    raw = Path(final_path).with_name("class.tif")
+    return with_before_mmu(mapped, class_areas(raw, class_names, pixel_area_m2)) if raw.exists() else mapped
+
+
 def areas_mismatch(areas_path: Path, final_path: Path, project: Project, grid) -> list[str]:
     """Why ``areas.csv`` does not hold the final map's areas in the fixed columns (empty if it does)."""
     from ..accuracy.assessment import AREAS_COLUMNS, MAPPED_AREA_COLUMNS
@@ -51,11 +60,11 @@ def areas_mismatch(areas_path: Path, final_path: Path, project: Project, grid) -
         return ["areas.csv is missing or unreadable"]
     if tuple(table.columns) != AREAS_COLUMNS:
         return [f"areas.csv has the columns {list(table.columns)}, not {list(AREAS_COLUMNS)}"]
-    mapped = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
+    mapped = inventory_areas(final_path, project.classes.names, grid.pixel_area_m2)
     same = (table["class"].astype(str).tolist() == mapped["class"].tolist()
             and np.array_equal(table["pixels"].to_numpy(), mapped["pixels"].to_numpy())
-            and all(np.allclose(table[c].to_numpy(np.float64), mapped[c].to_numpy(np.float64), rtol=1e-9,
-                                atol=0) for c in MAPPED_AREA_COLUMNS[2:]))
+            and all(np.allclose(table[c].to_numpy(np.float64), mapped.reindex(columns=[c])[c].to_numpy(np.float64),
+                                rtol=1e-9, atol=0, equal_nan=True) for c in MAPPED_AREA_COLUMNS[2:]))
     return [] if same else ["the mapped areas in areas.csv differ from the final map's pixel counts"]
 
 

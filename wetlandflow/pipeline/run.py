@@ -36,7 +36,7 @@ from ..inputs.io import (
 from ..inputs.layers import grid_reference, input_inventory, load_inputs, project_grid, read_aoi
 from ..inputs.preflight import preflight
 from ..inputs.project import Project, check_model_section, load_project, portable_dict, scene_files
-from ..mapping.predict import AOA_LAYERS, LAYERS, class_areas, code_counts, predict_map
+from ..mapping.predict import AOA_LAYERS, LAYERS, code_counts, predict_map
 from ..models.bundle import load_bundle, save_bundle
 from ..models.classifier import ClassScheme, WetlandClassifier, data_hash, scheme_proba
 from ..models.hierarchy import HierarchicalClassifier
@@ -56,6 +56,7 @@ from .checks import (
     bundle_mismatch,
     check_class_map_complete,
     check_layer_complete,
+    inventory_areas,
     missing_files,
     staged_map_sizes,
 )
@@ -488,7 +489,7 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
                                                connectivity=project.output.connectivity))
             check_class_map_complete(final_path, inputs.aoi, len(project.classes.names), step="inventory")
             rec["data_sha256"] = {"class_final": raster_data_sha256(final_path)}
-            mapped = class_areas(final_path, project.classes.names, grid.pixel_area_m2)
+            mapped = inventory_areas(final_path, project.classes.names, grid.pixel_area_m2)
             if previous_final.get("class_final") != rec["data_sha256"]["class_final"]:
                 stale = _set_aside_stale_assessment(run_dir)
                 if stale:

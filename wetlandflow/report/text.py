@@ -692,7 +692,11 @@ def section_maps(run: RunFolder) -> Section:
                              "They are not error-adjusted: each class's count carries its errors of commission "
                              "and omission."),
                    Table(pd.DataFrame({"class": a["class"], "mapped ha": [ha(v) for v in a["mapped_area_ha"]],
-                                       "share": [pct(v) for v in share]}), "Mapped class areas")]
+                                       "share": [pct(v) for v in share],
+                                       **({"before the MMU, ha": [ha(v) for v in a["mapped_area_ha_before_mmu"]]}
+                                          if "mapped_area_ha_before_mmu" in a and a["mapped_area_ha_before_mmu"]
+                                          .notna().all() else {})}),
+                         "Mapped class areas (final map; the per-pixel map before the minimum mapping unit)")]
     pri = run.step("mapping").get("priors")
     if pri:
         blocks += [Paragraph(

@@ -93,8 +93,8 @@ def label_filter(X: Any, y: Sequence[Any], plots: Sequence[Any], folds: Sequence
     Returns
     -------
     pandas.DataFrame
-        ``plot_id, label, n_pixels, fold``, per filter ``<name>_class`` and ``<name>_p_label`` (its mean
-        probability of the label), then ``n_reject`` (filters rejecting the label), ``suspect`` (bool) and
+        ``plot_id, label, n_pixels, fold``, per filter ``<name>_class``, then per filter ``<name>_p_label``
+        (its mean probability of the label), then ``min_p_label``, ``n_reject`` (filters rejecting the label), ``suspect`` (bool) and
         ``rule``; suspects first, then by ``min_p_label``.
     """
     if rule not in RULES:
@@ -131,4 +131,7 @@ def label_filter(X: Any, y: Sequence[Any], plots: Sequence[Any], folds: Sequence
     table["n_reject"] = rejects
     table["suspect"] = rejects == k if rule == "consensus" else rejects > k / 2
     table["rule"] = f"{rule} of {k}: {', '.join(probs)}"
+    base = ["plot_id", "label", "n_pixels", "fold"]
+    per = [f"{n}_class" for n in probs] + [f"{n}_p_label" for n in probs]
+    table = table[base + per + [c for c in table.columns if c not in base + per]]
     return table.sort_values(["suspect", "min_p_label"], ascending=[False, True]).reset_index(drop=True)
