@@ -612,6 +612,7 @@ def test_zero_error_note_reaches_the_assess_summary(monkeypatch):
     res = stratified_estimates(_frame(ZERO_ERROR, list(ZERO_AREAS)), ZERO_AREAS)
     monkeypatch.setattr(assessment, "assess", lambda project, labelled, design: {
         "n": int(ZERO_ERROR.sum()), "overall_accuracy": res.overall.value, "overall_se": res.overall.se,
+        "overall_ci_half_width": res.overall.ci, "confidence": res.confidence,
         "folder": "accuracy", "area_table": res.area_table, "accuracy_table": res.accuracy_table})
     text = format_assessment(None, "sample.gpkg")
     fen = next(line for line in text.splitlines() if line.strip().startswith("fen "))

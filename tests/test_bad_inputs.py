@@ -1651,7 +1651,8 @@ def test_a_south_up_raster_is_read_like_its_north_up_twin(demo, tmp_path):
 
 def test_inputs_no_selected_feature_reads_are_not_checked(demo, tmp_path):
     """The base project selects optical and terrain features only: SAR in dB declared linear is no refusal."""
-    from wetlandflow.inputs.layers import load_inputs, needed_inputs
+    from wetlandflow.features.registry import needed_inputs
+    from wetlandflow.inputs.layers import load_inputs
 
     doc = copy.deepcopy(demo.doc)
     doc["sar"][0]["path"] = str(to_db(demo.folder / doc["sar"][0]["path"], tmp_path / "sar_db.tif"))

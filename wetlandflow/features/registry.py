@@ -38,6 +38,7 @@ import xarray as xr
 from .._provenance import DOMAINS
 from ..errors import ProjectFileError
 from ..inputs.layers import FeatureInputs  # noqa: F401  (re-exported: feature functions take it)
+from ..inputs.project import Project
 
 NEEDS = ("composite", "optical", "sar", "dem", "aoi")
 # Selection keyword: the default set (every built-in feature the inputs can compute, plus plugin features).
@@ -326,3 +327,39 @@ def registry_markdown() -> str:
         default = "yes" if d.default else "when named" + (" (or RGB/RGBN data)" * (d.name == "band_medians"))
         rows.append(f"| `{d.name}` | {d.domain} | {needs} | {default} | {d.description} |")
     return "\n".join(rows)
+
+
+def needed_inputs(project: Project) -> set[str]:
+    """The inputs (``optical``, ``sar``, ``dem``) the selection reads, from the project file alone.
+
+    A domain named in ``select`` needs what its features read (so a named domain's files are always checked,
+    even when none of its features can run); a feature name needs what it declares; an empty selection,
+    ``"default"``, a plugin or a name not (yet) registered needs every input (the features step then says
+    what runs).
+    """
+    import wetlandflow.features  # noqa: F401  (registers the built-in features)
+
+    everything = {"optical", "sar", "dem"}
+    select = project.features.select
+    if not select or "default" in select or project.features.plugins:
+        return everything
+    needs: set[str] = set()
+    for item in select:
+        defs = [d for d in REGISTRY.values() if d.domain == item] or (
+            [REGISTRY[item]] if item in REGISTRY else None)
+        if not defs:
+            return everything
+        needs |= {n for d in defs for n in d.needs}
+    if "composite" in needs:
+        needs.add("optical")
+    return needs & everything
+
+
+def _register_resolver() -> None:
+    from ..inputs import layers
+
+    if needed_inputs not in layers.NEEDS_RESOLVER:
+        layers.NEEDS_RESOLVER.append(needed_inputs)
+
+
+_register_resolver()

@@ -462,32 +462,16 @@ def check_observations(project: Project, grid: Grid, aoi, *, max_side: int = 256
     return {f"optical[{i}] {project.optical[i].label}": round(v, 4) for i, v in shares.items()}
 
 
+# Set by wetlandflow.features.registry when the feature stage is imported: this stage must not import it.
+NEEDS_RESOLVER: list[Callable[[Project], set[str]]] = []
+
+
 def needed_inputs(project: Project) -> set[str]:
-    """The inputs (``optical``, ``sar``, ``dem``) the selection reads, from the project file alone.
-
-    A domain named in ``select`` needs what its features read (so a named domain's files are always checked,
-    even when none of its features can run); a feature name needs what it declares; an empty selection,
-    ``"default"``, a plugin or a name not (yet) registered needs every input (the features step then says
-    what runs).
-    """
-    import wetlandflow.features  # noqa: F401  (registers the built-in features)
-
-    from ..features.registry import REGISTRY
-
-    everything = {"optical", "sar", "dem"}
-    select = project.features.select
-    if not select or "default" in select or project.features.plugins:
-        return everything
-    needs: set[str] = set()
-    for item in select:
-        defs = [d for d in REGISTRY.values() if d.domain == item] or (
-            [REGISTRY[item]] if item in REGISTRY else None)
-        if not defs:
-            return everything
-        needs |= {n for d in defs for n in d.needs}
-    if "composite" in needs:
-        needs.add("optical")
-    return needs & everything
+    """The inputs (``optical``, ``sar``, ``dem``) the feature selection reads
+    (:func:`wetlandflow.features.registry.needed_inputs`); every input when the feature stage is not loaded."""
+    if NEEDS_RESOLVER:
+        return NEEDS_RESOLVER[0](project)
+    return {"optical", "sar", "dem"}
 
 
 def selected_inputs(project: Project) -> Project:

@@ -102,7 +102,8 @@ def format_assessment(project, labelled, *, design: str = "stratified") -> str:
     table, acc = res["area_table"], res["accuracy_table"].set_index("class")
     half, conf = res["overall_ci_half_width"], f"{100 * res['confidence']:g} %"
     lines = [f"Error-adjusted areas from {res['n']} labelled sample points ({design} estimator, Olofsson "
-             "et al. 2014):", *format_totals(project.run_dir, classes=False), "",
+             "et al. 2014):",
+             *(format_totals(project.run_dir, classes=False) if hasattr(project, "run_dir") else []), "",
              f"  {'class':<12s} {'mapped ha':>10s} {'adjusted ha':>12s} {'95% CI ha':>21s} {'user':>6s} "
              f"{'producer':>9s}"]
     notes = []
