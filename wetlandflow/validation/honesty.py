@@ -143,15 +143,7 @@ def map_accuracy_against_truth(
     dict
         ``overall_accuracy`` and ``n_pixels``.
     """
-    m, mgrid = _read_codes(class_map)
-    t, tgrid = _read_codes(truth)
-    names = [str(c) for c in np.asarray(map_classes)]
-    t_names = names if truth_classes is None else [str(c) for c in np.asarray(truth_classes)]
-    t_codes = _recode(_truth_on_map_grid(t, tgrid, mgrid), t_names, names)
-    both = (m > 0) & (t_codes > 0)
-    if not both.any():
-        raise GridMismatchError("the class map and the truth raster have no valid pixel in common; "
-                                "check that they cover the same area.")
+    m, t_codes, both, names = _paired_codes(class_map, truth, map_classes, truth_classes)
     return {"overall_accuracy": float((m[both] == t_codes[both]).mean()), "n_pixels": int(both.sum())}
 
 
@@ -165,6 +157,15 @@ def map_error_matrix_against_truth(
     so :func:`~wetlandflow.accuracy.estimators.accuracy_measures` on it gives the map's census overall,
     user's and producer's accuracies (their intervals are meaningless: nothing is sampled).
     """
+    m, t_codes, both, names = _paired_codes(class_map, truth, map_classes, truth_classes)
+    k = len(names)
+    counts = np.bincount((m[both].astype(np.int64) - 1) * k + (t_codes[both] - 1), minlength=k * k)
+    return pd.DataFrame(counts.reshape(k, k), index=pd.Index(names, name="map"),
+                        columns=pd.Index(names, name="reference"))
+
+
+def _paired_codes(class_map: Any, truth: Any, map_classes: ArrayLike, truth_classes: ArrayLike | None):
+    """Map codes, truth codes recoded to the map's scheme on the map's grid, their common valid mask, names."""
     m, mgrid = _read_codes(class_map)
     t, tgrid = _read_codes(truth)
     names = [str(c) for c in np.asarray(map_classes)]
@@ -174,10 +175,7 @@ def map_error_matrix_against_truth(
     if not both.any():
         raise GridMismatchError("the class map and the truth raster have no valid pixel in common; "
                                 "check that they cover the same area.")
-    k = len(names)
-    counts = np.bincount((m[both].astype(np.int64) - 1) * k + (t_codes[both] - 1), minlength=k * k)
-    return pd.DataFrame(counts.reshape(k, k), index=pd.Index(names, name="map"),
-                        columns=pd.Index(names, name="reference"))
+    return m, t_codes, both, names
 
 
 def _run_model(run: Path) -> tuple[Any, list[str], list[str]]:
