@@ -543,9 +543,6 @@ def _validate(p: Project) -> None:
             key="validation.design",
         )
     _check_choice(p.priors.adjust, PRIOR_ADJUSTMENTS, "priors.adjust")
-    if p.priors.sample_pixels < 1000:
-        raise ProjectFileError(f"sample_pixels must be >= 1000 (the estimate's sampling error grows as the "
-                               f"sample shrinks), got {p.priors.sample_pixels}", key="priors.sample_pixels")
     if p.priors.adjust == "given":
         if not p.priors.shares:
             raise ProjectFileError("adjust = \"given\" needs the area's class shares: add a [priors.shares] "
@@ -587,6 +584,7 @@ RANGES: tuple[tuple[str, float, float, bool, bool, str], ...] = (
     ("output.explain_rows", 1, INF, True, True, "samples explained"),
     ("output.explain_window", 1, INF, True, True, "pixels per side"),
     ("output.explain_seeds", 0, INF, True, True, "refits, < 2 = off"),
+    ("priors.sample_pixels", 1000, INF, True, True, "AOI pixels for the EM estimate: fewer, more sampling error"),
     ("compute.n_workers", 1, INF, True, True, "worker processes"),
     ("grid.pixel_size_m", 0, INF, True, False, "metres, 0 = the reference input's"),
 )
