@@ -14,7 +14,8 @@ import wetlandflow
 PACKAGE = Path(wetlandflow.__file__).parent
 
 # The order of the stages of a run.  A module may import from its own stage and from lower ranks only;
-# stages sharing a rank (validation and models; mapping, accuracy and explain; report and demo) must not
+# stages sharing a rank (validation and models; mapping, accuracy, explain and monitoring; report and demo)
+# must not
 # import each other in both directions.  Ground level (rank 0) is imported by everything.
 RANKS = {
     "errors": 0, "progress": 0, "_provenance": 0, "_lazy": 0,
@@ -22,7 +23,7 @@ RANKS = {
     "features": 2,
     "training": 3,
     "validation": 4, "models": 4,
-    "mapping": 5, "accuracy": 5, "explain": 5,
+    "mapping": 5, "accuracy": 5, "explain": 5, "monitoring": 5,
     "report": 6, "demo": 6,
     "pipeline": 7,
     "ui": 8,

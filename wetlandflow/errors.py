@@ -60,6 +60,12 @@ class ValidationDesignError(WetlandflowError, ValueError):
     """A cross-validation design cannot be honoured (class missing from a fold, leaking split)."""
 
 
+class MonitoringDesignError(WetlandflowError, ValueError):
+    """A monitoring analysis cannot be honoured: too few dates before or after an event, a series too
+    short for a trend test, no baseline before a disturbance (the message states the minimum and its
+    source)."""
+
+
 class ModelError(WetlandflowError, ValueError):
     """A model or model bundle does not fit the data it is given."""
 

@@ -1,0 +1,11 @@
+"""Stage 5d, monitoring: are the wetlands changing, and did a project change them?
+
+Works on dated series on the run's grid (or a coarser archive grid): per-date surface-water maps from
+SAR or optical scenes and their frequency and hydroperiod (``water_series``); long-term trends per pixel
+and per polygon with false-discovery control (``trends``); change points (``changepoint``);
+before/after-control-impact comparisons (``baci``); and recovery of disturbed patches (``recovery``).
+"""
+
+from .._lazy import exports
+
+__all__, __getattr__, __dir__ = exports(__name__, {})
