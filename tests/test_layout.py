@@ -15,8 +15,7 @@ PACKAGE = Path(wetlandflow.__file__).parent
 
 # The order of the stages of a run.  A module may import from its own stage and from lower ranks only;
 # stages sharing a rank (validation and models; mapping, accuracy, explain and monitoring; report and demo)
-# must not
-# import each other in both directions.  Ground level (rank 0) is imported by everything.
+# must not import each other in both directions.  Ground level (rank 0) is imported by everything.
 RANKS = {
     "errors": 0, "progress": 0, "_provenance": 0, "_lazy": 0,
     "inputs": 1,
