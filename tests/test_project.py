@@ -150,6 +150,12 @@ def _schema_keys() -> set[str]:
         args = [a for a in typing.get_args(tp) if a is not type(None) and a is not Ellipsis]
         cls = args[0] if args else tp
         keys |= {f"{f.name}.{g.name}" for g in dataclasses.fields(cls)}
+        inner_hints = typing.get_type_hints(cls)
+        for g in dataclasses.fields(cls):  # sub-tables such as [monitor.water]: their keys too
+            inner = [a for a in (typing.get_args(inner_hints[g.name]) or (inner_hints[g.name],))
+                     if dataclasses.is_dataclass(a)]
+            if inner and g.name not in ("optical", "sar"):  # scene tables are checked as [[optical]]
+                keys |= {f"{f.name}.{g.name}.{h.name}" for h in dataclasses.fields(inner[0])}
     keys |= {f"{kind}.{k}" for kind in ("optical", "sar") for k in (*LAYOUT_KEYS, "date_format")}
     keys |= {f"sensors.{g.name}" for g in dataclasses.fields(Sensor) if g.name != "name"}
     return keys | {"seasons"}
@@ -176,6 +182,8 @@ def _documented_keys(text: str) -> set[str]:
                     keys |= {f"features.{k}" for k in table}
                 else:
                     keys |= {f"{section}.{k}" for k in table}
+                    keys |= {f"{section}.{k}.{kk}" for k, v in table.items() if isinstance(v, dict)
+                             and section == "monitor" for kk in v}
     return keys
 
 

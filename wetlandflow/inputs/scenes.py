@@ -158,13 +158,18 @@ def _group(
     return sorted([*scenes.values(), *singles], key=lambda s: s["date"])
 
 
-def expand_scene_tables(tables: Any, kind: str, root: Path, sensors: dict[str, Sensor]) -> list[dict]:
-    """Raw ``[[optical]]`` / ``[[sar]]`` tables -> one raw table per acquisition (then validated as usual)."""
+def expand_scene_tables(tables: Any, kind: str, root: Path, sensors: dict[str, Sensor], *,
+                        key: str = "") -> list[dict]:
+    """Raw ``[[optical]]`` / ``[[sar]]`` tables -> one raw table per acquisition (then validated as usual).
+
+    ``key`` is the tables' key path in messages (default ``kind``; ``monitor.optical`` for an archive).
+    """
+    where = key or kind
     if not isinstance(tables, list):
-        raise ProjectFileError(f"expected a list of [[{kind}]] tables, got {tables!r}", key=kind)
+        raise ProjectFileError(f"expected a list of [[{where}]] tables, got {tables!r}", key=where)
     out: list[dict] = []
     for i, table in enumerate(tables):
-        key = f"{kind}[{i}]"
+        key = f"{where}[{i}]"
         if not isinstance(table, dict):
             raise ProjectFileError(f"expected a table, got {table!r}", key=key)
         # a table written back from a resolved project (to_dict) carries the unused keys empty
