@@ -8,4 +8,6 @@ before/after-control-impact comparisons (``baci``); and recovery of disturbed pa
 
 from .._lazy import exports
 
-__all__, __getattr__, __dir__ = exports(__name__, {})
+__all__, __getattr__, __dir__ = exports(__name__, {
+    "zonal": ["zone_ids", "zonal_series", "annual_table", "in_window"],
+})

@@ -1,4 +1,4 @@
-"""Command-line entry point: ``wetlandflow demo|run|check|sample|assess|compare|report|doctor``.
+"""Command-line entry point: ``wetlandflow demo|run|check|monitor|sample|assess|compare|report|doctor``.
 
 Exit code 0 on success; on failure one clear message and a non-zero code
 (``--debug`` shows the traceback).
@@ -29,18 +29,32 @@ def _cmd_run(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_monitor(args: argparse.Namespace) -> int:
+    from ..pipeline.monitor import monitor_project
+
+    result = monitor_project(args.project, progress=not args.quiet)
+    print(result.summary())
+    return 0
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     from ..demo.landscape import make_demo
     from ..pipeline.run import run_project
 
     out = Path(args.dir)
     print(f"generating the demo landscape ({args.size} x {args.size} pixels) in {out} ...")
-    project_file = make_demo(out, size=args.size, seed=args.seed, progress=not args.quiet)
+    project_file = make_demo(out, size=args.size, seed=args.seed, progress=not args.quiet,
+                             archive=not args.no_monitor)
     print(f"project file: {project_file}")
     if args.no_run:
         return 0
     result = run_project(project_file, progress=not args.quiet)
     print(result.summary())
+    if not args.no_monitor:
+        from ..pipeline.monitor import monitor_project
+
+        print("")
+        print(monitor_project(project_file, progress=not args.quiet).summary())
     if args.no_assess:
         return 0
     from ..accuracy.assessment import class_codes, design_sample, label_from_reference
@@ -204,8 +218,16 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--no-run", action="store_true", help="only generate the inputs")
     d.add_argument("--no-assess", action="store_true",
                    help="skip the validation sample (labelled from the demo's truth) and the area estimates")
+    d.add_argument("--no-monitor", action="store_true",
+                   help="skip the image archive and its monitoring run (water, trends, BACI, recovery)")
     d.add_argument("--quiet", action="store_true", help="no progress bars")
     d.set_defaults(func=_cmd_demo)
+
+    mo = sub.add_parser("monitor", help="water maps, trends, before/after-control-impact and recovery "
+                                        "from the project's [monitor] section, into RUN_DIR/monitor")
+    mo.add_argument("project", help="project file (TOML) with a [monitor] section")
+    mo.add_argument("--quiet", action="store_true", help="no progress bars")
+    mo.set_defaults(func=_cmd_monitor)
 
     s = sub.add_parser("sample", help="design the validation sample of a finished run (GeoPackage to label)")
     s.add_argument("project", help="project file (TOML)")
