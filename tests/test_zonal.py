@@ -23,7 +23,8 @@ def _stack(n_dates: int = 6, size: int = 20, seed: int = 0) -> xr.DataArray:
     values[rng.random(values.shape) < 0.2] = np.nan  # clouds
     times = pd.date_range("2001-07-01", periods=n_dates, freq="365D")
     centres = np.arange(size) * 10.0 + 5
-    return xr.DataArray(values, dims=("time", "y", "x"), coords={"time": times, "y": centres[::-1], "x": centres},
+    coords = {"time": times, "y": centres[::-1], "x": centres}
+    return xr.DataArray(values, dims=("time", "y", "x"), coords=coords,
                         attrs={"units": "1"})
 
 

@@ -40,6 +40,7 @@ SECTIONS = (
     "Maps and mapped areas",
     "Drivers per class",
     "Area of applicability",
+    "Change through time (monitoring)",
     "Limitations",
     "Software versions",
     "Reproducing this run",
@@ -777,6 +778,13 @@ def section_applicability(run: RunFolder) -> Section:
     return Section("Area of applicability", blocks)
 
 
+def section_monitoring(run: RunFolder) -> Section:
+    """Water, trends, BACI and recovery from ``monitor/`` (built in :mod:`.monitoring`)."""
+    from .monitoring import section_monitoring as build
+
+    return build(run)
+
+
 def section_limitations(run: RunFolder) -> Section:
     items = [t for t in (_hard_classes_text(run), _sample_weak_text(run), _resolution_text(run),
                          _aoa_limit_text(run)) if t]
@@ -913,8 +921,8 @@ def _uses(used_for: list[str]) -> str:
 
 BUILDERS = (section_caution, section_summary, section_classes, section_study_area, section_inputs, section_features,
             section_training, section_validation_design, section_model, section_cv_accuracy, section_suspects,
-            section_inventory_accuracy, section_maps, section_drivers, section_applicability, section_limitations,
-            section_versions, section_reproduce, section_references)
+            section_inventory_accuracy, section_maps, section_drivers, section_applicability, section_monitoring,
+            section_limitations, section_versions, section_reproduce, section_references)
 
 
 def _title(builder) -> str:
