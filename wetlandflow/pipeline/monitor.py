@@ -270,8 +270,29 @@ def _water_summaries(source: str, water: xr.DataArray, m, grid: Grid, out_dir: P
 
 
 # -- the run ---------------------------------------------------------------------------------------------
-def monitor_project(project: Project | str | Path, *, progress: bool = True) -> MonitorResult:
+class _Steps:
+    """Progress lines per step and, with a task control (the notebook panel's), a cancel point before each
+    step and the step count for its progress bar."""
+
+    TOTAL = 8
+
+    def __init__(self, progress: bool, control: Any = None) -> None:
+        self.progress, self.control, self.done = progress, control, 0
+
+    def __call__(self, name: str):
+        if self.control is not None:
+            self.control.check()
+            self.control.report(name, self.done, self.TOTAL)
+        self.done += 1
+        return step_lines(f"monitor: {name}", enabled=self.progress)
+
+
+def monitor_project(project: Project | str | Path, *, progress: bool = True, control: Any = None
+                    ) -> MonitorResult:
     """Run the ``[monitor]`` analyses of a project into ``<run folder>/monitor/``.
+
+    ``control`` (optional) is a task control with ``check()`` and ``report(stage, done, total)``, such as
+    the notebook panel's: cancelling stops before the next step, keeping the water maps already stored.
 
     Raises
     ------
@@ -287,10 +308,10 @@ def monitor_project(project: Project | str | Path, *, progress: bool = True) -> 
     run_dir = project.run_dir
     run_dir.mkdir(parents=True, exist_ok=True)
     with run_folder_lock(run_dir, f"monitor {project.file.name}"):
-        return _monitor(project, m, run_dir / "monitor", progress=progress)
+        return _monitor(project, m, run_dir / "monitor", _Steps(progress, control))
 
 
-def _monitor(project: Project, m, out_dir: Path, *, progress: bool) -> MonitorResult:
+def _monitor(project: Project, m, out_dir: Path, step: _Steps) -> MonitorResult:
     from ..monitoring.zonal import annual_table, zonal_series, zone_ids
 
     t0 = time.time()
@@ -298,14 +319,15 @@ def _monitor(project: Project, m, out_dir: Path, *, progress: bool) -> MonitorRe
         timespec="seconds"), "parameters": json.loads(json.dumps(dataclasses.asdict(m), default=str)),
         "screening": SCREENING, "steps": {}}
     tables: dict[str, pd.DataFrame] = {}
-    with step_lines("monitor: archive grid and polygons", enabled=progress):
+    progress = step.progress
+    with step("archive grid and polygons"):
         grid = project_grid(archive_project(project))
         polygons = monitor_polygons(project, grid)
         manifest["grid"] = grid.to_dict()
         manifest["polygons"] = {"source": m.polygons, "count": int(len(polygons))}
-    with step_lines("monitor: water maps and indices per date", enabled=progress):
+    with step("water maps and indices per date"):
         stacks, manifest["steps"]["water"] = dated_metrics(project, grid, out_dir, progress=progress)
-    with step_lines("monitor: series per polygon", enabled=progress):
+    with step("series per polygon"):
         ids, names = zone_ids(polygons, next(iter(stacks.values())), id_field="polygon")
         pixel_ha = abs(grid.transform.a * grid.transform.e) / 1e4
         series = pd.concat([zonal_series(s, ids, names, metric=k, pixel_area_ha=pixel_ha)
@@ -318,14 +340,14 @@ def _monitor(project: Project, m, out_dir: Path, *, progress: bool) -> MonitorRe
         if not water.empty:
             area = water.assign(water_ha=water["value"] * water["observed_share"] * water["area_ha"])
             write_table(area, out_dir / "water_area.parquet")
-    manifest["steps"]["trends"] = _trends(m, annual, stacks, grid, out_dir, tables, progress)
+    manifest["steps"]["trends"] = _trends(m, annual, stacks, grid, out_dir, tables, step)
     if m.baci is not None:
-        manifest["steps"]["baci"] = _baci(m, series, out_dir, tables, progress)
+        manifest["steps"]["baci"] = _baci(m, series, out_dir, tables, step)
     if m.recovery is not None:
-        manifest["steps"]["recovery"] = _recovery(m, annual, polygons, out_dir, tables, progress)
+        manifest["steps"]["recovery"] = _recovery(m, annual, polygons, out_dir, tables, step)
     for source, stack in stacks.items():
         if source.startswith("water_"):
-            with step_lines(f"monitor: frequency and hydroperiod ({source})", enabled=progress):
+            with step(f"frequency and hydroperiod ({source})"):
                 manifest["steps"][f"{source}_summaries"] = _water_summaries(source.split("_", 1)[1], stack, m,
                                                                              grid, out_dir)
     manifest["seconds"] = round(time.time() - t0, 1)
@@ -337,11 +359,11 @@ def _wide(table: pd.DataFrame, index: list[str]) -> pd.DataFrame:
     return table.pivot_table(index=index, columns="metric", values="value").reset_index()
 
 
-def _trends(m, annual: pd.DataFrame, stacks, grid: Grid, out_dir: Path, tables, progress: bool) -> dict:
+def _trends(m, annual: pd.DataFrame, stacks, grid: Grid, out_dir: Path, tables, step: _Steps) -> dict:
     from ..monitoring.trends import polygon_trends
 
     rec: dict[str, Any] = {}
-    with step_lines("monitor: trends per polygon", enabled=progress):
+    with step("trends per polygon"):
         wide = _wide(annual, ["polygon", "year"])
         metrics = [c for c in wide.columns if c not in ("polygon", "year")]
         trends = polygon_trends(wide, id_col="polygon", year_col="year", value_cols=metrics, alpha=m.alpha)
@@ -350,15 +372,15 @@ def _trends(m, annual: pd.DataFrame, stacks, grid: Grid, out_dir: Path, tables, 
         rec["polygons"] = {"rows": int(len(trends)), "significant_q": int((trends["q"] <= m.fdr).sum())}
     if m.trend_maps:
         for name, stack in stacks.items():
-            with step_lines(f"monitor: trend map ({name})", enabled=progress):
+            with step(f"trend map ({name})"):
                 rec[name] = _pixel_trends(name, stack, m, grid, out_dir)
     return rec
 
 
-def _baci(m, series: pd.DataFrame, out_dir: Path, tables, progress: bool) -> dict:
+def _baci(m, series: pd.DataFrame, out_dir: Path, tables, step: _Steps) -> dict:
     from ..monitoring.baci import baci_figure, baci_table
 
-    with step_lines("monitor: before/after-control-impact", enabled=progress):
+    with step("before/after-control-impact"):
         dated = series[series["observed_share"] >= 0.5]
         wide = _wide(dated, ["polygon", "date"])
         metrics = list(m.baci.metrics) or [c for c in wide.columns if c not in ("polygon", "date")]
@@ -375,11 +397,11 @@ def _baci(m, series: pd.DataFrame, out_dir: Path, tables, progress: bool) -> dic
     return {"rows": int(len(table)), "event_date": m.baci.event_date.isoformat()}
 
 
-def _recovery(m, annual: pd.DataFrame, polygons, out_dir: Path, tables, progress: bool) -> dict:
+def _recovery(m, annual: pd.DataFrame, polygons, out_dir: Path, tables, step: _Steps) -> dict:
     from ..monitoring.recovery import recovery_figure, recovery_table
 
     r = m.recovery
-    with step_lines("monitor: recovery of disturbed patches", enabled=progress):
+    with step("recovery of disturbed patches"):
         given: dict[str, int | None] = {}
         for name in r.patches:
             value = None

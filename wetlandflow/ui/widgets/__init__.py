@@ -12,7 +12,8 @@ left, and a cancel button that stops at the job's next cancel point (between
 folds, chunks or prediction windows), keeping what was finished
 (:mod:`.jobs` says where each job can stop).  :class:`RunPanel` runs a whole
 project, :class:`CrossValidationPanel` cross-validates fold by fold, and
-:class:`MapViewer` redraws one map preview at a time.  :func:`run_notebook`
+:class:`MapViewer` redraws one map preview at a time, and :class:`MonitorPanel` runs the ``[monitor]``
+analyses with its controls (:mod:`.monitor`).  :func:`run_notebook`
 executes a template notebook headless with new parameters.
 
 Everything is importable from ``wetlandflow.ui.widgets``; the submodules are
@@ -45,6 +46,7 @@ from .jobs import (
     tune,
     with_settings,
 )
+from .monitor import MonitorPanel, MonitorSettings
 from .panels import CrossValidationPanel, MapViewer, RunPanel
 from .settings import (
     FeaturePicker,
@@ -76,6 +78,8 @@ __all__ = [
     "Html",
     "MapViewer",
     "ModelSettings",
+    "MonitorPanel",
+    "MonitorSettings",
     "OutputSettings",
     "ProjectPanel",
     "RunPanel",
