@@ -8,4 +8,8 @@ before/after-control-impact comparisons (``baci``); and recovery of disturbed pa
 
 from .._lazy import exports
 
-__all__, __getattr__, __dir__ = exports(__name__, {})
+__all__, __getattr__, __dir__ = exports(__name__, {
+    "changepoint": ["pettitt"],
+    "baci": ["BaciResult", "baci", "baci_table", "baci_figure"],
+    "recovery": ["recovery_metrics", "detect_disturbance", "recovery_table", "recovery_figure"],
+})

@@ -92,10 +92,10 @@ def _check_design(n_before: int, n_after: int, min_before: int, min_after: int, 
                                  f"Expected an integer >= 2 (default {MIN_DATES}).")
     if n_before < min_before or n_after < min_after:
         raise MonitoringDesignError(
-            f"BACI needs at least {min_before} paired dates before and {min_after} after the event ({event}); "
-            f"received {n_before} before and {n_after} after. The minimum of {MIN_DATES} per period is common "
-            "practice, no source (Stewart-Oaten et al. 1986 ask for several sampling times in each period). "
-            "Fix: add sampling dates on the short side, or move the event date if it is wrong.")
+            f"BACI needs at least {min_before} paired dates before and {min_after} after the event "
+            f"({event}); received {n_before} before and {n_after} after. The minimum of {MIN_DATES} per "
+            "period is common practice, no source (Stewart-Oaten et al. 1986 ask for several sampling "
+            "times in each period). Fix: add sampling dates on the short side, or check the event date.")
 
 
 def _welch(after: np.ndarray, before: np.ndarray, alpha: float) -> tuple[float, ...]:
