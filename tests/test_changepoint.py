@@ -21,7 +21,8 @@ def _by_definition(x: np.ndarray) -> tuple[float, int, float]:
 
 
 def _series(values, start=2000, dim="year"):
-    return xr.DataArray(np.asarray(values, float), dims=dim, coords={dim: np.arange(start, start + len(values))})
+    years = np.arange(start, start + len(values))
+    return xr.DataArray(np.asarray(values, float), dims=dim, coords={dim: years})
 
 
 @pytest.mark.reference

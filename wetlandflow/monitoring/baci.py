@@ -102,6 +102,8 @@ def _welch(after: np.ndarray, before: np.ndarray, alpha: float) -> tuple[float, 
     """Difference of means, its Welch CI, t, Welch-Satterthwaite df and two-sided p."""
     va, vb = after.var(ddof=1) / after.size, before.var(ddof=1) / before.size
     diff, se = after.mean() - before.mean(), np.sqrt(va + vb)
+    if se == 0:  # both periods constant: no variance to test against, as in scipy
+        return diff, np.nan, np.nan, np.nan, np.nan, np.nan
     df = (va + vb) ** 2 / (va ** 2 / (after.size - 1) + vb ** 2 / (before.size - 1))
     half = stats.t.ppf(1 - alpha / 2, df) * se
     t = diff / se
@@ -119,8 +121,10 @@ def _interaction(paired: pd.DataFrame, after: np.ndarray, alpha: float) -> tuple
     resid = y - design @ coef
     cov = resid @ resid / dof * np.linalg.inv(design.T @ design)
     b, se = coef[3], np.sqrt(cov[3, 3])
+    if se == 0:
+        return b, se, np.nan, np.nan, np.nan
     half = stats.t.ppf(1 - alpha / 2, dof) * se
-    return b, se, b - half, b + half, 2 * stats.t.sf(abs(b / se), dof) if se > 0 else np.nan
+    return b, se, b - half, b + half, 2 * stats.t.sf(abs(b / se), dof)
 
 
 def baci(impact: pd.Series, control: pd.Series, event, *, alpha: float = 0.05,
