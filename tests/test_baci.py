@@ -8,7 +8,7 @@ import pytest
 from scipy import stats
 
 from wetlandflow.errors import MonitoringDesignError
-from wetlandflow.monitoring.baci import TABLE_COLUMNS, BaciResult, baci, baci_figure, baci_table
+from wetlandflow.monitoring.baci_analysis import TABLE_COLUMNS, BaciResult, baci, baci_figure, baci_table
 
 
 def _pair(effect=0.15, n_before=8, n_after=7, seed=0, start=2000):

@@ -10,6 +10,6 @@ from .._lazy import exports
 
 __all__, __getattr__, __dir__ = exports(__name__, {
     "changepoint": ["pettitt"],
-    "baci": ["BaciResult", "baci", "baci_table", "baci_figure"],
+    "baci_analysis": ["BaciResult", "baci", "baci_table", "baci_figure"],
     "recovery": ["recovery_metrics", "detect_disturbance", "recovery_table", "recovery_figure"],
 })
