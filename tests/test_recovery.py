@@ -99,6 +99,10 @@ def test_detect_disturbance_finds_a_planted_drop_and_ignores_rises_and_noise():
     assert detect_disturbance(_step(0.0)) is None
 
 
+def test_detect_disturbance_on_a_slow_recovery_gives_the_drop_year():
+    assert detect_disturbance(_curve(years_to_full=15, noise=0.01, seed=7)) == 2010
+
+
 def test_table_mixes_given_and_detected_disturbances():
     series = {"p1": _curve(noise=0.01, seed=4), "p2": _step(-0.3, seed=5), "p3": _step(0.0, seed=6)}
     table = pd.concat([pd.DataFrame({"pid": k, "yr": s.index, "ndvi": s.to_numpy()})

@@ -104,8 +104,9 @@ def pettitt(series: xr.DataArray, *, dim: str = "year") -> xr.Dataset:
         (0-based position along ``dim`` of the last observation before the change; NaN if fewer than two
         valid observations), ``change_coord`` (its coordinate value: float for years, datetime64 for
         dates), ``p`` (two-sided approximation ``2 exp(-6 K^2 / (n^3 + n^2))`` clipped to 1), ``shift``
-        (median after minus median before, in the series' units) and ``n`` (valid observations).  Every
-        variable carries ``result_attrs``.
+        (median after minus median before, in the series' units; read it as ``ds["shift"]``, since
+        ``ds.shift`` is the Dataset method) and ``n`` (valid observations).  Every variable carries
+        ``result_attrs``.
 
     References
     ----------

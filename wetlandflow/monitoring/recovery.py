@@ -173,6 +173,12 @@ def detect_disturbance(series: pd.Series, *, alpha: float = 0.05) -> int | None:
         The first year after the change point (the first year at the lowered level); None when the
         change is not significant at ``alpha`` or goes upward.
 
+    Notes
+    -----
+    Pettitt's test looks for one persistent shift in the median.  A drop followed by a recovery that
+    fills most of the years after it is not such a shift and may go undetected (None); give the year
+    from records in that case.
+
     Examples
     --------
     >>> import pandas as pd
