@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from wetlandflow.errors import MonitoringDesignError
+from wetlandflow.errors import MonitoringDesignError, ParameterError
 from wetlandflow.monitoring.baci_analysis import TABLE_COLUMNS, BaciResult, baci, baci_figure, baci_table
 
 
@@ -93,6 +93,13 @@ def test_too_few_dates_refused_with_the_minimum_named():
         baci(impact, control, 2002)
     with pytest.raises(MonitoringDesignError, match="at least 5 paired dates before"):
         baci(*_pair(n_before=4, seed=6), min_before=5)
+
+
+def test_bad_alpha_and_minimum_are_refused():
+    with pytest.raises(ParameterError, match="alpha=1.5"):
+        baci(*_pair(seed=6), alpha=1.5)
+    with pytest.raises(ParameterError, match="min_after=1 is below 2"):
+        baci(*_pair(seed=6), min_after=1)
 
 
 def test_result_is_frozen_and_gives_a_row():

@@ -85,7 +85,10 @@ def _paired(impact: pd.Series, control: pd.Series) -> tuple[pd.DataFrame, int]:
     return kept, len(both) - len(kept)
 
 
-def _check_design(n_before: int, n_after: int, min_before: int, min_after: int, event) -> None:
+def _check_design(n_before: int, n_after: int, min_before: int, min_after: int, event, alpha: float) -> None:
+    if not 0 < alpha < 1:
+        raise ParameterError(f"baci: alpha={alpha} is outside (0, 1); expected a two-sided level such as "
+                             "0.05.")
     for name, value in (("min_before", min_before), ("min_after", min_after)):
         if value < 2:
             raise ParameterError(f"baci: {name}={value} is below 2; a period's variance needs two dates. "
@@ -172,7 +175,7 @@ def baci(impact: pd.Series, control: pd.Series, event, *, alpha: float = 0.05,
     paired, n_dropped = _paired(impact, control)
     after = (paired.index >= event)
     n_after = int(after.sum())
-    _check_design(len(paired) - n_after, n_after, min_before, min_after, event)
+    _check_design(len(paired) - n_after, n_after, min_before, min_after, event, alpha)
     d = (paired["impact"] - paired["control"]).to_numpy(float)
     effect, lo, hi, t, df, p = _welch(d[after], d[~after], alpha)
     inter = _interaction(paired, after, alpha)
