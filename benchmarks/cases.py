@@ -215,6 +215,7 @@ def _composite_dask(quick: bool, repeat: int):
 
 
 # terrain cases live in their own file; importing it registers them after the optical ones
+import cases_changepoint  # noqa: E402,F401
 import cases_explain  # noqa: E402,F401
 import cases_mapping  # noqa: E402,F401
 import cases_terrain  # noqa: E402,F401

@@ -10,4 +10,7 @@ from .._lazy import exports
 
 __all__, __getattr__, __dir__ = exports(__name__, {
     "zonal": ["zone_ids", "zonal_series", "annual_table", "in_window"],
+    "changepoint": ["pettitt"],
+    "baci_analysis": ["BaciResult", "baci", "baci_table", "baci_figure"],
+    "recovery": ["recovery_metrics", "detect_disturbance", "recovery_table", "recovery_figure"],
 })

@@ -378,7 +378,7 @@ def _trends(m, annual: pd.DataFrame, stacks, grid: Grid, out_dir: Path, tables, 
 
 
 def _baci(m, series: pd.DataFrame, out_dir: Path, tables, step: _Steps) -> dict:
-    from ..monitoring.baci import baci_figure, baci_table
+    from ..monitoring.baci_analysis import baci_figure, baci_table
 
     with step("before/after-control-impact"):
         dated = series[series["observed_share"] >= 0.5]
