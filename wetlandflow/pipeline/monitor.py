@@ -419,7 +419,8 @@ def _recovery(m, annual: pd.DataFrame, polygons, out_dir: Path, tables, step: _S
                                         f"add {r.metric!r} to monitor.metrics")
         wide = sub.pivot_table(index=["polygon", "year"], values="value").reset_index().rename(
             columns={"value": r.metric})
-        table = recovery_table(wide, id_col="polygon", year_col="year", metric=r.metric, disturbance=given)
+        table = recovery_table(wide, id_col="polygon", year_col="year", metric=r.metric, disturbance=given,
+                               post_years=r.post_years, alpha=m.alpha)
         write_table(table, out_dir / "recovery.csv")
         tables["recovery"] = table
         for _, row in table.iterrows():
