@@ -8,4 +8,7 @@ before/after-control-impact comparisons (``baci``); and recovery of disturbed pa
 
 from .._lazy import exports
 
-__all__, __getattr__, __dir__ = exports(__name__, {})
+__all__, __getattr__, __dir__ = exports(__name__, {
+    "trends": ["mann_kendall", "false_discovery", "annual_values", "polygon_trends", "trend_series_figure",
+               "trend_map_figure"],
+})
