@@ -161,6 +161,8 @@ def mann_kendall(series: xr.DataArray, *, dim: str = "year", alpha: float = 0.05
     With ``autocorrelation="hamed_rao"`` the detrending uses the time coordinate, so with gap years the
     ranks may differ from pymannkendall, which counts positions after dropping missing values.  The slope's
     interval follows Sen (1968) under independence (as ``scipy.stats.theilslopes``), also with Hamed-Rao.
+    Hamed & Rao's factor n/n* can come out negative (large negative rank autocorrelations, typically on short
+    series); z and p are then NaN, as in pymannkendall, and ``var_s_corrected`` shows the negative value.
 
     References
     ----------
