@@ -43,7 +43,8 @@ def series_cases() -> dict[str, np.ndarray]:
     ties = np.round(rng.normal(size=20) * 2 + 0.1 * np.arange(20))  # integers: many tie groups
     gap = rng.normal(size=25) + 0.05 * np.arange(25)
     gap[9] = np.nan
-    return {"ties": ties, "gap": gap, "short": rng.normal(size=6) + np.arange(6) * 0.2,
+    zeros = np.where(rng.uniform(size=30) < 0.6, 0.0, rng.uniform(size=30))  # mostly dry: many tied slopes
+    return {"ties": ties, "zeros": zeros, "gap": gap, "short": rng.normal(size=6) + np.arange(6) * 0.2,
             "long": rng.normal(size=60) + 0.02 * np.arange(60), "ar1": ar1(40, 0.7, 0.05, seed=7),
             "ar1_strong": ar1(35, 0.9, 0.0, seed=11)}
 

@@ -26,39 +26,35 @@ N_STATS = len(STATS)
 
 @numba.njit(cache=True, nogil=True)
 def _select(a, lo, hi, k):
-    """Move the k-th smallest of ``a[lo:hi]`` to ``a[k]`` (quickselect, median-of-three pivot), in place.
+    """Move the k-th smallest of ``a[lo:hi]`` to ``a[k]`` (quickselect), in place.
 
     Afterwards every element left of k is <= a[k] and every element right of it is >= a[k], so further
-    order statistics can be selected within one side only.
+    order statistics can be selected within one side only.  Each round splits the range three ways (< pivot,
+    == pivot, > pivot) with branch-free swaps: the pairwise slopes are in random order, so a branching
+    partition mispredicts about every other element, and the three-way split keeps tied slopes (a series
+    with many equal values) linear instead of quadratic.
     """
-    hi -= 1
-    while hi > lo:
-        mid = (lo + hi) // 2
-        # median of three to the middle, guarding against sorted input
-        if a[mid] < a[lo]:
-            a[mid], a[lo] = a[lo], a[mid]
-        if a[hi] < a[lo]:
-            a[hi], a[lo] = a[lo], a[hi]
-        if a[hi] < a[mid]:
-            a[hi], a[mid] = a[mid], a[hi]
-        pivot = a[mid]
-        i, j = lo, hi
-        while i <= j:
-            while a[i] < pivot:
-                i += 1
-            while a[j] > pivot:
-                j -= 1
-            if i <= j:
-                a[i], a[j] = a[j], a[i]
-                i += 1
-                j -= 1
-        if k <= j:
-            hi = j
-        elif k >= i:
-            lo = i
-        else:
+    while hi - lo > 1:
+        x, y, z = a[lo], a[(lo + hi) // 2], a[hi - 1]
+        pivot = max(min(x, y), min(max(x, y), z))  # median of three
+        store = lo
+        for i in range(lo, hi):
+            v = a[i]
+            a[i] = a[store]
+            a[store] = v
+            store += v < pivot
+        if k < store:
+            hi = store
+            continue
+        equal = store
+        for i in range(store, hi):  # everything here is >= pivot: gather the values equal to it
+            v = a[i]
+            a[i] = a[equal]
+            a[equal] = v
+            equal += v == pivot
+        if k < equal:
             return
-    return
+        lo = equal
 
 
 @numba.njit(cache=True, nogil=True)
@@ -86,15 +82,13 @@ def _median_of(a, m):
         return upper
     lower = a[0]
     for i in range(1, k):  # after selection the (k-1)-th smallest is the maximum of the left side
-        if a[i] > lower:
-            lower = a[i]
+        lower = max(lower, a[i])
     return 0.5 * (lower + upper)
 
 
 @numba.njit(cache=True, nogil=True)
 def _tie_term(v, n):
-    """sum over tie groups of g (g - 1) (2 g + 5) of the values ``v[:n]`` (sorted in place)."""
-    v[:n].sort()
+    """sum over tie groups of g (g - 1) (2 g + 5) of the sorted values ``v[:n]``."""
     total = 0.0
     g = 1
     for i in range(1, n + 1):
@@ -109,7 +103,16 @@ def _tie_term(v, n):
 @numba.njit(cache=True, nogil=True)
 def _average_ranks(d, n, order, ranks):
     """Ranks of ``d[:n]`` (1-based, ties get their average rank, as ``scipy.stats.rankdata``)."""
-    order[:n] = np.argsort(d[:n], kind="mergesort")
+    # insertion sort of the indices: series are short (tens of years) and this allocates nothing
+    for i in range(n):
+        order[i] = i
+    for i in range(1, n):
+        o = order[i]
+        j = i - 1
+        while j >= 0 and d[order[j]] > d[o]:
+            order[j + 1] = order[j]
+            j -= 1
+        order[j + 1] = o
     i = 0
     while i < n:
         j = i
@@ -155,7 +158,7 @@ def _hamed_rao_factor(tt, xx, n, slope, z_crit, max_lag, work, order, ranks):
 
 
 @numba.njit(cache=True, nogil=True)
-def _sen(tt, xx, n, slopes, z_ci, var_s, work):
+def _sen(tt, xx, n, slopes, z_ci, var_s, median_x):
     """Theil-Sen slope, its Sen (1968) interval and Conover's intercept, on the valid ``tt``, ``xx``."""
     m = 0
     for i in range(n - 1):
@@ -169,13 +172,8 @@ def _sen(tt, xx, n, slopes, z_ci, var_s, work):
     slope = _median_of(slopes, m)
     lo = _rank_after_median(slopes, m, rl)
     hi = _rank_after_median(slopes, m, ru)
-    for i in range(n):
-        work[i] = xx[i]
-    mx = _median_of(work, n)
-    for i in range(n):
-        work[i] = tt[i]
-    mt = _median_of(work, n)
-    return slope, lo, hi, mx - slope * mt
+    mt = tt[n // 2] if n % 2 == 1 else 0.5 * (tt[n // 2 - 1] + tt[n // 2])  # times are increasing
+    return slope, lo, hi, median_x - slope * mt
 
 
 @numba.njit(cache=True, nogil=True)
@@ -191,17 +189,17 @@ def _one_series(t, x, out, z_ci, z_crit, max_lag, hamed_rao, min_count, tt, xx, 
         out[:] = np.nan
         out[0] = n
         return
-    s = 0.0
+    s_int = 0
     for i in range(n - 1):
+        xi = xx[i]
         for j in range(i + 1, n):
-            if xx[j] > xx[i]:
-                s += 1.0
-            elif xx[j] < xx[i]:
-                s -= 1.0
-    for i in range(n):
-        work[i] = xx[i]
+            s_int += (xx[j] > xi) - (xx[j] < xi)  # branch-free sign: the signs are in random order
+    s = float(s_int)
+    work[:n] = xx[:n]
+    work[:n].sort()  # once, for the tie groups and the median
     var_s = (n * (n - 1.0) * (2.0 * n + 5.0) - _tie_term(work, n)) / 18.0
-    slope, lo, hi, intercept = _sen(tt, xx, n, slopes, z_ci, var_s, work)
+    median_x = work[n // 2] if n % 2 == 1 else 0.5 * (work[n // 2 - 1] + work[n // 2])
+    slope, lo, hi, intercept = _sen(tt, xx, n, slopes, z_ci, var_s, median_x)
     var_c = var_s * _hamed_rao_factor(tt, xx, n, slope, z_crit, max_lag, work, order, ranks) if hamed_rao \
         else var_s
     # continuity correction; a non-positive corrected variance leaves z and p undefined (NaN)
