@@ -219,3 +219,4 @@ import cases_changepoint  # noqa: E402,F401
 import cases_explain  # noqa: E402,F401
 import cases_mapping  # noqa: E402,F401
 import cases_terrain  # noqa: E402,F401
+import cases_trends  # noqa: E402,F401

@@ -13,4 +13,6 @@ __all__, __getattr__, __dir__ = exports(__name__, {
     "changepoint": ["pettitt"],
     "baci_analysis": ["BaciResult", "baci", "baci_table", "baci_figure"],
     "recovery": ["recovery_metrics", "detect_disturbance", "recovery_table", "recovery_figure"],
+    "trends": ["mann_kendall", "false_discovery", "annual_values", "polygon_trends", "trend_series_figure",
+               "trend_map_figure"],
 })
