@@ -218,3 +218,4 @@ def _composite_dask(quick: bool, repeat: int):
 import cases_explain  # noqa: E402,F401
 import cases_mapping  # noqa: E402,F401
 import cases_terrain  # noqa: E402,F401
+import cases_water_series  # noqa: E402,F401
