@@ -1,4 +1,4 @@
-"""Tests for wetlandflow.monitoring.water_series, water_store and water_figures.
+"""Tests for wetlandflow.monitoring.water_series, water_threshold, water_area, water_store, water_figures.
 
 Outside references: scikit-image's ``filters.threshold_otsu`` (Otsu 1979) for the pooled threshold;
 scikit-learn's ``mixture.GaussianMixture`` for the per-tile two-Gaussian fits; the definition of Ashman's D,
@@ -26,17 +26,10 @@ from wetlandflow.errors import DataQualityError, GridMismatchError, ParameterErr
 from wetlandflow.features.water import ashman_d, otsu_threshold
 from wetlandflow.inputs.io import sha256_file
 from wetlandflow.monitoring import water_store as WS
+from wetlandflow.monitoring.water_area import water_area_series
 from wetlandflow.monitoring.water_figures import water_area_figure, water_frequency_figure
-from wetlandflow.monitoring.water_series import (
-    _fit_mixtures,
-    _tile_histograms,
-    hydroperiod_days,
-    optical_water,
-    sar_water,
-    split_threshold,
-    water_area_series,
-    water_frequency,
-)
+from wetlandflow.monitoring.water_series import hydroperiod_days, optical_water, sar_water, water_frequency
+from wetlandflow.monitoring.water_threshold import _fit_mixtures, _tile_histograms, split_threshold
 
 N = 256
 WATER = (slice(10, 46), slice(10, 46))  # 36 x 36 = 1296 pixels, 2 % of the 256 x 256 scene

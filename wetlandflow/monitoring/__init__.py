@@ -9,8 +9,9 @@ before/after-control-impact comparisons (``baci``); and recovery of disturbed pa
 from .._lazy import exports
 
 __all__, __getattr__, __dir__ = exports(__name__, {
-    "water_series": ["split_threshold", "sar_water", "optical_water", "water_frequency", "hydroperiod_days",
-                     "water_area_series"],
+    "water_threshold": ["split_threshold"],
+    "water_series": ["sar_water", "optical_water", "water_frequency", "hydroperiod_days"],
+    "water_area": ["water_area_series"],
     "water_store": ["DatedInput", "UpdateReport", "WaterSeriesStore"],
     "water_figures": ["water_area_figure", "water_frequency_figure"],
 })
