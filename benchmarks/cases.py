@@ -220,3 +220,4 @@ import cases_explain  # noqa: E402,F401
 import cases_mapping  # noqa: E402,F401
 import cases_terrain  # noqa: E402,F401
 import cases_trends  # noqa: E402,F401
+import cases_water_series  # noqa: E402,F401

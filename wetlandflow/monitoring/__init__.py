@@ -15,4 +15,9 @@ __all__, __getattr__, __dir__ = exports(__name__, {
     "recovery": ["recovery_metrics", "detect_disturbance", "recovery_table", "recovery_figure"],
     "trends": ["mann_kendall", "false_discovery", "annual_values", "polygon_trends", "trend_series_figure",
                "trend_map_figure"],
+    "water_threshold": ["split_threshold"],
+    "water_series": ["sar_water", "optical_water", "water_frequency", "hydroperiod_days"],
+    "water_area": ["water_area_series"],
+    "water_store": ["DatedInput", "UpdateReport", "WaterSeriesStore"],
+    "water_figures": ["water_area_figure", "water_frequency_figure"],
 })
