@@ -40,16 +40,14 @@ from ..errors import AlignmentError, InputFileError, ProjectFileError
 from ..features._terrain_kernels import fill_array
 from ..inputs.grid import Grid, attach, require_projected
 from . import spectra as sp
+from ._place import GRID_CRS, PLACE, demo_grid
 from .spectra import make_rng as _rng
 from .spectra import smooth_noise as _noise
 from .spectra import smoothstep as _smoothstep
 
 CLASS_NAMES = ("upland", "open_water", "marsh", "swamp", "fen", "bog")
 WETLAND_CLASSES = ("marsh", "swamp", "fen", "bog")
-PLACE = "Orlenmere Basin"
 PLOT_PREFIX = "OB"
-GRID_CRS = "EPSG:32633"
-_X0, _YTOP = 512_000.0, 6_402_000.0
 _NOMINAL_EXTENT_M = 6000.0
 # random streams: one integer per independent random step
 _S_TERRAIN, _S_CLASSES, _S_COVER, _S_AOI, _S_PLOTS, _S_OPTICAL, _S_SAR = range(1, 8)
@@ -198,14 +196,6 @@ class _Layout:
     def up(self, a: np.ndarray) -> np.ndarray:
         """A design-grid field on the optical grid (bilinear)."""
         return sp.upsample(np.asarray(a, np.float32), self.f, self.shape)
-
-
-def demo_grid(size: int, pixel_size_m: float) -> Grid:
-    """The optical grid of the demo: ``size`` x ``size`` pixels in UTM 33N, origin snapped to the pixel."""
-    x0 = math.floor(_X0 / pixel_size_m) * pixel_size_m
-    y1 = math.ceil(_YTOP / pixel_size_m) * pixel_size_m
-    return Grid.from_bbox((x0, y1 - size * pixel_size_m, x0 + size * pixel_size_m, y1), crs=GRID_CRS,
-                          resolution=pixel_size_m)
 
 
 # -- terrain -------------------------------------------------------------------------------------------------
