@@ -72,7 +72,7 @@ def _em(name: str, scale: float = 1.0) -> np.ndarray:
     return np.asarray(sp._EM[name], np.float32)[_IDX] * np.float32(scale)
 
 
-# -- layout ---------------------------------------------------------------------------------------------------
+# -- layout -----------------------------------------------------------------------------------------------
 
 
 @dataclass(frozen=True)
@@ -133,7 +133,7 @@ class _Layout:
                    (0.28 * n, 0.68 * n), (0.15 * n, 0.11 * n), math.radians(15.0))
 
     def lake_radius(self) -> np.ndarray:
-        """Normalised elliptical distance of every pixel centre from the lake centre (1 on the nominal shore)."""
+        """Elliptical distance of each pixel centre from the lake centre, 1 on the nominal shore."""
         yy, xx = np.mgrid[0:self.n, 0:self.n].astype(np.float64) + 0.5
         dy, dx = yy - self.lake_centre[0], xx - self.lake_centre[1]
         c, s = math.cos(self.lake_angle), math.sin(self.lake_angle)
@@ -201,7 +201,7 @@ def sar_dates(year: int) -> list[dt.date]:
 
 
 def _pulse(dates: list[dt.date]) -> tuple[int, int, int, np.ndarray]:
-    """Indices of the flood pulse's first, peak and last date, and the flooded share of the floodplain per date.
+    """Indices of the flood pulse's first, peak and last date, and the flooded share of the floodplain.
 
     The pulse follows snowmelt: water rises over two acquisitions to cover the
     whole floodplain in mid-May and drains over two more.
@@ -299,7 +299,8 @@ def harvest_ndvi(year: int | np.ndarray, harvest_year: int, *, baseline: float =
                  after: float = _HARVEST["after"], tau: float = _HARVEST["tau_years"]) -> np.ndarray:
     """The planted NDVI recovery curve of the harvest block (without the weather term).
 
-    ``baseline`` before the harvest, then ``baseline - (baseline - after) * exp(-(year - harvest_year) / tau)``.
+    ``baseline`` before the harvest year, then
+    ``baseline - (baseline - after) * exp(-(year - harvest_year) / tau)``.
 
     Examples
     --------
@@ -355,7 +356,8 @@ def _surface(lay: _Layout, base: _Base, plan: _Plan, i: int) -> _Year:
     if year >= plan.road_year:
         road = np.zeros(shape, bool)
         road[lay.road_row, : lay.road_end] = True
-        veg[:, road], back[:, road], g[road], fw[road] = _em("herb")[:, None], _em("soil", 1.2)[:, None], 0.2, 0
+        veg[:, road], back[:, road] = _em("herb")[:, None], _em("soil", 1.2)[:, None]  # gravel and verges
+        g[road], fw[road] = 0.2, 0.0
     water = _em("water")[:, None, None] + base.turbid * (_em("turbid") - _em("water"))[:, None, None]
     fw[lake] = 1.0
     land = g * veg + (1 - g) * back
@@ -367,7 +369,7 @@ def _surface(lay: _Layout, base: _Base, plan: _Plan, i: int) -> _Year:
 
 
 def _to_dn(rho: np.ndarray) -> np.ndarray:
-    """Reflectance to Collection 2 Level-2 DN: (reflectance + 0.2) / 0.0000275, inside the valid 7273-43636."""
+    """Reflectance to Collection 2 Level-2 DN, (reflectance + 0.2) / 0.0000275, clipped to 7273-43636."""
     return np.clip(np.round((rho - LS_OFFSET) / LS_SCALE), 7273, 43636).astype(np.uint16)
 
 
@@ -427,7 +429,7 @@ def _write_sar(folder: Path, grid, db_vv: np.ndarray, date: dt.date, rng: np.ran
 
 
 def _write_sites(path: Path, grid, lay: _Layout, plan: _Plan, flood_start: dt.date) -> None:
-    """sites.gpkg, layer "sites": the lake (first-year extent plus two pixels), the fens, the block, the floodplain."""
+    """sites.gpkg, layer "sites": lake (first-year extent plus two pixels), fens, block and floodplain."""
     import geopandas as gpd
     import pandas as pd
     from shapely import affinity
@@ -492,8 +494,8 @@ def _fen_truth(lay: _Layout, plan: _Plan, states: list[_Year], shape) -> dict[st
             "ndvi": {"effect": round(eff_n, 4), "sign": int(np.sign(eff_n))}}
     out["control"] = SITE_NAMES["control"]
     out["definition"] = ("effect = mean(impact - control) after the event minus the same mean before; "
-                         "water share = share of the polygon's pixels under open water, NDVI = polygon median "
-                         "of the noise-free reflectance")
+                         "water share = share of the polygon's pixels under open water, NDVI = polygon "
+                         "median of the noise-free reflectance")
     return out
 
 
@@ -527,8 +529,8 @@ def _harvest_truth(plan: _Plan, states: list[_Year], lay: _Layout, shape) -> dic
 
 def _check_args(size: int, pixel_size_m: float, first_year: int, last_year: int, sar_year: int) -> None:
     if not 32 <= int(size) <= 4096:
-        raise ParameterError(f"make_archive: size must be 32..4096 pixels, got {size}; the archive grid is size "
-                             "x size pixels (200 at 30 m covers the 6 km demo).")
+        raise ParameterError(f"make_archive: size must be 32..4096 pixels, got {size}; the archive grid is "
+                             "size x size pixels (200 at 30 m covers the 6 km demo).")
     if not 10.0 <= float(pixel_size_m) <= 120.0:
         raise ParameterError(f"make_archive: pixel_size_m must be 10..120 m, got {pixel_size_m}; 30 matches "
                              "Landsat.")
@@ -697,7 +699,7 @@ def monitor_table(archive_dir: str = "archive", *, road_year: int = ROAD_YEAR) -
         "optical": [{"pattern": f"{a}/optical/LS_{{date}}.tif", "sensor": SENSOR, "bands": list(LS_BANDS)}],
         "sar": [{"pattern": f"{a}/sar/S1_{{date}}_{{band}}.tif", "units": "linear"}],
         "water": {"sar_threshold": "split", "optical_threshold": "otsu", "period": "year"},
-        "baci": {"event_date": dt.date(int(road_year), 7, 1), "impact": [SITE_NAMES["up"], SITE_NAMES["down"]],
-                 "control": [SITE_NAMES["control"]]},
+        "baci": {"event_date": dt.date(int(road_year), 7, 1),
+                 "impact": [SITE_NAMES["up"], SITE_NAMES["down"]], "control": [SITE_NAMES["control"]]},
         "recovery": {"patches": [SITE_NAMES["harvest"]], "date_field": "disturbed", "metric": "ndvi"},
     }}
