@@ -99,8 +99,8 @@ class _Box:
     def polygon(self, grid):
         from shapely.geometry import box
 
-        x0, y1 = grid.transform * (self.c0, self.r0)
-        x1, y0 = grid.transform * (self.c1, self.r1)
+        x0, y1 = grid.transform @ (self.c0, self.r0)
+        x1, y0 = grid.transform @ (self.c1, self.r1)
         return box(x0, y0, x1, y1)
 
 
@@ -274,8 +274,6 @@ class _Year:
     lake_water: np.ndarray  # bool
     lake_bed: np.ndarray  # bool, exposed former lake bed
     fen_flooded: np.ndarray  # bool
-    fen_ndvi: dict[str, float]  # planted NDVI of the non-flooded fen per region
-    fen_share: dict[str, float]  # planted open-water share per impact/control polygon
 
 
 def _fen_targets(plan: _Plan, i: int) -> tuple[dict[str, float], dict[str, float]]:
@@ -311,7 +309,7 @@ def harvest_ndvi(year: int | np.ndarray, harvest_year: int, *, baseline: float =
     return np.where(t < 0, baseline, baseline - (baseline - after) * np.exp(-np.maximum(t, 0.0) / tau))
 
 
-def _fens(lay: _Layout, base: _Base, plan: _Plan, i: int, rho_bands) -> tuple[np.ndarray, dict, dict]:
+def _fens(lay: _Layout, base: _Base, plan: _Plan, i: int, rho_bands) -> np.ndarray:
     """Paint both fens into ``rho_bands`` (veg, back, g, fw arrays, in place); return the flooded mask."""
     veg, back, g, fw = rho_bands
     share, ndvi = _fen_targets(plan, i)
@@ -331,7 +329,7 @@ def _fens(lay: _Layout, base: _Base, plan: _Plan, i: int, rho_bands) -> tuple[np
         wet = m & (base.relief < level)
         flooded |= wet
     g[flooded], fw[flooded] = _FLOODED_G, _FLOODED_FW
-    return flooded, share, ndvi
+    return flooded
 
 
 def _surface(lay: _Layout, base: _Base, plan: _Plan, i: int) -> _Year:
@@ -340,7 +338,7 @@ def _surface(lay: _Layout, base: _Base, plan: _Plan, i: int) -> _Year:
     shape = (lay.n, lay.n)
     veg, back, g = base.veg.copy(), base.back.copy(), base.g_forest + np.float32(0.01 * w)
     fw = np.zeros(shape, np.float32)
-    flooded, share, ndvi = _fens(lay, base, plan, i, (veg, back, g, fw))
+    flooded = _fens(lay, base, plan, i, (veg, back, g, fw))
     meadow = lay.flood.mask(shape)
     veg[:, meadow], back[:, meadow], g[meadow] = _em("herb")[:, None], _em("litter")[:, None], 0.72
     block = lay.harvest.mask(shape)
@@ -362,7 +360,7 @@ def _surface(lay: _Layout, base: _Base, plan: _Plan, i: int) -> _Year:
     fw[lake] = 1.0
     land = g * veg + (1 - g) * back
     rho = fw * water + (1 - fw) * land
-    return _Year(rho.astype(np.float32), lake, bed, flooded, ndvi, share)
+    return _Year(rho.astype(np.float32), lake, bed, flooded)
 
 
 # -- writing ------------------------------------------------------------------------------------------------
@@ -437,7 +435,7 @@ def _write_sites(path: Path, grid, lay: _Layout, plan: _Plan, flood_start: dt.da
 
     px = grid.resolution
     (cy, cx), (a, b) = lay.lake_centre, lay.lake_axes
-    x, y = grid.transform * (cx, cy)
+    x, y = grid.transform @ (cx, cy)
     s0 = float(plan.lake_scale[0])
     lake = affinity.scale(Point(x, y).buffer(1.0, 64), a * s0 * px, b * s0 * px)
     lake = affinity.rotate(lake, -math.degrees(lay.lake_angle), origin=(x, y)).buffer(2 * px)
