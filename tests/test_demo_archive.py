@@ -275,7 +275,7 @@ def test_make_demo_archive_appends_the_monitor_table(tmp_path):
 
 
 @pytest.mark.parametrize("kwargs, words", [
-    ({"size": 8}, "size must be 32..4096"),
+    ({"size": 8}, "size must be 32..2048"),
     ({"first_year": 2015}, "at least 14 summers"),
     ({"sar_year": 2030}, "sar_year must lie in"),
     ({"pixel_size_m": 2.0}, "pixel_size_m must be"),

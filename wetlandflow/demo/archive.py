@@ -31,6 +31,7 @@ import datetime as dt
 import json
 import math
 import shutil
+import time
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -526,8 +527,8 @@ def _harvest_truth(plan: _Plan, states: list[_Year], lay: _Layout, shape) -> dic
 
 
 def _check_args(size: int, pixel_size_m: float, first_year: int, last_year: int, sar_year: int) -> None:
-    if not 32 <= int(size) <= 4096:
-        raise ParameterError(f"make_archive: size must be 32..4096 pixels, got {size}; the archive grid is "
+    if not 32 <= int(size) <= 2048:
+        raise ParameterError(f"make_archive: size must be 32..2048 pixels, got {size}; the archive grid is "
                              "size x size pixels (200 at 30 m covers the 6 km demo).")
     if not 10.0 <= float(pixel_size_m) <= 120.0:
         raise ParameterError(f"make_archive: pixel_size_m must be 10..120 m, got {pixel_size_m}; 30 matches "
@@ -627,6 +628,8 @@ def make_archive(out_dir, *, seed: int = 0, size: int = 200, pixel_size_m: float
     _check_args(size, pixel_size_m, first_year, last_year, sar_year)
     from tqdm.auto import tqdm
 
+    from ..progress import done_text
+
     root = Path(out_dir) / "archive"
     shutil.rmtree(root, ignore_errors=True)
     for sub in ("optical", "sar"):
@@ -635,9 +638,11 @@ def make_archive(out_dir, *, seed: int = 0, size: int = 200, pixel_size_m: float
     plan = _plan(seed, int(first_year), int(last_year), int(sar_year))
     base = _base(seed, lay)
     bar = tqdm(total=len(plan.years) + len(sar_dates(sar_year)), desc="archive", disable=not progress)
+    t0 = time.perf_counter()
     states, clouds, optical = _render_optical(root, grid, lay, base, plan, seed, bar)
     state_sar = states[plan.years.index(sar_year)]
     sar_truth, sar = _render_sar(root, grid, lay, base, state_sar, seed, sar_year, bar)
+    bar.set_postfix_str(done_text(time.perf_counter() - t0))  # the finished bar stays, with its time
     bar.close()
     _write_sites(root / "sites.gpkg", grid, lay, plan, dt.date.fromisoformat(sar_truth["pulse"]["start"]))
     truth = _truth(grid, lay, plan, states, seed, clouds, sar_truth)
