@@ -40,16 +40,15 @@ from ..errors import AlignmentError, InputFileError, ProjectFileError
 from ..features._terrain_kernels import fill_array
 from ..inputs.grid import Grid, attach, require_projected
 from . import spectra as sp
+from ._place import GRID_CRS, PLACE, demo_grid
+from .archive import make_archive, monitor_table
 from .spectra import make_rng as _rng
 from .spectra import smooth_noise as _noise
 from .spectra import smoothstep as _smoothstep
 
 CLASS_NAMES = ("upland", "open_water", "marsh", "swamp", "fen", "bog")
 WETLAND_CLASSES = ("marsh", "swamp", "fen", "bog")
-PLACE = "Orlenmere Basin"
 PLOT_PREFIX = "OB"
-GRID_CRS = "EPSG:32633"
-_X0, _YTOP = 512_000.0, 6_402_000.0
 _NOMINAL_EXTENT_M = 6000.0
 # random streams: one integer per independent random step
 _S_TERRAIN, _S_CLASSES, _S_COVER, _S_AOI, _S_PLOTS, _S_OPTICAL, _S_SAR = range(1, 8)
@@ -198,14 +197,6 @@ class _Layout:
     def up(self, a: np.ndarray) -> np.ndarray:
         """A design-grid field on the optical grid (bilinear)."""
         return sp.upsample(np.asarray(a, np.float32), self.f, self.shape)
-
-
-def demo_grid(size: int, pixel_size_m: float) -> Grid:
-    """The optical grid of the demo: ``size`` x ``size`` pixels in UTM 33N, origin snapped to the pixel."""
-    x0 = math.floor(_X0 / pixel_size_m) * pixel_size_m
-    y1 = math.ceil(_YTOP / pixel_size_m) * pixel_size_m
-    return Grid.from_bbox((x0, y1 - size * pixel_size_m, x0 + size * pixel_size_m, y1), crs=GRID_CRS,
-                          resolution=pixel_size_m)
 
 
 # -- terrain -------------------------------------------------------------------------------------------------
@@ -619,13 +610,16 @@ def _project_doc(seed: int, px: float, optical: list, sar: list) -> dict:
     }
 
 
-def _write_project(out: Path, seed: int, px: float, optical: list, sar: list) -> Path:
+def _write_project(out: Path, seed: int, px: float, optical: list, sar: list,
+                   monitor: dict | None = None) -> Path:
+    """Write project.toml; ``monitor`` (the archive's ``[monitor]`` table) is appended when given."""
     import tomli_w
 
+    doc = _project_doc(seed, px, optical, sar) | (monitor or {})
     head = (f"# {PLACE}: synthetic demo project (a fictional place; synthetic data).\n"
             "# Written by wetlandflow.demo.make_demo; paths are relative to this file.\n\n")
     path = out / "project.toml"
-    path.write_text(head + tomli_w.dumps(_project_doc(seed, px, optical, sar)), encoding="utf-8")
+    path.write_text(head + tomli_w.dumps(doc), encoding="utf-8")
     return path
 
 
@@ -655,7 +649,7 @@ def _check_args(size: int, pixel_size_m: float, n_optical: int, n_sar: int, dem_
 
 def make_demo(out_dir, *, size: int = 600, pixel_size_m: float = 10.0, seed: int = 0, n_optical: int = 5,
               n_sar: int = 14, dem_pixel_size_m: float = 30.0, dem_crs: str | None = "EPSG:3035",
-              progress: bool = False) -> Path:
+              progress: bool = False, archive: bool = False) -> Path:
     """Generate the synthetic Orlenmere Basin demo project into ``out_dir``.
 
     Parameters
@@ -679,6 +673,10 @@ def make_demo(out_dir, *, size: int = 600, pixel_size_m: float = 10.0, seed: int
         optical grid); ``None`` writes it in the optical CRS.
     progress : bool
         Show a progress bar.
+    archive : bool
+        Also write the image archive for the monitoring stage (:func:`wetlandflow.demo.archive.make_archive`,
+        30 m pixels over the same extent) into ``out_dir/archive/`` and its ``[monitor]`` table into the
+        project file.
 
     Returns
     -------
@@ -716,10 +714,20 @@ def make_demo(out_dir, *, size: int = 600, pixel_size_m: float = 10.0, seed: int
     fields = _landscape(out, lay, seed, dem_crs, float(dem_pixel_size_m), bar)
     opt_dates, sar_dates = sp.optical_dates(n_optical), sp.sar_dates(n_sar)
     _render_dates(out, lay, seed, fields, opt_dates, sar_dates, bar)
-    path = _write_project(out, seed, pixel_size_m, opt_dates, sar_dates)
+    monitor = _archive(out, seed, int(size) * float(pixel_size_m), progress) if archive else None
+    path = _write_project(out, seed, pixel_size_m, opt_dates, sar_dates, monitor)
     bar.set_postfix_str(done_text(time.perf_counter() - t0))  # the finished bar stays, with its time
     bar.close()
     return path
+
+
+def _archive(out: Path, seed: int, extent_m: float, progress: bool) -> dict:
+    """Write the 30 m image archive over the demo's extent; return its ``[monitor]`` table."""
+    px = 30.0
+    # the 30 m origin snaps up to 20 m west of the demo's: one more pixel keeps the east edge covered
+    truth = make_archive(out, seed=seed, size=max(32, math.ceil(extent_m / px) + 1), pixel_size_m=px,
+                         progress=progress)
+    return monitor_table("archive", road_year=truth["road"]["year"])
 
 
 def _landscape(out: Path, lay: _Layout, seed: int, dem_crs: str | None, dem_px: float, bar) -> sp.Fields:

@@ -440,17 +440,18 @@ def speckled_power(db: np.ndarray, rng: np.random.Generator, looks: float = 4.5)
 
 
 def create_tif(path: Path, *, width: int, height: int, count: int, dtype: str, crs: str, transform: Affine,
-               nodata: float, descriptions=(), tags=None, zlevel: int = 6):
+               nodata: float, descriptions=(), tags=None, zlevel: int = 6, tiled: bool = True):
     """Open a tiled (256 x 256), DEFLATE-compressed GeoTIFF for writing.
 
+    ``tiled=False`` writes strips instead, for rasters smaller than one tile.
     GDAL writes no timestamp here, so the same data give the same bytes.
     """
     import rasterio
 
+    layout = {"tiled": True, "blockxsize": BLOCK, "blockysize": BLOCK} if tiled else {}
     ds = rasterio.open(path, "w", driver="GTiff", width=width, height=height, count=count, dtype=dtype,
-                       crs=crs, transform=transform, nodata=nodata, tiled=True, blockxsize=BLOCK,
-                       blockysize=BLOCK, compress="deflate", zlevel=zlevel,
-                       predictor=3 if dtype == "float32" else 2)
+                       crs=crs, transform=transform, nodata=nodata, compress="deflate", zlevel=zlevel,
+                       predictor=3 if dtype == "float32" else 2, **layout)
     for i, text in enumerate(descriptions, start=1):
         ds.set_band_description(i, text)
     if tags:
