@@ -233,6 +233,20 @@ BIBLIOGRAPHY: dict[str, Reference] = {r.key: r for r in (
     _ref("otsu1979", "Otsu, N.", 1979, "A threshold selection method from gray-level histograms",
          "IEEE Transactions on Systems, Man, and Cybernetics SMC-9(1), 62-66", "secondary",
          doi="10.1109/TSMC.1979.4310076"),
+    # record: the journal's open-access record in a library catalogue (DOAJ: authors, title, Copernicus,
+    # 2009-03, 9, 303-314), a geological-survey library record (9, no. 2, 303-314) and the paper's first page
+    # (Nat. Hazards Earth Syst. Sci., 9, 303-314, 2009); the DOI as given in reference lists.
+    _ref("martinis2009", "Martinis, S., Twele, A., Voigt, S.", 2009,
+         "Towards operational near real-time flood detection using a split-based automatic thresholding "
+         "procedure on high resolution TerraSAR-X data",
+         "Natural Hazards and Earth System Sciences 9(2), 303-314", "verified",
+         doi="10.5194/nhess-9-303-2009"),
+    # record: the astrophysics-data-system record export (AJ 108, 2348-2361, December 1994, DOI, bibcode) and
+    # the preprint's first page (arXiv astro-ph/9408030: authors, title, "December 1994 issue of the
+    # Astronomical Journal").
+    _ref("ashman1994", "Ashman, K. M., Bird, C. M., Zepf, S. E.", 1994,
+         "Detecting bimodality in astronomical datasets", "The Astronomical Journal 108, 2348-2361",
+         "verified", doi="10.1086/117248"),
     # -- terrain
     # record: the publisher's index record (title, author, journal, DOI) and the paper's first page (Proc.
     # IEEE
@@ -282,6 +296,67 @@ BIBLIOGRAPHY: dict[str, Reference] = {r.key: r for r in (
     _ref("gallant2003", "Gallant, J. C., Dowling, T. I.", 2003,
          "A multiresolution index of valley bottom flatness for mapping depositional areas",
          "Water Resources Research 39(12), 1347", "verified", doi="10.1029/2002WR001426"),
+    # -- monitoring: trend tests and slopes
+    # record: the paper's first page with the archive's cover sheet (Econometrica, Vol. 13, No. 3 (Jul.,
+    # 1945), pp. 245-259; the Econometric Society); the DOI (the archive's, from its stable id 1907187) as
+    # given in reference lists.
+    _ref("mann1945", "Mann, H. B.", 1945, "Nonparametric tests against trend", "Econometrica 13(3), 245-259",
+         "verified", doi="10.2307/1907187"),
+    # record: the paper's first page (Journal of Hydrology 204 (1998) 182-196; Khaled H. Hamed, A. Ramachandra
+    # Rao); issue 1-4 and the DOI agree across reference lists.
+    _ref("hamed1998", "Hamed, K. H., Rao, A. R.", 1998,
+         "A modified Mann-Kendall trend test for autocorrelated data",
+         "Journal of Hydrology 204(1-4), 182-196", "verified", doi="10.1016/S0022-1694(97)00125-X"),
+    # record: the offprint's cover and first page (Koninklijke Nederlandse Akademie van Wetenschappen,
+    # Proceedings Vol. LIII, Nos. 3 and 4, 1950; also Indagationes Mathematicae Vol. XII) and the reprint's
+    # first page (Parts I-III at 386-392, 521-525, 1397-1412).  The 1950 papers have no DOI: the DOI is the
+    # 1992 reprint's (editors, pages and DOI agree across reference lists).
+    _ref("theil1950", "Theil, H.", 1950,
+         "A rank-invariant method of linear and polynomial regression analysis",
+         "Proceedings of the Koninklijke Nederlandse Akademie van Wetenschappen 53, 386-392, 521-525, "
+         "1397-1412; reprinted in Raj, B., Koerts, J. (eds.), Henri Theil's Contributions to Economics and "
+         "Econometrics, Springer, Dordrecht, 1992, 345-381", "verified", doi="10.1007/978-94-011-2546-8_20"),
+    # record: the paper's first page with the archive's cover sheet (Journal of the American Statistical
+    # Association, Vol. 63, No. 324 (Dec., 1968), pp. 1379-1389) and an index record; the publisher's DOI as
+    # given in reference lists (the archive's alias is 10.2307/2285891).
+    _ref("sen1968", "Sen, P. K.", 1968, "Estimates of the regression coefficient based on Kendall's tau",
+         "Journal of the American Statistical Association 63(324), 1379-1389", "verified",
+         doi="10.1080/01621459.1968.10480934"),
+    # lists: 28(2), 126-135 and DOI agree across reference lists (incl. statistics-library documentation).
+    _ref("pettitt1979", "Pettitt, A. N.", 1979, "A non-parametric approach to the change-point problem",
+         "Journal of the Royal Statistical Society: Series C (Applied Statistics) 28(2), 126-135",
+         "secondary", doi="10.2307/2346729"),
+    # lists: 57(1), 289-300 and the publisher's DOI agree across reference lists (incl. package docs).
+    _ref("benjamini1995", "Benjamini, Y., Hochberg, Y.", 1995,
+         "Controlling the false discovery rate: a practical and powerful approach to multiple testing",
+         "Journal of the Royal Statistical Society: Series B (Methodological) 57(1), 289-300", "secondary",
+         doi="10.1111/j.2517-6161.1995.tb02031.x"),
+    # lists: the agency's citation form (book 4, chap. A3, 458 p., DOI; supersedes the earlier edition)
+    # repeated across reference lists.
+    _ref("helsel2020", "Helsel, D. R., Hirsch, R. M., Ryberg, K. R., Archfield, S. A., Gilroy, E. J.", 2020,
+         "Statistical methods in water resources", "U.S. Geological Survey Techniques and Methods, book 4, "
+         "chap. A3, 458 p. (supersedes Techniques of Water-Resources Investigations, book 4, chap. A3)",
+         "secondary", doi="10.3133/tm4a3"),
+    # -- monitoring: impact designs
+    # lists: two reference lists give the DOI, one of them 161(2), 145-178 (a thinner check than the others).
+    _ref("underwood1992", "Underwood, A. J.", 1992,
+         "Beyond BACI: the detection of environmental impacts on populations in the real, but variable, "
+         "world",
+         "Journal of Experimental Marine Biology and Ecology 161(2), 145-178", "secondary",
+         doi="10.1016/0022-0981(92)90094-Q"),
+    # -- monitoring: recovery after disturbance
+    # lists: authors, title, 194, 303-321 and DOI in a national data catalogue's record of the authors'
+    # derived product and in reference lists.
+    _ref("white2017", "White, J. C., Wulder, M. A., Hermosilla, T., Coops, N. C., Hobart, G. W.", 2017,
+         "A nationwide annual characterization of 25 years of forest disturbance and recovery for Canada "
+         "using Landsat time series", "Remote Sensing of Environment 194, 303-321", "secondary",
+         doi="10.1016/j.rse.2017.03.035"),
+    # lists: 205, 32-45 and DOI agree across reference lists and package documentation, which name this paper
+    # as the source of the relative recovery indicator (RRI), R80P and YrYr.
+    _ref("frazier2018", "Frazier, R. J., Coops, N. C., Wulder, M. A., Hermosilla, T., White, J. C.", 2018,
+         "Analyzing spatial and temporal variability in short-term rates of post-fire vegetation return from "
+         "Landsat time series", "Remote Sensing of Environment 205, 32-45", "secondary",
+         doi="10.1016/j.rse.2017.11.007"),
 )}
 
 # What each method of a run cites (keys of BIBLIOGRAPHY).
@@ -305,6 +380,21 @@ METHODS: dict[str, tuple[str, ...]] = {
     "d8": ("ocallaghan1984",),
     "mfd": ("freeman1991",),
     "mfd_quinn": ("quinn1991",),
+    # monitoring.  Left out until a stable identifier is found in a record: Kendall (Rank Correlation Methods,
+    # 4th ed.; no ISBN found, editions dated 1970, 1975 and 1976 in lists), Green (1979, Sampling Design and
+    # Statistical Methods for Environmental Biologists; no ISBN found), Stewart-Oaten, Murdoch & Parker (1986,
+    # Ecology 67(4), 929-940; no DOI found, so there is no "paired_baci" entry yet) and Kennedy et al. (2012,
+    # Remote Sensing of Environment 122, 117-133; the one DOI listed for it is another paper's, and no source
+    # found names it as the origin of the relative recovery indicator).
+    "mann_kendall": ("mann1945",),
+    "hamed_rao": ("hamed1998",),
+    "sen_slope": ("theil1950", "sen1968"),
+    "pettitt": ("pettitt1979",),
+    "fdr": ("benjamini1995",),
+    "baci": ("underwood1992",),
+    "split_threshold": ("martinis2009", "ashman1994"),
+    "mndwi_water": ("xu2006",),
+    "recovery": ("white2017", "frazier2018"),
 }
 
 
