@@ -18,7 +18,7 @@ from typing import Any
 
 import pandas as pd
 
-from ..errors import PlausibilityWarning, ProjectFileError
+from ..errors import ClassDroppedWarning, PlausibilityWarning, ProjectFileError
 from ..features.cube import plan_features
 from ..features.plausibility import ReflectanceWarning, plausibility_checks
 from ..features.sar import check_season_dates
@@ -132,6 +132,8 @@ def check_project(project: Project | str | Path) -> CheckReport:
     WetlandflowError
         The same error (same class, same message) a run would raise.
     """
+    from .run import drop_empty_classes
+
     if not isinstance(project, Project):
         project = load_project(project)
     grid = project_grid(project)
@@ -168,6 +170,7 @@ def check_project(project: Project | str | Path) -> CheckReport:
             grid=grid,
             aoi=read_aoi(project),
         )
+        project, _ = drop_empty_classes(project, plots)
     caught += caught_plots
     px = plot_pixels(
         plots,
@@ -179,7 +182,7 @@ def check_project(project: Project | str | Path) -> CheckReport:
     check_class_plots(px, plots, project.classes.names, where=f"plot file {project.plots.path}",
                       pixel_size_m=grid.resolution)
     table = _plot_table(project, plots, px)
-    ours = (InputCoverageWarning, ReflectanceWarning, PlausibilityWarning)
+    ours = (InputCoverageWarning, ReflectanceWarning, PlausibilityWarning, ClassDroppedWarning)
     notes = list(dict.fromkeys(str(w.message) for w in caught if issubclass(w.category, ours)))
     notes += _fold_notes(project, grid, px)
     info = {
