@@ -637,7 +637,6 @@ CASES = [
         edit(lambda d: d["features"].update(select=["optical", "sar", "terrain"])),
         r"\[seasons\]",
         r"Widen the window",
-        check=False,  # refused while the SAR season differences are built (the features step), after check
     ),
     # the AOI
     Case(

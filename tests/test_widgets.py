@@ -84,6 +84,42 @@ def test_project_panel_saves_what_its_controls_say(project_file, tmp_path):
     assert saved.model.learning_rate == original.model.learning_rate  # untouched fields keep their value
 
 
+def test_suspect_label_and_prior_controls_write_their_project_keys(project_file, tmp_path):
+    panel = widgets.ProjectPanel(project_file, save_as=tmp_path / "priors.toml")
+    names = load_project(project_file).classes.names
+    assert set(panel.priors.share_boxes) == set(names)
+    panel.validation.controls["suspect_labels"].value = "refit"
+    panel.validation.controls["suspect_rule"].value = "majority"
+    panel.priors.controls["adjust"].value = "given"
+    for i, c in enumerate(names):
+        panel.priors.share_boxes[c].value = float(i + 1)
+    panel.save()
+    saved = load_project(tmp_path / "priors.toml")
+    assert (saved.validation.suspect_labels, saved.validation.suspect_rule) == ("refit", "majority")
+    assert saved.priors.adjust == "given"
+    assert saved.priors.shares == {c: float(i + 1) for i, c in enumerate(names)}
+
+    # back to "em": the shares saved above leave the file (the parser refuses shares without "given")
+    again = widgets.ProjectPanel(tmp_path / "priors.toml")
+    assert again.priors.controls["adjust"].value == "given"
+    assert again.priors.share_boxes[names[0]].value == 1.0
+    again.priors.controls["adjust"].value = "em"
+    again.priors.controls["sample_pixels"].value = 5000
+    again.validation.controls["suspect_labels"].value = "off"
+    again.save()
+    resaved = load_project(tmp_path / "priors.toml")
+    assert (resaved.priors.adjust, resaved.priors.sample_pixels, resaved.priors.shares) == ("em", 5000, {})
+    assert resaved.validation.suspect_labels == "off"
+
+
+def test_given_priors_without_shares_are_refused_naming_the_key(project_file, tmp_path):
+    panel = widgets.ProjectPanel(project_file, save_as=tmp_path / "no_shares.toml")
+    panel.priors.controls["adjust"].value = "given"  # every share left at 0
+    with pytest.raises(ProjectFileError, match=r"priors\.shares"):
+        panel.save()
+    assert not (tmp_path / "no_shares.toml").exists()
+
+
 def test_project_panel_refuses_an_invalid_setting_and_names_the_key(project_file, tmp_path):
     panel = widgets.ProjectPanel(project_file, save_as=tmp_path / "bad.toml")
     panel.validation.controls["n_folds"].value = 1

@@ -114,3 +114,8 @@ class PlausibilityWarning(UserWarning):
 
     A run records every such warning in ``manifest.json`` (``plausibility_warnings``) and shows it in its
     summary."""
+
+
+class ClassDroppedWarning(UserWarning):
+    """A class of the scheme that no plot is labelled with left the scheme (``[classes] drop_empty = true``);
+    the map cannot show it."""

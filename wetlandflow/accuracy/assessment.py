@@ -35,7 +35,7 @@ import xarray as xr
 from .. import CAUTION
 from ..errors import ValidationDesignError
 from ..inputs.io import write_figure, write_json, write_table, write_vector
-from ..inputs.project import Project, load_project
+from ..inputs.project import Project, as_mapped, load_project
 
 SAMPLE_DIR = "validation_sample"
 ACCURACY_DIR = "accuracy"
@@ -116,7 +116,8 @@ def with_before_mmu(mapped: pd.DataFrame, before: pd.DataFrame) -> pd.DataFrame:
 
 
 def _project(project: Project | str | Path) -> Project:
-    return project if isinstance(project, Project) else load_project(project)
+    """The project with the scheme of its run's maps (:func:`~wetlandflow.inputs.project.as_mapped`)."""
+    return as_mapped(project if isinstance(project, Project) else load_project(project))
 
 
 def final_class_map(run_dir: Path) -> xr.DataArray:
@@ -130,8 +131,9 @@ def final_class_map(run_dir: Path) -> xr.DataArray:
 
 
 def class_codes(project: Project) -> dict[int, str]:
-    """Map code -> class name, in the scheme's order (codes 1..K)."""
-    return {i + 1: n for i, n in enumerate(project.classes.names)}
+    """Map code -> class name, in the order of the scheme the run mapped (codes 1..K; a class dropped for want
+    of plots has no code)."""
+    return {i + 1: n for i, n in enumerate(as_mapped(project).classes.names)}
 
 
 @dataclass(frozen=True)

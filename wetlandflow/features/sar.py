@@ -269,6 +269,59 @@ def temporal_stats(
     return xr.Dataset(out)
 
 
+def check_season_dates(
+    times: Any,
+    seasons: Mapping[str, tuple[str, str]],
+    pairs: Sequence[tuple[str, str]] | None = None,
+) -> list[tuple[str, str]]:
+    """Refuse a season of the SAR season differences that holds no SAR date; return the pairs compared.
+
+    :func:`temporal_stats` compares the mean of each pair of seasons (consecutive seasons by default); a
+    season without an acquisition has no mean.  ``wetlandflow check`` calls this before any feature is
+    computed, so it refuses what the features step would, in the same words.
+
+    Parameters
+    ----------
+    times : array-like of datetime64
+        The SAR acquisition dates (the stack's ``time`` coordinate).
+    seasons : mapping of str to (str, str)
+        Month-day windows (``[seasons]``).
+    pairs : sequence of (str, str), optional
+        Which differences ``a - b``; consecutive seasons by default.
+
+    Returns
+    -------
+    list of (str, str)
+        The season pairs compared (empty with fewer than two seasons).
+
+    Raises
+    ------
+    DataQualityError
+        Naming the season, its window and the SAR dates.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> check_season_dates(np.array(["2024-05-03", "2024-07-20"], dtype="datetime64[ns]"),
+    ...                    {"spring": ("04-01", "06-10"), "summer": ("06-11", "08-20")})
+    [('spring', 'summer')]
+    """
+    names = list(seasons)
+    pairs = list(pairs) if pairs is not None else list(zip(names[:-1], names[1:], strict=True))
+    times = np.asarray(times, dtype="datetime64[ns]")
+    for season in dict.fromkeys(s for pair in pairs for s in pair):
+        if season not in seasons:
+            raise ValueError(f"season {season!r} of season_pairs is not in seasons {names}")
+        start, end = seasons[season]
+        if not season_mask(times, start, end).any():
+            dates = [str(d)[:10] for d in times.astype("datetime64[D]")]
+            raise DataQualityError(
+                f"season {season!r} ({start} to {end}) contains no SAR date; the dates are {dates}. "
+                "Widen the window in [seasons] or drop the season from the SAR differences."
+            )
+    return pairs
+
+
 def _season_differences(
     prefix: str,
     label: str,
@@ -277,21 +330,11 @@ def _season_differences(
     pairs: Sequence[tuple[str, str]] | None,
     orbit_policy: str,
 ) -> dict[str, xr.DataArray]:
-    names = list(seasons)
-    pairs = list(pairs) if pairs is not None else list(zip(names[:-1], names[1:], strict=True))
+    pairs = check_season_dates(series["time"].values, seasons, pairs)
     means = {}
     for season in {s for pair in pairs for s in pair}:
-        if season not in seasons:
-            raise ValueError(f"season {season!r} of season_pairs is not in seasons {names}")
         start, end = seasons[season]
-        mask = season_mask(series["time"].values, start, end)
-        if not mask.any():
-            dates = [str(d)[:10] for d in np.asarray(series["time"].values, dtype="datetime64[D]")]
-            raise DataQualityError(
-                f"season {season!r} ({start} to {end}) contains no SAR date; the dates are {dates}. "
-                "Widen the window in [seasons] or drop the season from the SAR differences."
-            )
-        sub = series.isel(time=np.flatnonzero(mask))
+        sub = series.isel(time=np.flatnonzero(season_mask(series["time"].values, start, end)))
         per_orbit = [_linear_stats(s, ("mean",)) for s in _orbit_subsets(sub, orbit_policy)]
         means[season] = raw_db(_combine_orbits(per_orbit)["mean"])
     out = {}

@@ -11,7 +11,7 @@ from .._lazy import exports
 
 __all__, __getattr__, __dir__ = exports(__name__, {
     "project": ["Project", "load_project", "parse_project", "config_hash", "to_dict", "portable_dict",
-                "scene_files", "DEFAULT_SEASONS"],
+                "scene_files", "DEFAULT_SEASONS", "as_mapped", "without_classes", "dropped_class_note"],
     "sensors": ["Sensor", "SENSORS", "BAND_NAMES", "sensor_table"],
     "scenes": ["expand_scene_tables", "sensor_of"],
     "grid": ["Grid", "attach", "require_match", "require_projected"],

@@ -43,6 +43,8 @@ CV_DESIGNS = ("blocks", "group", "random")
 MONITOR_AGGREGATES = ("median", "mean", "max", "min")
 MONITOR_PERIODS = ("year", "season", "month", "all")
 MONITOR_THRESHOLDS = {"sar_threshold": ("split", "otsu"), "optical_threshold": ("otsu",)}
+SUSPECT_LABELS = ("flag", "refit", "off")
+SUSPECT_RULES = ("consensus", "majority")
 
 
 # -- schema -------------------------------------------------------------------------------
@@ -73,6 +75,8 @@ class ClassesSection:
     # class -> short definition (string), or {label = "...", definition = "..."}; the six default classes
     # fall back to wetlandflow.inputs.class_definitions.DEFAULT_DEFINITIONS
     definitions: dict[str, Any] = field(default_factory=dict)
+    # true: a class no plot is labelled with leaves the scheme before training, with a warning; false: refused
+    drop_empty: bool = False
 
 
 @dataclass(frozen=True)
@@ -549,6 +553,61 @@ def given_shares(shares: dict[str, float], classes: tuple[str, ...]) -> list[flo
     return [v / sum(values) for v in values]
 
 
+def dropped_class_note(name: str) -> str:
+    """The sentence every output (warning, check, summary, report) gives for a class left out of the scheme
+    by ``[classes] drop_empty = true``."""
+    return (f"class {name} had no training plots and was dropped (classes.drop_empty = true): the map cannot "
+            "show it")
+
+
+def without_classes(project: Project, dropped: tuple[str, ...] | list[str]) -> Project:
+    """The project with the classes ``dropped`` left out of its scheme (``[classes] drop_empty``).
+
+    They leave ``names``, their parent groups (a group left empty goes too), their definitions and, for
+    ``priors.adjust = "given"``, their shares (the rest are renormalised when used).
+
+    Examples
+    --------
+    >>> p = Project(Path("p.toml"), ProjectSection(), AreaSection(Path("aoi.gpkg")),
+    ...             ClassesSection(("a", "b", "c"), parents={"g": ("b", "c")}), PlotsSection(Path("p.gpkg")))
+    >>> q = without_classes(p, ["c"])
+    >>> q.classes.names, q.classes.parents
+    (('a', 'b'), {'g': ('b',)})
+    """
+    gone = set(dropped)
+    c = project.classes
+    parents = {k: tuple(n for n in v if n not in gone) for k, v in c.parents.items()}
+    classes = dataclasses.replace(
+        c, names=tuple(n for n in c.names if n not in gone),
+        parents={k: v for k, v in parents.items() if v},
+        definitions={k: v for k, v in c.definitions.items() if k not in gone})
+    priors = dataclasses.replace(project.priors,
+                                 shares={k: v for k, v in project.priors.shares.items() if k not in gone})
+    return dataclasses.replace(project, classes=classes, priors=priors)
+
+
+def as_mapped(project: Project) -> Project:
+    """The project with the class scheme its run folder's maps use: without the classes the last run dropped
+    (``[classes] drop_empty = true``, recorded as ``dropped_classes`` in ``manifest.json``), so that map
+    codes 1..K name the right classes after a run.  The project as it is without such a run.
+
+    Examples
+    --------
+    >>> p = Project(Path("p.toml"), ProjectSection(), AreaSection(Path("aoi.gpkg")),
+    ...             ClassesSection(("a", "b")), PlotsSection(Path("p.gpkg")))
+    >>> as_mapped(p) is p
+    True
+    """
+    manifest = project.run_dir / "manifest.json"
+    if not project.classes.drop_empty or not manifest.exists():
+        return project
+    try:
+        dropped = json.loads(manifest.read_text()).get("dropped_classes") or []
+    except ValueError:  # an unreadable manifest is reported by whatever reads the run next
+        return project
+    return without_classes(project, dropped) if dropped else project
+
+
 def _validate(p: Project) -> None:
     _require_file(p.area.aoi, "area.aoi")
     _require_file(p.plots.path, "plots.path")
@@ -591,8 +650,8 @@ def _validate(p: Project) -> None:
                                f"{p.model.max_plot_share}; set model.max_plot_share to a value in that range",
                                key="model.max_plot_share")
     _check_choice(p.validation.design, CV_DESIGNS, "validation.design")
-    _check_choice(p.validation.suspect_labels, ("flag", "refit", "off"), "validation.suspect_labels")
-    _check_choice(p.validation.suspect_rule, ("consensus", "majority"), "validation.suspect_rule")
+    _check_choice(p.validation.suspect_labels, SUSPECT_LABELS, "validation.suspect_labels")
+    _check_choice(p.validation.suspect_rule, SUSPECT_RULES, "validation.suspect_rule")
     check_ranges(p)
     if p.validation.design == "random" and not p.validation.allow_random_pixels:
         raise ProjectFileError(

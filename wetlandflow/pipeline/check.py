@@ -3,7 +3,8 @@
 :func:`check_project` opens every raster header, aligns the inputs lazily (band lists and counts, band
 descriptions, overlap, SAR units, DEM units and coverage, clear observations per season), runs the
 reflectance and SAR plausibility checks on a coarse sample, resolves the feature selection against the
-bands and inputs (what runs, what is skipped and why), reads the plots (class field, labels, geometries,
+bands and inputs (what runs, what is skipped and why; a SAR date in every season the SAR season differences
+compare), reads the plots (class field, labels, geometries,
 CRS, inside the AOI) and counts them per class against the fold design.  It raises the same error, of the
 same class, as :func:`~wetlandflow.pipeline.run.run_project` would on the same project.
 """
@@ -17,9 +18,10 @@ from typing import Any
 
 import pandas as pd
 
-from ..errors import PlausibilityWarning, ProjectFileError
+from ..errors import ClassDroppedWarning, PlausibilityWarning, ProjectFileError
 from ..features.cube import plan_features
 from ..features.plausibility import ReflectanceWarning, plausibility_checks
+from ..features.sar import check_season_dates
 from ..inputs.grid import Grid
 from ..inputs.io import read_vector
 from ..inputs.layers import (
@@ -33,6 +35,9 @@ from ..inputs.layers import (
 from ..inputs.preflight import check_memory, estimate_memory_bytes
 from ..inputs.project import Project, load_project
 from ..training.samples import check_class_plots, plot_pixels, read_plots
+
+# Built-in features whose output compares [seasons] by their SAR dates (features.builtin.sar_temporal).
+SAR_SEASON_FEATURES = ("sar_temporal",)
 
 
 @dataclass
@@ -112,6 +117,13 @@ def _fold_notes(project: Project, grid: Grid, px: pd.DataFrame) -> list[str]:
     return list(dict.fromkeys(str(w.message) for w in caught if issubclass(w.category, UserWarning)))
 
 
+def _check_sar_seasons(inputs, defs) -> None:
+    """Refuse a ``[seasons]`` window without a SAR date when the SAR season differences are selected (the
+    features step would refuse it, in these words, while building them)."""
+    if inputs.sar is not None and any(d.name in SAR_SEASON_FEATURES for d in defs):
+        check_season_dates(inputs.sar["time"].values, inputs.seasons)
+
+
 def check_project(project: Project | str | Path) -> CheckReport:
     """Every refusal of a run before its features step, and an inventory of inputs, features and plots.
 
@@ -120,6 +132,8 @@ def check_project(project: Project | str | Path) -> CheckReport:
     WetlandflowError
         The same error (same class, same message) a run would raise.
     """
+    from .run import drop_empty_classes
+
     if not isinstance(project, Project):
         project = load_project(project)
     grid = project_grid(project)
@@ -141,6 +155,7 @@ def check_project(project: Project | str | Path) -> CheckReport:
             key="features.select",
             file=str(project.file),
         )
+    _check_sar_seasons(inputs, defs)
     check_memory(estimate_memory_bytes(project, grid), project.output.memory_budget_gb)
     raw = read_vector(project.plots.path, layer=project.plots.layer or None, what="plot file",
                       key="plots.layer")
@@ -155,6 +170,7 @@ def check_project(project: Project | str | Path) -> CheckReport:
             grid=grid,
             aoi=read_aoi(project),
         )
+        project, _ = drop_empty_classes(project, plots)
     caught += caught_plots
     px = plot_pixels(
         plots,
@@ -166,7 +182,7 @@ def check_project(project: Project | str | Path) -> CheckReport:
     check_class_plots(px, plots, project.classes.names, where=f"plot file {project.plots.path}",
                       pixel_size_m=grid.resolution)
     table = _plot_table(project, plots, px)
-    ours = (InputCoverageWarning, ReflectanceWarning, PlausibilityWarning)
+    ours = (InputCoverageWarning, ReflectanceWarning, PlausibilityWarning, ClassDroppedWarning)
     notes = list(dict.fromkeys(str(w.message) for w in caught if issubclass(w.category, ours)))
     notes += _fold_notes(project, grid, px)
     info = {

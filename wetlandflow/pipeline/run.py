@@ -22,7 +22,7 @@ import numpy as np
 import pandas as pd
 
 from .. import CAUTION
-from ..errors import ProjectFileError
+from ..errors import ClassDroppedWarning, ProjectFileError, SamplesError
 from ..features.cube import build_cube, open_cube, save_cube, season_coverage
 from ..inputs.io import (
     check_disk_space,
@@ -35,7 +35,15 @@ from ..inputs.io import (
 )
 from ..inputs.layers import grid_reference, input_inventory, load_inputs, project_grid, read_aoi
 from ..inputs.preflight import preflight
-from ..inputs.project import Project, check_model_section, load_project, portable_dict, scene_files
+from ..inputs.project import (
+    Project,
+    check_model_section,
+    dropped_class_note,
+    load_project,
+    portable_dict,
+    scene_files,
+    without_classes,
+)
 from ..mapping.predict import AOA_LAYERS, LAYERS, code_counts, predict_map
 from ..models.bundle import load_bundle, save_bundle
 from ..models.classifier import ClassScheme, WetlandClassifier, data_hash, scheme_proba
@@ -44,6 +52,7 @@ from ..training.samples import (
     check_class_plots,
     check_training_features,
     class_balance,
+    classes_without_plots,
     drop_incomplete,
     extract_samples,
     missing_report,
@@ -370,6 +379,10 @@ def _run(project: Project, *, progress: bool = True, check: Callable[[], None] |
         rec["layers"] = {k: getattr(inputs, k).attrs if getattr(inputs, k) is not None else None
                          for k in ("optical", "dem", "sar")}
         rec["checks"] = plausibility_checks(project, inputs)
+        if project.classes.drop_empty:  # the reduced scheme shapes every later step and its key
+            project, dropped = drop_empty_classes(project, read_project_plots(project, grid))
+            manifest.data["dropped_classes"] = dropped
+            cfg = portable_dict(project)
     hashes = {k: v["sha256"] for k, v in manifest.data["inputs"].items()}
 
     k_feat = step_key(*(cfg[s] for s in ("area", "grid", "optical", "sar", "dem", "seasons", "features")),
@@ -548,10 +561,69 @@ def prior_adjusted_model(project: Project, model, samples: pd.DataFrame, feature
     return adjusted_model(model, fitted, priors), record
 
 
+def read_project_plots(project: Project, grid):
+    """The project's plots (``[plots]``), checked against its class scheme and AOI, in the grid CRS."""
+    p = project.plots
+    return read_plots(p.path, class_field=p.class_field, id_field=p.id_field, classes=project.classes.names,
+                      grid=grid, aoi=read_aoi(project), layer=p.layer)
+
+
+def drop_empty_classes(project: Project, plots) -> tuple[Project, list[str]]:
+    """With ``[classes] drop_empty = true``: the project without the classes no plot is labelled with.
+
+    Each dropped class is warned (:class:`~wetlandflow.errors.ClassDroppedWarning`, the words of
+    :func:`~wetlandflow.inputs.project.dropped_class_note`); with ``drop_empty = false`` the project is
+    returned as it is and :func:`~wetlandflow.training.samples.check_class_plots` refuses such a class.
+
+    Parameters
+    ----------
+    project : Project
+        The project as read.
+    plots : pandas.DataFrame
+        The plots (:func:`read_project_plots`), with a ``class`` column.
+
+    Returns
+    -------
+    tuple of (Project, list of str)
+        The project whose scheme training and mapping use, and the dropped classes in scheme order.
+
+    Raises
+    ------
+    SamplesError
+        When fewer than two classes would be left.
+    ProjectFileError
+        When a hierarchical model would be left without parent groups.
+
+    Examples
+    --------
+    >>> from wetlandflow.inputs.project import AreaSection, ClassesSection, PlotsSection, ProjectSection
+    >>> p = Project(Path("p.toml"), ProjectSection(), AreaSection(Path("aoi.gpkg")),
+    ...             ClassesSection(("bog", "fen", "marsh"), drop_empty=True), PlotsSection(Path("p.gpkg")))
+    >>> reduced, dropped = drop_empty_classes(p, pd.DataFrame({"class": ["bog", "marsh"]}))
+    >>> reduced.classes.names, dropped
+    (('bog', 'marsh'), ['fen'])
+    """
+    if not project.classes.drop_empty:
+        return project, []
+    empty = classes_without_plots(plots, project.classes.names)
+    if not empty:
+        return project, []
+    kept = [c for c in project.classes.names if c not in empty]
+    if len(kept) < 2:
+        raise SamplesError(f"plot file {project.plots.path}: only {kept} of the class scheme "
+                           f"{list(project.classes.names)} has plots; a model needs at least two classes. "
+                           "Add plots of the other classes to the plot file")
+    import warnings
+
+    for name in empty:
+        warnings.warn(dropped_class_note(name), ClassDroppedWarning, stacklevel=2)
+    reduced = without_classes(project, empty)
+    check_model_section(reduced)
+    return reduced, empty
+
+
 def _samples_step(project: Project, grid, cube, rec: dict[str, Any]) -> pd.DataFrame:
-    plots = read_plots(project.plots.path, class_field=project.plots.class_field, id_field=project.plots.id_field,
-                       classes=project.classes.names, grid=grid, aoi=read_aoi(project),
-                       layer=project.plots.layer)
+    plots = read_project_plots(project, grid)
     px = plot_pixels(plots, grid, inward_buffer_m=project.samples.inward_buffer_m,
                      max_pixels_per_plot=project.samples.max_pixels_per_plot, seed=project.project.seed)
     check_class_plots(px, plots, project.classes.names, where=f"plot file {project.plots.path}",
@@ -795,6 +867,9 @@ def format_summary(result: RunResult) -> str:
     assessed), then each class, then accuracy, outputs and the caution."""
     m = result.metrics
     lines = [f"wetlandflow run: {result.run_dir}", "", *format_totals(result.run_dir), ""]
+    dropped = result.manifest.get("dropped_classes")
+    if dropped:
+        lines += ["Classes dropped from the scheme:", *(f"  - {dropped_class_note(c)}" for c in dropped), ""]
     acc = _sample_accuracy(result.run_dir)
     if acc is not None:
         lines.append(f"Overall accuracy of the final map from the labelled sample: {acc}")

@@ -82,7 +82,13 @@ class RunFolder:
     @cached_property
     def class_names(self) -> list[str]:
         bundle = self.bundle or {}
-        return list(bundle.get("scheme", {}).get("names") or self.project.get("classes", {}).get("names", []))
+        names = bundle.get("scheme", {}).get("names") or self.project.get("classes", {}).get("names", [])
+        return [n for n in names if n not in self.dropped_classes]
+
+    @property
+    def dropped_classes(self) -> list[str]:
+        """Classes without plots left out of the scheme (``[classes] drop_empty = true``)."""
+        return list(self.manifest.get("dropped_classes") or [])
 
     @property
     def pixel_size_m(self) -> float:

@@ -140,6 +140,8 @@ def section_summary(run: RunFolder) -> Section:
             f"The run maps {len(run.class_names)} classes "
             f"({', '.join(_label(run, n) for n in run.class_names)}) on {run.pixel_size_m:g} m pixels over "
             f"{ha(run.areas['mapped_area_ha'].sum())} ha."))
+    if run.dropped_classes:
+        blocks.append(Paragraph(_dropped_text(run)))
     finished = f", finished {m['finished']}" if m.get("finished") else " (no finish time recorded)"
     blocks.append(Paragraph(
         f"This appendix documents the run of project \"{name}\" recorded in this folder: wetlandflow "
@@ -177,7 +179,16 @@ def section_classes(run: RunFolder) -> Section:
             f"The definitions of {', '.join(_label(run, n) for n in defaults)} are wetlandflow's defaults, "
             "which describe in short the wetland classes of the Canadian Wetland Classification System "
             f"({cite}) and the land that is not wetland."))
+    if run.dropped_classes:
+        blocks.append(Paragraph(_dropped_text(run)))
     return Section("Classes mapped", [*blocks, Table(rows, "Class definitions")])
+
+
+def _dropped_text(run: RunFolder) -> str:
+    """One sentence per class the run left out of the scheme for want of plots (``[classes] drop_empty``)."""
+    from ..inputs.project import dropped_class_note
+
+    return " ".join(f"Note: {dropped_class_note(c)}." for c in run.dropped_classes)
 
 
 def _label(run: RunFolder, name: str) -> str:
@@ -192,10 +203,12 @@ def class_groups(run: RunFolder) -> dict[str, list[str]]:
     Without parents, a scheme with an ``upland`` class gets one group ``wetland`` of all the other classes,
     said as such in the text.
     """
-    parents = {k: list(v) for k, v in (run.project.get("classes", {}).get("parents") or {}).items()}
+    names = run.class_names
+    parents = {k: [n for n in v if n in names]  # a class dropped for want of plots is in no total
+               for k, v in (run.project.get("classes", {}).get("parents") or {}).items()}
+    parents = {k: v for k, v in parents.items() if v}
     if parents:
         return parents
-    names = run.class_names
     return {"wetland": [n for n in names if n != "upland"]} if "upland" in names and len(names) > 1 else {}
 
 

@@ -130,10 +130,27 @@ def check_class_plots(pixels: pd.DataFrame, plots, classes: tuple[str, ...], *, 
     detail = "; ".join(f"{c!r}: no plot" if not n_plots.get(c, 0) else
                        f"{c!r}: {int(n_plots[c])} plot(s), none holding a pixel centre"
                        + (f" of the {pixel_size_m:g} m grid" if pixel_size_m else "") for c in empty)
+    no_plot = [repr(c) for c in empty if not n_plots.get(c, 0)]
+    option = (f". To run without {', '.join(no_plot)} (no plot at all), set drop_empty = true in [classes]: "
+              "such a class then leaves the scheme with a warning and the map cannot show it"
+              if no_plot else "")
     raise SamplesError(f"{where}: class(es) of the scheme without training data ({detail}); the model "
                        "could never map them. Add plots of these classes to the plot file (or, for plots "
                        "smaller than a pixel, use a smaller grid.pixel_size_m), or remove the classes from "
-                       "[classes].names (and [classes.parents]) in the project file")
+                       f"[classes].names (and [classes.parents]) in the project file{option}")
+
+
+def classes_without_plots(plots, classes: tuple[str, ...]) -> list[str]:
+    """The classes of the scheme no plot is labelled with, in scheme order.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> classes_without_plots(pd.DataFrame({"class": ["bog", "bog", "marsh"]}), ("bog", "fen", "marsh"))
+    ['fen']
+    """
+    present = set(plots["class"]) if len(plots) else set()
+    return [c for c in classes if c not in present]
 
 
 def _check_geometries(gdf, where: str) -> None:

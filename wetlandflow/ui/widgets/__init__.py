@@ -2,7 +2,8 @@
 
 Every control maps to one field of the project file (:mod:`wetlandflow.inputs.project`):
 :class:`FeaturePicker` to ``[features]`` (``select`` and ``params``),
-:class:`ModelSettings`, :class:`ValidationSettings` and :class:`OutputSettings`
+:class:`ModelSettings`, :class:`ValidationSettings` (with the suspect-label
+options), :class:`OutputSettings` and :class:`PriorsSettings` (with ``[priors.shares]``)
 to their sections.  :class:`ProjectPanel` gathers them, validates what they
 represent with the library's own parser and saves it as a project file.
 
@@ -52,6 +53,7 @@ from .settings import (
     FeaturePicker,
     ModelSettings,
     OutputSettings,
+    PriorsSettings,
     ProjectPanel,
     SectionSettings,
     ValidationSettings,
@@ -81,6 +83,7 @@ __all__ = [
     "MonitorPanel",
     "MonitorSettings",
     "OutputSettings",
+    "PriorsSettings",
     "ProjectPanel",
     "RunPanel",
     "SectionSettings",

@@ -26,7 +26,8 @@ from .tasks import BackgroundTask, Cancelled, Html, TaskControl, TaskPanel, show
 def _run_render(result) -> list[Any]:
     from ..previews import plot_class_map
 
-    names = tuple(result.manifest["project"]["classes"]["names"])
+    dropped = set(result.manifest.get("dropped_classes") or [])  # [classes] drop_empty: not on the map
+    names = tuple(n for n in result.manifest["project"]["classes"]["names"] if n not in dropped)
     out: list[Any] = [result.summary(), result.areas]
     final = result.run_dir / "maps" / "class_final.tif"
     if final.exists():

@@ -22,8 +22,12 @@ from ...errors import ProjectFileError, WetlandflowError
 from ...inputs.project import (
     CV_DESIGNS,
     MODEL_KINDS,
+    PRIOR_ADJUSTMENTS,
+    SUSPECT_LABELS,
+    SUSPECT_RULES,
     ModelSection,
     OutputSection,
+    PriorsSection,
     Project,
     ValidationSection,
     parse_project,
@@ -59,6 +63,8 @@ class SectionSettings(w.VBox):
     schema: type = object
     fields: tuple[str, ...] = ()
     choices: dict[str, tuple[Any, ...]] = {}
+    # keys of the section the controls decide even when :meth:`to_config` leaves them out (then removed)
+    owned: tuple[str, ...] = ()
 
     def __init__(self, values: Mapping[str, Any] | None = None) -> None:
         values = dict(values or {})
@@ -84,11 +90,49 @@ class ModelSettings(SectionSettings):
 
 
 class ValidationSettings(SectionSettings):
-    """``[validation]``: design, folds, block size, and the explicit permission for random pixel folds."""
+    """``[validation]``: design, folds, block size, the explicit permission for random pixel folds, and what
+    to do with suspect training labels (``suspect_labels``: flag, refit or off; ``suspect_rule``)."""
 
     section, schema = "validation", ValidationSection
-    fields = ("design", "n_folds", "block_size_m", "allow_random_pixels")
-    choices = {"design": CV_DESIGNS}
+    fields = ("design", "n_folds", "block_size_m", "allow_random_pixels", "suspect_labels", "suspect_rule")
+    choices = {"design": CV_DESIGNS, "suspect_labels": SUSPECT_LABELS, "suspect_rule": SUSPECT_RULES}
+
+
+class PriorsSettings(SectionSettings):
+    """``[priors]``: adjust the map to the area's class priors (``adjust``: none, em or given), the pixels of
+    the EM estimate, and one share per class for ``adjust = "given"`` (``[priors.shares]``).
+
+    ``share_boxes[class]`` holds a class's share; the shares are written only with ``adjust = "given"``
+    (the parser normalises them and refuses them otherwise).
+
+    Examples
+    --------
+    >>> s = PriorsSettings({"adjust": "given"}, classes=("upland", "bog"))
+    >>> s.share_boxes["bog"].value = 0.2
+    >>> s.to_config()["shares"]
+    {'upland': 0.0, 'bog': 0.2}
+    """
+
+    section, schema = "priors", PriorsSection
+    fields = ("adjust", "sample_pixels")
+    choices = {"adjust": PRIOR_ADJUSTMENTS}
+    owned = ("shares",)
+
+    def __init__(self, values: Mapping[str, Any] | None = None, *, classes: Sequence[str] = ()) -> None:
+        super().__init__(values)
+        shares = dict((values or {}).get("shares") or {})
+        style = {"description_width": "11em"}
+        self.share_boxes = {c: w.FloatText(value=float(shares.get(c, 0.0)), description=f"share {c}",
+                                           style=style) for c in classes}
+        self.shares_box = w.VBox([w.HTML("<small>[priors.shares], used with adjust = given</small>"),
+                                  *self.share_boxes.values()])
+        self.children = (*self.children, self.shares_box)
+
+    def to_config(self) -> dict[str, Any]:
+        cfg = super().to_config()
+        if cfg["adjust"] == "given":
+            cfg["shares"] = {c: b.value for c, b in self.share_boxes.items()}
+        return cfg
 
 
 class OutputSettings(SectionSettings):
@@ -225,7 +269,7 @@ def rebase_paths(data: dict[str, Any], src_dir: Path, dst_dir: Path) -> dict[str
 
 
 class ProjectPanel(w.VBox):
-    """Settings of one project file in tabs (features, model, validation, output), with a save button.
+    """Settings of one project file in tabs (features, model, validation, output, priors), with a save button.
 
     Parameters
     ----------
@@ -244,6 +288,8 @@ class ProjectPanel(w.VBox):
         self.model = ModelSettings(self.raw.get("model"))
         self.validation = ValidationSettings(self.raw.get("validation"))
         self.output_settings = OutputSettings(self.raw.get("output"))
+        self.priors = PriorsSettings(self.raw.get("priors"),
+                                     classes=self.raw.get("classes", {}).get("names", ()))
         self.path = w.Text(
             value=str(save_as or self.source), description="save as", layout=w.Layout(width="60%")
         )
@@ -251,8 +297,8 @@ class ProjectPanel(w.VBox):
         self.message = w.HTML()
         self.save_button.on_click(lambda _: self._save_clicked())
         tabs = w.Tab(
-            children=[self.features, self.model, self.validation, self.output_settings],
-            titles=("features", "model", "validation", "output"),
+            children=[self.features, self.model, self.validation, self.output_settings, self.priors],
+            titles=("features", "model", "validation", "output", "priors"),
         )
         super().__init__([tabs, w.HBox([self.path, self.save_button]), self.message])
 
@@ -267,8 +313,9 @@ class ProjectPanel(w.VBox):
             k: v for k, v in data.get("features", {}).items() if k not in ("select", "params")
         }
         data["features"].update(self.features.to_config())
-        for panel in (self.model, self.validation, self.output_settings):
-            data[panel.section] = {**data.get(panel.section, {}), **panel.to_config()}
+        for panel in (self.model, self.validation, self.output_settings, self.priors):
+            kept = {k: v for k, v in data.get(panel.section, {}).items() if k not in panel.owned}
+            data[panel.section] = {**kept, **panel.to_config()}
         return data
 
     def project(self) -> Project:
