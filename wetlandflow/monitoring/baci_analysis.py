@@ -80,7 +80,7 @@ class BaciResult:
 
 def _paired(impact: pd.Series, control: pd.Series) -> tuple[pd.DataFrame, int]:
     """Impact and control on the dates where both have a value, and how many dates were dropped."""
-    both = pd.concat({"impact": impact, "control": control}, axis=1, join="outer")
+    both = pd.concat({"impact": impact, "control": control}, axis=1, join="outer", sort=True)
     kept = both.dropna().sort_index()
     return kept, len(both) - len(kept)
 
@@ -173,6 +173,8 @@ def baci(impact: pd.Series, control: pd.Series, event, *, alpha: float = 0.05,
     (0.1, 5, 5)
     """
     paired, n_dropped = _paired(impact, control)
+    if isinstance(paired.index, pd.DatetimeIndex):  # a date (datetime.date, ISO text) against dated values
+        event = pd.Timestamp(event)
     after = (paired.index >= event)
     n_after = int(after.sum())
     _check_design(len(paired) - n_after, n_after, min_before, min_after, event, alpha)

@@ -5,7 +5,7 @@ the archive's scenes onto a grid over the AOI (the archive's own pixel unless ``
 otherwise), and writes into ``<run folder>/monitor/``:
 
 * ``water/<source>.zarr``: one water map per date (1 water, 0 dry, NaN not observed), kept per date so a
-  new scene is computed alone (:class:`~wetlandflow.monitoring.water_series.WaterSeriesStore`); and
+  new scene is computed alone (:class:`~wetlandflow.monitoring.water_store.WaterSeriesStore`); and
   ``water/<source>_frequency.tif`` / ``_hydroperiod.tif`` per period;
 * ``series.parquet`` (every metric per polygon and date), ``water_area.parquet``, ``annual.csv``;
 * ``polygon_trends.csv`` and, with ``trend_maps``, ``trends/<metric>_trend.tif`` (Sen slope, its CI,
@@ -159,7 +159,7 @@ def _scene_key(scene, params: dict) -> str:
 
 def _water_store(out_dir: Path, source: str, stack: xr.DataArray, scenes, params: dict, mapper):
     """Per-date water maps of one source through the append-only store: unchanged dates are not recomputed."""
-    from ..monitoring.water_series import DatedInput, WaterSeriesStore
+    from ..monitoring.water_store import DatedInput, WaterSeriesStore
 
     store = WaterSeriesStore(out_dir / "water" / f"{source}.zarr")
     by_date = {np.datetime64(s.date, "ns"): s for s in scenes}
@@ -256,7 +256,8 @@ def _pixel_trends(name: str, stack: xr.DataArray, m, grid: Grid, out_dir: Path) 
 
 
 def _water_summaries(source: str, water: xr.DataArray, m, grid: Grid, out_dir: Path) -> dict[str, Any]:
-    from ..monitoring.water_series import hydroperiod_days, water_frequency, water_frequency_figure
+    from ..monitoring.water_figures import water_frequency_figure
+    from ..monitoring.water_series import hydroperiod_days, water_frequency
 
     seasons = {"monitor": tuple(m.season)} if m.season else None
     freq = water_frequency(water, period=m.water.period, seasons=seasons).compute()
@@ -383,7 +384,15 @@ def _baci(m, series: pd.DataFrame, out_dir: Path, tables, step: _Steps) -> dict:
     with step("before/after-control-impact"):
         dated = series[series["observed_share"] >= 0.5]
         wide = _wide(dated, ["polygon", "date"])
-        metrics = list(m.baci.metrics) or [c for c in wide.columns if c not in ("polygon", "date")]
+        event = pd.Timestamp(m.baci.event_date)
+        metrics, skipped = list(m.baci.metrics), {}
+        if not metrics:  # every metric observed on both sides of the event (a SAR season may lie on one)
+            for c in (c for c in wide.columns if c not in ("polygon", "date")):
+                dates = wide.loc[wide[c].notna(), "date"]
+                if (dates < event).any() and (dates >= event).any():
+                    metrics.append(c)
+                else:
+                    skipped[c] = "no observation on one side of the event"
         table = baci_table(wide, id_col="polygon", date_col="date", metrics=metrics, impact=m.baci.impact,
                            control=m.baci.control, event=m.baci.event_date)
         write_table(table, out_dir / "baci.csv")
@@ -392,9 +401,9 @@ def _baci(m, series: pd.DataFrame, out_dir: Path, tables, step: _Steps) -> dict:
         for site in m.baci.impact:
             impact = wide[wide["polygon"] == site].set_index("date")
             for metric in metrics:
-                fig = baci_figure(impact[metric], control[metric], m.baci.event_date, metric=metric)
+                fig = baci_figure(impact[metric], control[metric], event, metric=metric)
                 write_figure(fig, out_dir / "figures" / f"baci_{site}_{metric}.png")
-    return {"rows": int(len(table)), "event_date": m.baci.event_date.isoformat()}
+    return {"rows": int(len(table)), "event_date": m.baci.event_date.isoformat(), "skipped": skipped}
 
 
 def _recovery(m, annual: pd.DataFrame, polygons, out_dir: Path, tables, step: _Steps) -> dict:
@@ -457,7 +466,7 @@ def format_monitor_summary(result: MonitorResult) -> str:
     if rec is not None and len(rec):
         lines.append("  Recovery of disturbed patches:")
         for row in rec.to_dict("records"):
-            lines.append("    " + ", ".join(f"{k} {v:.3g}" if isinstance(v, float) else f"{k} {v}"
+            lines.append("    " + ", ".join(f"{k} {v:.4g}" if isinstance(v, float) else f"{k} {v}"
                                            for k, v in row.items()))
     lines.append(f"  {SCREENING}")
     return "\n".join(lines)

@@ -98,7 +98,8 @@ def _baci_blocks(run: RunFolder, man: dict[str, Any]) -> list:
     text = (f"Before/after-control-impact: the impact site(s) {', '.join(b['impact'])} against the control(s) "
             f"{', '.join(b['control'])}, event {b['event_date']}. The effect is the change, from before to "
             "after the event, of the impact-minus-control difference on matched dates (the paired design of "
-            f"{run.cite('paired_baci', 'BACI effect')}, Welch's t interval); the interaction term of the "
+            "Stewart-Oaten, Murdoch & Parker 1986, Ecology 67(4), 929-940; Welch's t interval); the interaction "
+            "term of the "
             f"two-way model of site and period ({run.cite('baci', 'BACI interaction')}) is given beside it. "
             "Matched dates share weather and season, which the difference removes; what it cannot remove is "
             "anything else that changed at the impact site at the same time.")
