@@ -24,6 +24,7 @@ TEMPLATES = (
     "04_explain",
     "05_map_inventory",
     "06_validation_sample",
+    "07_monitoring",
 )
 
 # Features left out of the light project: the slowest to build (SAR water frequency and its hydroperiod,
@@ -57,7 +58,7 @@ def shared_notebook_run(tmp_path_factory) -> Path:
     project_file = root / "notebooks.toml"
     if (root / "runs" / "notebooks" / "maps" / "class_final.tif").exists():
         return project_file
-    demo = make_demo(root, size=200, seed=1)
+    demo = make_demo(root, size=200, seed=1, archive=True)
     data = tomllib_loads(demo.read_text())
     data["project"]["output_dir"] = "runs/notebooks"
     data.setdefault("features", {})["select"] = LIGHT_FEATURES
@@ -104,6 +105,7 @@ def small_parameters(name: str, project_file: Path, tmp: Path) -> dict:
         "05_map_inventory": {**common, "preview_px": 300},
         # the 2 km demo is dense with training plots: a 100 m buffer would leave open water without pixels
         "06_validation_sample": {**common, "redraw_sample": True, "exclude_buffer_m": 10.0},
+        "07_monitoring": {"project_file": str(project_file), "preview_px": 200},
     }[name]
 
 
@@ -216,3 +218,13 @@ def test_06_sample_notebook_writes_accuracy_and_adjusted_areas(executed, project
     summary = json.loads((run / "accuracy" / "summary.json").read_text())
     assert 0.0 < summary["overall_accuracy"] <= 1.0
     assert (run / "validation_sample" / "sample_labelled.gpkg").exists()
+
+
+def test_07_monitoring_notebook_shows_trends_water_baci_and_recovery(executed, project_file):
+    nb = executed("07_monitoring")
+    assert any("Monitoring written to" in s for s in outputs(nb, "stdout"))
+    assert len(outputs(nb, "image/png")) >= 6  # trend maps, water frequency, BACI and recovery figures
+    html = "".join(outputs(nb, "text/html"))
+    assert "slope_lo" in html and "effect" in html and "years_to_recovery" in html
+    assert outputs(nb, "application/vnd.jupyter.widget-view+json"), "the monitoring panel is shown"
+    assert (project_file.parent / "runs" / "notebooks" / "monitor" / "polygon_trends.csv").exists()

@@ -353,3 +353,24 @@ def test_preview_grid_covers_the_grid_with_whole_pixel_factors():
     assert factor == int(factor) and max(coarse.shape) <= 200
     assert coarse.bounds[0] == grid.bounds[0] and coarse.bounds[3] == grid.bounds[3]
     assert coarse.bounds[2] >= grid.bounds[2] and coarse.bounds[1] <= grid.bounds[1]
+
+
+def test_monitor_panel_controls_write_the_monitor_keys(tmp_path):
+    """The monitoring panel's controls become [monitor] keys, validated by the project parser."""
+    from wetlandflow.demo.landscape import make_demo
+    from wetlandflow.errors import ProjectFileError
+    from wetlandflow.ui.widgets import MonitorPanel
+
+    panel = MonitorPanel(make_demo(tmp_path, size=64, seed=3, archive=True))
+    c = panel.settings.controls
+    c["metrics"].value = ("water", "ndvi")
+    c["aggregate"].value = "max"
+    c["water.sar_threshold"].value = "-16.5"
+    c["water.period"].value = "month"
+    m = panel.project().monitor
+    assert m.metrics == ("water", "ndvi") and m.aggregate == "max"
+    assert m.water.sar_threshold == -16.5 and m.water.period == "month"
+    assert m.baci is not None and m.baci.impact == ("fen_upslope", "fen_downslope")  # file keys kept
+    c["water.optical_threshold"].value = "bright"
+    with pytest.raises(ProjectFileError, match="monitor.water.optical_threshold"):
+        panel.project()
