@@ -64,24 +64,29 @@ def _pattern_rows(table: dict[str, Any], root: Path, key: str) -> list[dict[str,
             f"'sar/S1_{{date}}_{{band}}.tif'; got {pattern!r}",
             key=f"{key}.pattern",
         )
-    glob = _PLACEHOLDER.sub("*", pattern)
+    # the folders before the first placeholder are fixed: resolved first, so "../x/{date}.tif" and absolute
+    # patterns work (Path.glob takes neither)
+    pieces = pattern.split("/")
+    first = next(k for k, piece in enumerate(pieces) if _PLACEHOLDER.search(piece))
+    base = (root / ("/".join(pieces[:first]) or ".")).resolve()
+    rest = "/".join(pieces[first:])
+    glob = _PLACEHOLDER.sub("*", rest)
     parts, pos = [], 0
-    for m in _PLACEHOLDER.finditer(pattern):
-        parts.append(re.escape(pattern[pos : m.start()]))
+    for m in _PLACEHOLDER.finditer(rest):
+        parts.append(re.escape(rest[pos : m.start()]))
         parts.append(
-            f"(?P<{m.group(1)}>[^/]+?)" if m.group(1) not in pattern[: m.start()] else f"(?P={m.group(1)})"
+            f"(?P<{m.group(1)}>[^/]+?)" if m.group(1) not in rest[: m.start()] else f"(?P={m.group(1)})"
         )
         pos = m.end()
-    regex = re.compile("".join(parts) + re.escape(pattern[pos:]) + "$")
+    regex = re.compile("".join(parts) + re.escape(rest[pos:]) + "$")
     rows = []
-    for path in sorted(root.glob(glob)):
-        m = regex.match(path.relative_to(root).as_posix())
+    for path in sorted(base.glob(glob)):
+        m = regex.match(path.relative_to(base).as_posix())
         if m:
             rows.append({"path": str(path), **m.groupdict()})
     if not rows:
         raise ProjectFileError(
-            f"no file matches the pattern {pattern!r} (searched {glob!r} in the project "
-            "file's folder); check the folder, the file names and the placeholders",
+            f"no file matches the pattern {pattern!r} (searched {glob!r} in {base}); check the folder, the file names and the placeholders",
             key=f"{key}.pattern",
         )
     return rows

@@ -10,7 +10,7 @@ from typing import TYPE_CHECKING, Any
 
 import pandas as pd
 
-from .text import Bullets, Callout, Figure, Paragraph, Section, Table
+from .blocks import Bullets, Callout, Figure, Paragraph, Section, Table
 
 if TYPE_CHECKING:
     from .run_folder import RunFolder

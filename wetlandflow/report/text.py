@@ -12,13 +12,12 @@ lists exactly what the sections cited.
 from __future__ import annotations
 
 import json
-import re
-from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 import pandas as pd
 
 from .. import CAUTION, __version__
+from .blocks import Bullets, Callout, Code, Figure, Paragraph, Section, Table  # noqa: F401  (re-exported)
 from .references import cite_features
 
 if TYPE_CHECKING:
@@ -47,50 +46,6 @@ SECTIONS = (
     "References",
 )
 NO_SAMPLE = "No probability sample was assessed for this run"
-
-
-# -- blocks -------------------------------------------------------------------------------------------------------
-@dataclass(frozen=True)
-class Paragraph:
-    text: str
-
-
-@dataclass(frozen=True)
-class Bullets:
-    items: tuple[str, ...]
-
-
-@dataclass(frozen=True)
-class Table:
-    frame: pd.DataFrame
-    caption: str = ""
-
-
-@dataclass(frozen=True)
-class Figure:
-    name: str
-    png: bytes
-    caption: str
-
-
-@dataclass(frozen=True)
-class Code:
-    text: str
-
-
-@dataclass(frozen=True)
-class Callout:
-    text: str
-
-
-@dataclass
-class Section:
-    title: str
-    blocks: list = field(default_factory=list)
-
-    @property
-    def anchor(self) -> str:
-        return re.sub(r"[^a-z0-9]+", "-", self.title.lower()).strip("-")
 
 
 # -- number formats (the tests read the same files and format them the same way) -------------------------------

@@ -261,10 +261,16 @@ def rebase_paths(data: dict[str, Any], src_dir: Path, dst_dir: Path) -> dict[str
     for section, key in _PATH_KEYS:
         if key in out.get(section, {}):
             out[section][key] = _rebase(out[section][key], src_dir, dst_dir)
-    for scene in out.get("optical", []) + out.get("sar", []):
-        for key in ("path", "mask"):
+    monitor = out.get("monitor", {})
+    scenes = [*out.get("optical", []), *out.get("sar", []), *monitor.get("optical", []), *monitor.get("sar", [])]
+    for scene in scenes:
+        for key in ("path", "mask", "pattern", "list"):  # a pattern's placeholders survive as plain text
             if key in scene:
                 scene[key] = _rebase(scene[key], src_dir, dst_dir)
+        if isinstance(scene.get("files"), dict):
+            scene["files"] = {b: _rebase(f, src_dir, dst_dir) for b, f in scene["files"].items()}
+    if monitor.get("polygons", "inventory") not in ("inventory", "aoi"):
+        monitor["polygons"] = _rebase(monitor["polygons"], src_dir, dst_dir)
     return out
 
 
